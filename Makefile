@@ -1,0 +1,30 @@
+# Two entry points for a fresh machine with Python 3.11+ and make:
+#   make demo   - set up .venv and run one simulated clear day on the bench
+#   make test   - set up .venv and run the whole test suite
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed
+
+.PHONY: demo test lint bench clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/heliotrope demo
+
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+
+lint: $(STAMP)
+	$(BIN)/ruff check daemon drivers sim_instrument tests benchmarks
+
+bench: $(STAMP)
+	$(BIN)/python benchmarks/run_all.py
+
+clean:
+	rm -rf $(VENV) build *.egg-info

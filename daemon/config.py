@@ -1,0 +1,368 @@
+"""Strict configuration loader.
+
+The YAML file is read with ``yaml.safe_load`` and walked by typed getters. Each
+getter knows its key path, type and bounds, so every error names the key and the
+allowed range. Keys that nobody read are rejected at the end: a typo surfaces at
+start-up, not in the middle of a session on the mountain.
+
+Only the standard library and PyYAML are imported here, so ``check-config`` starts
+fast.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+import yaml
+
+EX_CONFIG = 78  # sysexits.h: configuration error
+
+
+class ConfigError(Exception):
+    """A configuration problem, phrased for the person who edits the file."""
+
+
+@dataclass(frozen=True)
+class Site:
+    name: str
+    latitude_deg: float
+    longitude_deg: float  # east positive
+    elevation_m: float
+    timezone: str
+    pressure_hpa: float | None  # nominal station pressure; None = from elevation
+    temperature_c: float  # nominal air temperature for refraction
+    ozone_du: float  # nominal total ozone column [Dobson units]
+
+
+@dataclass(frozen=True)
+class Channel:
+    name: str
+    wavelength_nm: float
+    bandwidth_nm: float
+    temp_coeff_per_k: float = 0.0  # relative responsivity change per kelvin
+    reference_temp_c: float = 25.0
+
+
+@dataclass(frozen=True)
+class Port:
+    url: str  # anything serial.serial_for_url accepts
+    baudrate: int = 19200
+    timeout_s: float = 2.0
+    retries: int = 3
+
+
+@dataclass(frozen=True)
+class PlanSettings:
+    airmass_min: float = 2.0
+    airmass_max: float = 6.0
+    airmass_step: float = 0.25
+    targets: tuple[float, ...] | None = None  # explicit list overrides min/max/step
+    routine_interval_min: float = 0.0  # 0 = no routine cadence between sessions
+    park_after_sunset_min: float = 10.0
+
+    def airmass_targets(self) -> tuple[float, ...]:
+        """Target air masses in ascending order."""
+        if self.targets is not None:
+            return self.targets
+        n = int(math.floor((self.airmass_max - self.airmass_min) / self.airmass_step + 1e-9))
+        return tuple(round(self.airmass_min + i * self.airmass_step, 6) for i in range(n + 1))
+
+
+@dataclass(frozen=True)
+class AcquisitionSettings:
+    burst_samples: int = 10
+    dark_samples: int = 5
+    lock_timeout_s: float = 30.0
+    max_pointing_error_deg: float = 0.2
+
+
+@dataclass(frozen=True)
+class FitSettings:
+    airmass_min: float = 2.0
+    airmass_max: float = 6.0
+    clip_sigma: float = 2.5  # points beyond this many residual SDs are rejected
+    min_fraction_kept: float = 0.6  # never reject more than 1 - this
+    min_points: int = 8
+    min_airmass_span: float = 2.0
+    max_residual_sd: float = 0.01  # in ln V
+    max_cv: float = 0.02  # burst coefficient of variation above which a burst is rejected
+
+
+@dataclass(frozen=True)
+class Config:
+    site: Site
+    channels: tuple[Channel, ...]
+    radiometer: Port
+    tracker: Port
+    plan: PlanSettings = field(default_factory=PlanSettings)
+    acquisition: AcquisitionSettings = field(default_factory=AcquisitionSettings)
+    fit: FitSettings = field(default_factory=FitSettings)
+    store_path: str = "/var/lib/heliotrope/heliotrope.db"
+    source: str = "<memory>"
+
+    @property
+    def tz(self) -> ZoneInfo:
+        return ZoneInfo(self.site.timezone)
+
+    def channel(self, name: str) -> Channel:
+        for ch in self.channels:
+            if ch.name == name:
+                return ch
+        raise KeyError(name)
+
+
+# --------------------------------------------------------------------------- reader
+
+_MISSING = object()
+
+
+class _Section:
+    """A mapping from the file, read through typed getters that track used keys."""
+
+    def __init__(self, data: Any, path: str):
+        if not isinstance(data, dict):
+            raise ConfigError(f"{path or 'top level'}: expected a mapping of keys, got {_kind(data)}")
+        self.data = data
+        self.path = path
+        self.used: set[str] = set()
+
+    def _key(self, key: str) -> str:
+        return f"{self.path}.{key}" if self.path else key
+
+    def _raw(self, key: str, default: Any) -> Any:
+        self.used.add(key)
+        value = self.data.get(key, _MISSING)
+        if value is _MISSING or value is None and default is not _MISSING:
+            if default is _MISSING:
+                raise ConfigError(f"{self._key(key)}: required key is missing")
+            return default
+        return value
+
+    def number(self, key: str, lo: float, hi: float, default: Any = _MISSING,
+               unit: str = "", optional: bool = False) -> float | None:
+        value = self._raw(key, None if optional else default)
+        if value is None:
+            return None
+        rng = f"{lo:g} to {hi:g}{' ' + unit if unit else ''}"
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise ConfigError(f"{self._key(key)}: expected a number from {rng}, got {value!r}")
+        if not math.isfinite(value) or not lo <= value <= hi:
+            raise ConfigError(f"{self._key(key)}: {value!r} is out of range; allowed {rng}")
+        return float(value)
+
+    def integer(self, key: str, lo: int, hi: int, default: Any = _MISSING) -> int:
+        value = self._raw(key, default)
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"{self._key(key)}: expected a whole number from {lo} to {hi}, "
+                              f"got {value!r}")
+        if not lo <= value <= hi:
+            raise ConfigError(f"{self._key(key)}: {value} is out of range; allowed {lo} to {hi}")
+        return value
+
+    def string(self, key: str, default: Any = _MISSING, pattern: str | None = None,
+               hint: str = "") -> str:
+        value = self._raw(key, default)
+        if not isinstance(value, str) or not value.strip():
+            raise ConfigError(f"{self._key(key)}: expected a non-empty text value, got {value!r}")
+        if pattern and not re.fullmatch(pattern, value):
+            raise ConfigError(f"{self._key(key)}: {value!r} is not allowed; {hint}")
+        return value
+
+    def section(self, key: str, required: bool = True) -> _Section | None:
+        value = self._raw(key, _MISSING if required else None)
+        if value is None:
+            return None
+        return _Section(value, self._key(key))
+
+    def items(self, key: str) -> list[tuple[str, Any]]:
+        value = self._raw(key, _MISSING)
+        if not isinstance(value, list) or not value:
+            raise ConfigError(f"{self._key(key)}: expected a non-empty list, got {_kind(value)}")
+        return [(f"{self._key(key)}[{i}]", v) for i, v in enumerate(value)]
+
+    def finish(self) -> None:
+        unknown = sorted(set(self.data) - self.used, key=str)
+        if unknown:
+            known = ", ".join(sorted(self.used))
+            raise ConfigError(f"{self._key(str(unknown[0]))}: unknown key; allowed keys here: {known}")
+
+
+def _kind(value: Any) -> str:
+    if value is None:
+        return "nothing"
+    return {dict: "a mapping", list: "a list", str: "text"}.get(type(value), repr(value))
+
+
+# --------------------------------------------------------------------------- sections
+
+def _read_site(s: _Section) -> Site:
+    site = Site(
+        name=s.string("name"),
+        latitude_deg=s.number("latitude_deg", -90, 90, unit="degrees north"),
+        longitude_deg=s.number("longitude_deg", -180, 180, unit="degrees east"),
+        elevation_m=s.number("elevation_m", -450, 6000, unit="m"),
+        timezone=_timezone(s),
+        pressure_hpa=s.number("pressure_hpa", 400, 1100, unit="hPa", optional=True),
+        temperature_c=s.number("temperature_c", -60, 50, default=10.0, unit="degC"),
+        ozone_du=s.number("ozone_du", 100, 600, default=300.0, unit="DU"),
+    )
+    s.finish()
+    return site
+
+
+def _timezone(s: _Section) -> str:
+    name = s.string("timezone", default="UTC")
+    try:
+        ZoneInfo(name)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise ConfigError(f"{s._key('timezone')}: unknown time zone {name!r}; use an IANA name "
+                          "such as 'UTC' or 'America/Mexico_City'") from None
+    return name
+
+
+def _read_channels(parent: _Section) -> tuple[Channel, ...]:
+    channels = []
+    for path, raw in parent.items("channels"):
+        s = _Section(raw, path)
+        channels.append(Channel(
+            name=s.string("name", pattern=r"[A-Za-z0-9_.-]{1,16}",
+                          hint="use 1 to 16 letters, digits, '_', '.' or '-'"),
+            wavelength_nm=s.number("wavelength_nm", 300, 2500, unit="nm"),
+            bandwidth_nm=s.number("bandwidth_nm", 0.5, 100, default=10.0, unit="nm"),
+            temp_coeff_per_k=s.number("temp_coeff_per_k", -0.02, 0.02, default=0.0, unit="per K"),
+            reference_temp_c=s.number("reference_temp_c", -40, 60, default=25.0, unit="degC"),
+        ))
+        s.finish()
+    names = [c.name for c in channels]
+    for name in names:
+        if names.count(name) > 1:
+            raise ConfigError(f"{parent._key('channels')}: channel name {name!r} is used twice; "
+                              "give every channel its own name")
+    return tuple(channels)
+
+
+def _read_port(s: _Section) -> Port:
+    port = Port(
+        url=s.string("port"),
+        baudrate=s.integer("baudrate", 1200, 921600, default=19200),
+        timeout_s=s.number("timeout_s", 0.05, 60, default=2.0, unit="s"),
+        retries=s.integer("retries", 0, 10, default=3),
+    )
+    s.finish()
+    return port
+
+
+def _read_plan(s: _Section | None) -> PlanSettings:
+    if s is None:
+        return PlanSettings()
+    targets = None
+    if "targets" in s.data:
+        items = s.items("targets")
+        values = []
+        for path, v in items:
+            if isinstance(v, bool) or not isinstance(v, int | float) or not 1.0 <= v <= 40.0:
+                raise ConfigError(f"{path}: expected an air mass from 1 to 40, got {v!r}")
+            values.append(float(v))
+        if any(b <= a for a, b in zip(values, values[1:], strict=False)):
+            raise ConfigError(f"{s._key('targets')}: air masses must be in strictly "
+                              "ascending order with no repeats")
+        targets = tuple(values)
+    plan = PlanSettings(
+        airmass_min=s.number("airmass_min", 1.0, 40.0, default=2.0),
+        airmass_max=s.number("airmass_max", 1.0, 40.0, default=6.0),
+        airmass_step=s.number("airmass_step", 0.01, 10.0, default=0.25),
+        targets=targets,
+        routine_interval_min=s.number("routine_interval_min", 0, 720, default=0.0, unit="min"),
+        park_after_sunset_min=s.number("park_after_sunset_min", 0, 240, default=10.0,
+                                       unit="min"),
+    )
+    if plan.airmass_max < plan.airmass_min:
+        raise ConfigError(f"{s._key('airmass_max')}: {plan.airmass_max:g} is below "
+                          f"airmass_min {plan.airmass_min:g}; allowed airmass_min to 40")
+    s.finish()
+    return plan
+
+
+def _read_acquisition(s: _Section | None) -> AcquisitionSettings:
+    if s is None:
+        return AcquisitionSettings()
+    acq = AcquisitionSettings(
+        burst_samples=s.integer("burst_samples", 1, 1000, default=10),
+        dark_samples=s.integer("dark_samples", 0, 1000, default=5),
+        lock_timeout_s=s.number("lock_timeout_s", 1, 600, default=30.0, unit="s"),
+        max_pointing_error_deg=s.number("max_pointing_error_deg", 0.01, 5, default=0.2,
+                                        unit="degrees"),
+    )
+    s.finish()
+    return acq
+
+
+def _read_fit(s: _Section | None) -> FitSettings:
+    if s is None:
+        return FitSettings()
+    fit = FitSettings(
+        airmass_min=s.number("airmass_min", 1.0, 40.0, default=2.0),
+        airmass_max=s.number("airmass_max", 1.0, 40.0, default=6.0),
+        clip_sigma=s.number("clip_sigma", 1.0, 10.0, default=2.5),
+        min_fraction_kept=s.number("min_fraction_kept", 0.1, 1.0, default=0.6),
+        min_points=s.integer("min_points", 3, 10000, default=8),
+        min_airmass_span=s.number("min_airmass_span", 0.1, 39.0, default=2.0),
+        max_residual_sd=s.number("max_residual_sd", 1e-5, 1.0, default=0.01, unit="in ln V"),
+        max_cv=s.number("max_cv", 1e-5, 1.0, default=0.02),
+    )
+    if fit.airmass_max <= fit.airmass_min:
+        raise ConfigError(f"{s._key('airmass_max')}: {fit.airmass_max:g} must be above "
+                          f"airmass_min {fit.airmass_min:g}; allowed airmass_min to 40")
+    s.finish()
+    return fit
+
+
+def parse_config(data: Any, source: str = "<memory>") -> Config:
+    """Build a :class:`Config` from already-parsed YAML data; raise :class:`ConfigError`."""
+    top = _Section(data, "")
+    site = _read_site(top.section("site"))
+    inst = top.section("instrument")
+    channels = _read_channels(inst)
+    radiometer = _read_port(inst.section("radiometer"))
+    tracker = _read_port(inst.section("tracker"))
+    inst.finish()
+    plan = _read_plan(top.section("plan", required=False))
+    acquisition = _read_acquisition(top.section("acquisition", required=False))
+    fit = _read_fit(top.section("fit", required=False))
+    store = top.section("store", required=False)
+    store_path = "/var/lib/heliotrope/heliotrope.db"
+    if store is not None:
+        store_path = store.string("path", default=store_path)
+        store.finish()
+    top.finish()
+    return Config(site=site, channels=channels, radiometer=radiometer, tracker=tracker,
+                  plan=plan, acquisition=acquisition, fit=fit, store_path=store_path,
+                  source=source)
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a YAML configuration file; raise :class:`ConfigError`."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{path}: no such file; pass the path of a YAML configuration "
+                          "(examples in config/)") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path}: cannot read the file ({exc})") from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        raise ConfigError(f"{path}: not valid YAML{where}: "
+                          f"{getattr(exc, 'problem', None) or exc}") from None
+    try:
+        return parse_config(data, source=str(path))
+    except ConfigError as exc:
+        raise ConfigError(f"{path}: {exc}") from None

@@ -1,0 +1,113 @@
+"""The two device interfaces the daemon talks to.
+
+A driver for another instrument implements one of these classes in one module on
+top of :mod:`drivers.transport`. Everything crossing this seam is plain data in SI
+or trade units named in the field; no driver returns protocol text.
+"""
+
+from __future__ import annotations
+
+import abc
+from dataclasses import dataclass
+from datetime import datetime
+
+
+class DeviceError(Exception):
+    """The device answered, but with an error, or with something that makes no sense."""
+
+
+class LinkError(OSError):
+    """No usable answer: timeout, garbage, checksum failure or a vanished port."""
+
+
+@dataclass(frozen=True)
+class Identity:
+    model: str
+    serial: str
+    firmware: str
+
+
+@dataclass(frozen=True)
+class Burst:
+    """A burst of samples on all channels, in the instrument's channel order.
+
+    ``samples[i][c]`` is sample ``i`` of channel ``c`` [V]. ``duration_s`` is the time
+    from the first to the last sample as the instrument reports it; the burst's mean
+    time is the command time plus half of it.
+    """
+
+    samples: tuple[tuple[float, ...], ...]
+    duration_s: float
+    saturated: tuple[bool, ...]  # per channel: any sample at full scale
+
+
+@dataclass(frozen=True)
+class Housekeeping:
+    detector_temp_c: float
+    case_temp_c: float
+    ambient_temp_c: float
+    supply_v: float
+    humidity_pct: float
+    pressure_hpa: float | None  # None when no barometer is fitted
+
+
+@dataclass(frozen=True)
+class TrackerState:
+    mode: str  # "idle", "slewing", "tracking", "parked", "fault"
+    azimuth_deg: float  # from north, clockwise
+    elevation_deg: float
+    locked: bool  # sun sensor has the sun within its capture range
+    error_deg: float  # pointing error from the sun sensor (0 when not locked)
+
+
+class Radiometer(abc.ABC):
+    @abc.abstractmethod
+    def identify(self) -> Identity: ...
+
+    @abc.abstractmethod
+    def channel_count(self) -> int: ...
+
+    @abc.abstractmethod
+    def set_clock(self, when: datetime) -> None:
+        """Set the instrument's clock to ``when`` (UTC, timezone-aware)."""
+
+    @abc.abstractmethod
+    def read_burst(self, n: int) -> Burst: ...
+
+    @abc.abstractmethod
+    def read_dark(self, n: int) -> Burst:
+        """Shutter closed, ``n`` samples on all channels."""
+
+    @abc.abstractmethod
+    def read_housekeeping(self) -> Housekeeping: ...
+
+    @abc.abstractmethod
+    def reset(self) -> None: ...
+
+    @abc.abstractmethod
+    def close(self) -> None: ...
+
+
+class Tracker(abc.ABC):
+    @abc.abstractmethod
+    def identify(self) -> Identity: ...
+
+    @abc.abstractmethod
+    def set_clock(self, when: datetime) -> None: ...
+
+    @abc.abstractmethod
+    def goto(self, azimuth_deg: float, elevation_deg: float) -> None:
+        """Start a slew; returns at once. Poll :meth:`state` for arrival."""
+
+    @abc.abstractmethod
+    def follow_sun(self, on: bool) -> None:
+        """Closed-loop tracking on the sun sensor on or off."""
+
+    @abc.abstractmethod
+    def state(self) -> TrackerState: ...
+
+    @abc.abstractmethod
+    def park(self) -> None: ...
+
+    @abc.abstractmethod
+    def close(self) -> None: ...
