@@ -126,7 +126,8 @@ class _Section:
 
     def __init__(self, data: Any, path: str):
         if not isinstance(data, dict):
-            raise ConfigError(f"{path or 'top level'}: expected a mapping of keys, got {_kind(data)}")
+            raise ConfigError(f"{path or 'top level'}: expected a mapping of keys, "
+                              f"got {_kind(data)}")
         self.data = data
         self.path = path
         self.used: set[str] = set()
@@ -189,12 +190,15 @@ class _Section:
         unknown = sorted(set(self.data) - self.used, key=str)
         if unknown:
             known = ", ".join(sorted(self.used))
-            raise ConfigError(f"{self._key(str(unknown[0]))}: unknown key; allowed keys here: {known}")
+            raise ConfigError(f"{self._key(str(unknown[0]))}: unknown key; "
+                              f"allowed keys here: {known}")
 
 
 def _kind(value: Any) -> str:
     if value is None:
         return "nothing"
+    if value == []:
+        return "an empty list"
     return {dict: "a mapping", list: "a list", str: "text"}.get(type(value), repr(value))
 
 
