@@ -1,0 +1,427 @@
+"""Langley regression: ln V against air mass, extrapolated to air mass zero.
+
+Pure numpy functions, no I/O. Beer-Lambert-Bouguer for a direct-sun signal,
+
+    V(m) = V0 * exp(-tau * m)   so   ln V = ln V0 - tau * m,
+
+where ``V`` is the dark-corrected signal [V], ``m`` the relative optical air mass
+[dimensionless], ``tau`` the total optical depth [dimensionless] and ``V0`` the
+signal the instrument would read above the atmosphere on that day [V]. A straight
+line through ``(m, ln V)`` gives ``ln V0`` as its intercept and ``-tau`` as its
+slope.
+
+Point selection follows the objective approach of Harrison, L. and Michalsky, J.
+(1994), "Objective algorithms for the retrieval of optical depths from ground-based
+measurements", Applied Optics 33(22):5126-5132: a fixed air-mass window, then the
+worst outlier removed one at a time and the line refitted, while a minimum share
+of the points is always kept.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from daemon.config import FitSettings
+
+# Fewer points leave no degree of freedom for a residual SD.
+MIN_FIT_POINTS = 3
+
+
+@dataclass(frozen=True)
+class LineFit:
+    """Ordinary least-squares line ``y = intercept + slope * x``.
+
+    ``residual_sd`` is sqrt(SSR / (n - 2)); it and the standard errors are NaN when
+    ``n == 2`` (no degree of freedom left).
+    """
+
+    intercept: float
+    slope: float
+    se_intercept: float
+    se_slope: float
+    residual_sd: float
+    n: int
+
+
+@dataclass(frozen=True)
+class FitResult:
+    """One channel's Langley fit over one session.
+
+    Attributes
+    ----------
+    v0 : float
+        Extrapolated signal at air mass zero on the day [V] (NaN when no fit).
+    ln_v0 : float
+        Natural log of ``v0`` (the fitted intercept).
+    tau : float
+        Fitted total optical depth (minus the slope) [dimensionless].
+    v0_rel_unc : float
+        Relative standard uncertainty of ``v0`` [fraction]: the standard error of
+        the intercept in ln V, inflated for correlated residuals.
+    tau_unc : float
+        Standard uncertainty of ``tau``, inflated the same way.
+    n_used, n_total : int
+        Points in the final fit; points given.
+    airmass_min, airmass_max : float
+        Air-mass range of the points used.
+    residual_sd : float
+        Residual standard deviation of the final fit [ln V].
+    lag1_autocorr : float
+        Lag-1 autocorrelation of the residuals ordered by air mass.
+    used : tuple of bool
+        Aligned with the input: True where the point is in the final fit.
+    accepted : bool
+        All acceptance criteria passed.
+    reasons : tuple of str
+        Why the fit is not accepted (failed criteria first, then what was dropped);
+        empty when accepted.
+    notes : tuple of str
+        What was dropped or adjusted and why, whether accepted or not.
+    """
+
+    v0: float
+    ln_v0: float
+    tau: float
+    v0_rel_unc: float
+    tau_unc: float
+    n_used: int
+    n_total: int
+    airmass_min: float
+    airmass_max: float
+    residual_sd: float
+    lag1_autocorr: float
+    used: tuple[bool, ...]
+    accepted: bool
+    reasons: tuple[str, ...]
+    notes: tuple[str, ...] = ()
+
+
+def fit_line(x: ArrayLike, y: ArrayLike) -> LineFit:
+    """Ordinary least squares of ``y`` on ``x`` in closed form.
+
+    Centred sums keep the result accurate when ``x`` sits far from zero.
+
+    Parameters
+    ----------
+    x, y : array_like
+        Equal-length 1-D arrays of finite values, at least two points, ``x`` not all equal.
+
+    Returns
+    -------
+    LineFit
+    """
+    x = np.asarray(x, dtype=float).ravel()
+    y = np.asarray(y, dtype=float).ravel()
+    if x.shape != y.shape:
+        raise ValueError(f"fit_line: x has {x.size} values but y has {y.size}; pass equal lengths")
+    n = x.size
+    if n < 2:
+        raise ValueError(f"fit_line: {n} point(s) given; a line needs at least 2")
+    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+        raise ValueError("fit_line: x and y must be finite; drop NaN or infinite values first")
+    x_mean = x.mean()
+    y_mean = y.mean()
+    dx = x - x_mean
+    sxx = float(np.dot(dx, dx))
+    if sxx == 0.0:
+        raise ValueError(f"fit_line: all x values equal {x[0]:g}; a line needs a spread in x")
+    slope = float(np.dot(dx, y - y_mean)) / sxx
+    intercept = float(y_mean - slope * x_mean)
+    if n > 2:
+        resid = y - (intercept + slope * x)
+        residual_sd = math.sqrt(float(np.dot(resid, resid)) / (n - 2))
+        se_slope = residual_sd / math.sqrt(sxx)
+        se_intercept = residual_sd * math.sqrt(1.0 / n + x_mean * x_mean / sxx)
+    else:
+        residual_sd = se_slope = se_intercept = math.nan
+    return LineFit(intercept=intercept, slope=slope, se_intercept=se_intercept,
+                   se_slope=se_slope, residual_sd=residual_sd, n=n)
+
+
+def lag1_autocorrelation(residuals: ArrayLike) -> float:
+    """Lag-1 autocorrelation coefficient of a residual series (in the given order).
+
+    ``r1 = sum(e[t] e[t+1]) / sum(e[t]^2)``; zero when the series has no variance or
+    fewer than three values.
+    """
+    e = np.asarray(residuals, dtype=float).ravel()
+    if e.size < 3:
+        return 0.0
+    e = e - e.mean()
+    denom = float(np.dot(e, e))
+    if denom == 0.0:
+        return 0.0
+    return float(np.dot(e[:-1], e[1:])) / denom
+
+
+# Above this the AR(1) model makes the intercept variance grow without bound as
+# phi -> 1; a cap keeps the stated uncertainty finite (it is already about 5x the
+# white-noise error for 17 points).
+MAX_AR1_PHI = 0.95
+
+
+@dataclass(frozen=True)
+class Correlation:
+    """How correlated the residuals of a line fit are, and what that does to the errors.
+
+    ``r1`` is the observed lag-1 autocorrelation, ``phi`` the AR(1) parameter
+    estimated from it, ``inflation`` the factor (>= 1) that widens the OLS standard
+    errors, and ``n_eff`` the equivalent number of independent points.
+    """
+
+    r1: float
+    phi: float
+    inflation: float
+    n_eff: float
+
+
+def residual_correlation(x: ArrayLike, residuals: ArrayLike) -> Correlation:
+    """Widening of OLS errors for residuals that are correlated from point to point.
+
+    Parameters
+    ----------
+    x : array_like
+        Regressor values of the fitted points, in the order the correlation is
+        judged in (the caller sorts by air mass).
+    residuals : array_like
+        OLS residuals of a line fit on ``x``, same order.
+
+    Notes
+    -----
+    The residuals are modelled as a first-order autoregressive series in point
+    order, correlation ``phi^|i-j|``. A straight-line fit removes slow drifts, so
+    the raw lag-1 autocorrelation of the residuals is biased low (about -2/n with
+    no correlation at all); ``phi`` is therefore chosen so that the expected lag-1
+    autocorrelation of the residuals of this very design matches the observed one
+    (moment matching, bisection). The residual variance is re-estimated as
+    ``SSR / tr(M R)`` (``M`` the residual-maker matrix, ``R`` the correlation
+    matrix) and the intercept variance taken from the OLS sandwich
+    ``c' R c`` (common practice, no source). The effective sample size idea is that
+    of Santer, B. D. et al. (2000), J. Geophys. Res. 105(D6):7337-7356 (from memory);
+    ``n_eff = n / inflation**2`` is reported in its spirit. The inflation is never
+    below 1: anticorrelated residuals do not narrow the error.
+    """
+    xs = np.asarray(x, dtype=float).ravel()
+    e = np.asarray(residuals, dtype=float).ravel()
+    n = xs.size
+    r1 = lag1_autocorrelation(e)
+    if n <= 3 or float(np.dot(e, e)) == 0.0:
+        return Correlation(r1=r1, phi=0.0, inflation=1.0, n_eff=float(n))
+    design = np.column_stack([np.ones(n), xs])
+    weights = np.linalg.solve(design.T @ design, design.T)  # rows: intercept, slope weights
+    resid_maker = np.eye(n) - design @ weights
+    lag = np.zeros((n, n))
+    i = np.arange(n - 1)
+    lag[i, i + 1] = lag[i + 1, i] = 0.5
+    mam = resid_maker @ lag @ resid_maker
+    distance = np.abs(np.arange(n)[:, None] - np.arange(n)[None, :])
+
+    def expected_r1(phi: float) -> float:
+        corr = phi ** distance
+        return float(np.sum(mam * corr) / np.sum(resid_maker * corr))
+
+    if r1 <= expected_r1(0.0):
+        return Correlation(r1=r1, phi=0.0, inflation=1.0, n_eff=float(n))
+    lo, hi = 0.0, MAX_AR1_PHI
+    if r1 >= expected_r1(hi):
+        phi = hi
+    else:
+        for _ in range(40):
+            mid = 0.5 * (lo + hi)
+            if expected_r1(mid) < r1:
+                lo = mid
+            else:
+                hi = mid
+        phi = 0.5 * (lo + hi)
+    corr = phi ** distance
+    c = weights[0]
+    var_white = float(c @ c) / (n - 2)  # per unit SSR
+    var_corr = float(c @ corr @ c) / float(np.sum(resid_maker * corr))
+    inflation = max(1.0, math.sqrt(var_corr / var_white))
+    return Correlation(r1=r1, phi=phi, inflation=inflation, n_eff=n / inflation**2)
+
+
+def _no_fit(n_total: int, used: np.ndarray, reasons: list[str], notes: list[str]) -> FitResult:
+    nan = math.nan
+    return FitResult(v0=nan, ln_v0=nan, tau=nan, v0_rel_unc=nan, tau_unc=nan, n_used=0,
+                     n_total=n_total, airmass_min=nan, airmass_max=nan, residual_sd=nan,
+                     lag1_autocorr=nan, used=tuple(bool(u) for u in used), accepted=False,
+                     reasons=tuple(reasons + notes), notes=tuple(notes))
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" if n == 1 else f"{n} {word}s"
+
+
+def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) -> FitResult:
+    """Fit one channel's session: ln V against air mass with outlier rejection.
+
+    Parameters
+    ----------
+    airmass : array_like
+        Relative optical air mass of each point [dimensionless].
+    signal : array_like
+        Dark-corrected direct-sun signal of each point [V], same length.
+    settings : FitSettings
+        Air-mass window, clipping, and acceptance criteria.
+
+    Returns
+    -------
+    FitResult
+        Never raises for bad data: with fewer than three usable points every number
+        is NaN, ``accepted`` is False and ``reasons`` says why.
+
+    Notes
+    -----
+    Points outside ``[settings.airmass_min, settings.airmass_max]`` and points whose
+    signal is not finite or not positive are left out. The worst point beyond
+    ``settings.clip_sigma`` residual SDs is removed and the line refitted, one point
+    at a time, while at least ``settings.min_fraction_kept`` of the usable points in
+    the window (and never fewer than three) stay in the fit.
+
+    The relative uncertainty of V0 is the standard error of the intercept of
+    ln V, which is exactly the relative error of V0 to first order. Residuals that
+    drift together along the air mass (changing haze, a thin cirrus band) are not
+    independent, so the standard error is widened for their lag-1 autocorrelation
+    (see :func:`residual_correlation`).
+    """
+    m = np.asarray(airmass, dtype=float).ravel()
+    v = np.asarray(signal, dtype=float).ravel()
+    if m.shape != v.shape:
+        raise ValueError(f"fit_session: {m.size} air masses but {v.size} signals; "
+                         "pass one signal per air mass")
+    n_total = m.size
+    used = np.zeros(n_total, dtype=bool)
+    notes: list[str] = []
+    lo, hi = settings.airmass_min, settings.airmass_max
+
+    nonfinite_sig = ~np.isfinite(v)
+    with np.errstate(invalid="ignore"):
+        nonpositive_sig = np.isfinite(v) & (v <= 0.0)
+        bad_sig = nonfinite_sig | nonpositive_sig
+        finite_m = np.isfinite(m)
+        in_window = finite_m & (m >= lo) & (m <= hi)
+    if nonfinite_sig.any():
+        notes.append(f"{_plural(int(nonfinite_sig.sum()), 'point')} dropped: signal not finite")
+    if nonpositive_sig.any():
+        notes.append(f"{_plural(int(nonpositive_sig.sum()), 'point')} dropped: "
+                     "signal zero or negative")
+    n_bad_m = int((~finite_m & ~bad_sig).sum())
+    if n_bad_m:
+        notes.append(f"{_plural(n_bad_m, 'point')} dropped: air mass not finite")
+    n_outside = int((finite_m & ~in_window & ~bad_sig).sum())
+    if n_outside:
+        notes.append(f"{_plural(n_outside, 'point')} outside the air-mass window "
+                     f"{lo:g} to {hi:g}")
+
+    candidates = np.flatnonzero(in_window & ~bad_sig)
+    n_window = candidates.size
+    if n_window < MIN_FIT_POINTS:
+        what = "no usable points" if n_window == 0 else f"only {_plural(n_window, 'usable point')}"
+        return _no_fit(n_total, used, [
+            f"{what} of {n_total} in the air-mass window {lo:g} to {hi:g}; "
+            f"a Langley fit needs at least {MIN_FIT_POINTS}"], notes)
+    x = m[candidates]
+    y = np.log(v[candidates])
+    if np.ptp(x) == 0.0:
+        return _no_fit(n_total, used, [
+            f"all {n_window} usable points are at air mass {x[0]:g}; "
+            "a Langley fit needs a spread in air mass"], notes)
+
+    keep = np.ones(n_window, dtype=bool)
+    min_keep = max(MIN_FIT_POINTS, math.ceil(settings.min_fraction_kept * n_window - 1e-9))
+    n_clipped = 0
+    fit = fit_line(x, y)
+    while int(keep.sum()) - 1 >= min_keep and fit.residual_sd > 0.0:
+        resid = np.abs(y - (fit.intercept + fit.slope * x))
+        resid[~keep] = -1.0
+        worst = int(np.argmax(resid))
+        if resid[worst] <= settings.clip_sigma * fit.residual_sd:
+            break
+        trial = keep.copy()
+        trial[worst] = False
+        if np.ptp(x[trial]) == 0.0:
+            break
+        keep = trial
+        n_clipped += 1
+        fit = fit_line(x[keep], y[keep])
+    if n_clipped:
+        notes.append(f"{_plural(n_clipped, 'point')} rejected as outliers beyond "
+                     f"{settings.clip_sigma:g} residual SDs")
+    if fit.residual_sd > 0.0:
+        beyond = np.abs(y - (fit.intercept + fit.slope * x))[keep] > (
+            settings.clip_sigma * fit.residual_sd)
+        if beyond.any():
+            notes.append(f"{_plural(int(beyond.sum()), 'point')} beyond "
+                         f"{settings.clip_sigma:g} residual SDs kept: no more than "
+                         f"{n_window - min_keep} of {n_window} may be rejected")
+
+    xu, yu = x[keep], y[keep]
+    n_used = xu.size
+    order = np.argsort(xu, kind="stable")
+    resid_sorted = (yu - (fit.intercept + fit.slope * xu))[order]
+    corr = residual_correlation(xu[order], resid_sorted)
+    inflation = corr.inflation
+    if inflation > 1.0:
+        notes.append(f"residuals correlated along air mass (lag-1 r = {corr.r1:.2f}, "
+                     f"about {corr.n_eff:.1f} independent points): "
+                     f"uncertainty widened {inflation:.2f} times")
+    used[candidates[keep]] = True
+
+    tau = -fit.slope
+    span = float(xu.max() - xu.min())
+    reasons: list[str] = []
+    if n_used < settings.min_points:
+        reasons.append(f"only {n_used} points used, fewer than the required "
+                       f"{settings.min_points}")
+    if span < settings.min_airmass_span:
+        reasons.append(f"air-mass span {span:.2f} below the required "
+                       f"{settings.min_airmass_span:.2f}")
+    if not fit.residual_sd <= settings.max_residual_sd:
+        reasons.append(f"residual SD {fit.residual_sd:.4f} in ln V above the limit "
+                       f"{settings.max_residual_sd:.4f}")
+    if not tau > 0.0:
+        reasons.append(f"fitted optical depth {tau:.4f} is not positive")
+    accepted = not reasons
+    return FitResult(
+        v0=math.exp(fit.intercept), ln_v0=fit.intercept, tau=tau,
+        v0_rel_unc=fit.se_intercept * inflation, tau_unc=fit.se_slope * inflation,
+        n_used=n_used, n_total=n_total,
+        airmass_min=float(xu.min()), airmass_max=float(xu.max()),
+        residual_sd=fit.residual_sd, lag1_autocorr=corr.r1,
+        used=tuple(bool(u) for u in used), accepted=accepted,
+        reasons=() if accepted else tuple(reasons + notes), notes=tuple(notes))
+
+
+def v0_at_1au(v0_day: float, earth_sun_factor: float) -> float:
+    """Normalise a V0 fitted on one day to the mean Earth-Sun distance.
+
+    Parameters
+    ----------
+    v0_day : float
+        V0 fitted on the day [V].
+    earth_sun_factor : float
+        ``(r0 / r)^2`` on the day [dimensionless], r the Earth-Sun distance and r0
+        one astronomical unit (about 1.034 in early January, 0.967 in early July).
+
+    Returns
+    -------
+    float
+        V0 at 1 AU [V]: ``v0_day / earth_sun_factor``.
+
+    Notes
+    -----
+    Irradiance falls with the square of the distance from the sun, so the signal
+    above the atmosphere on the day is ``V0_1au * (r0 / r)^2``. Dividing by the
+    factor removes the yearly +/-3.4 % swing and makes V0 from different days
+    comparable. A NaN ``v0_day`` gives NaN.
+    """
+    factor = float(earth_sun_factor)
+    if not math.isfinite(factor) or factor <= 0.0:
+        raise ValueError(f"earth_sun_factor must be a positive number near 1 "
+                         f"((r0/r)^2 on the day), got {earth_sun_factor!r}")
+    return float(v0_day) / factor

@@ -1,0 +1,578 @@
+"""The service's SQLite store (writer side, sqlite-utils).
+
+One file, WAL journal, foreign keys on, schema versioned with sqlite-utils
+``Migrations``. Every measurement (its row, its raw samples, its saturation flags
+and its housekeeping) goes in with one atomic transaction: it is in the store
+completely or not at all. Raw samples are kept, so every result can be re-derived.
+
+Durability: ``synchronous=FULL``. In WAL mode NORMAL already protects the file from
+corruption, but a power cut can still lose the last commits; FULL syncs the WAL at
+each commit. Commits are rare here (a measurement every few minutes, a heartbeat a
+minute), the board at the site runs from a solar battery and an SD card, and a lost
+measurement near air mass 6 cannot be taken again that day, so the extra fsync is
+worth its few milliseconds.
+
+The operator's commands never use this module: see :mod:`daemon.storeread`.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import math
+import sqlite3
+import threading
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from sqlite_utils import Database
+from sqlite_utils.migrations import Migrations
+
+from daemon.storeread import StoreError, check_plan_date
+from drivers.interfaces import Housekeeping
+
+__all__ = ["ChannelStats", "MeasurementRecord", "SessionPoint", "Store", "StoreError",
+           "utc_iso"]
+
+SESSIONS = ("am", "pm", "routine")
+FIT_SESSIONS = ("am", "pm")
+STATUSES = ("ok", "failed")
+EVENT_LEVELS = ("debug", "info", "warning", "error", "critical")
+BUSY_TIMEOUT_S = 5.0
+_SQLITE_MAGIC = b"SQLite format 3\x00"
+
+# --------------------------------------------------------------------------- schema
+
+migrations = Migrations("heliotrope")
+
+
+@migrations()
+def m001_initial(db: Database) -> None:
+    db["measurements"].create({
+        "id": int, "time_utc": str, "plan_date": str, "session": str,
+        "target_airmass": float, "status": str, "failure": str,
+        "apparent_zenith_deg": float, "azimuth_deg": float, "airmass": float,
+        "ozone_airmass": float, "earth_sun_factor": float, "pressure_hpa": float,
+        "pointing_error_deg": float, "locked": int, "duration_s": float,
+        "n_samples": int, "n_dark_samples": int,
+    }, pk="id", not_null=["time_utc", "plan_date", "session", "status"])
+    db["measurements"].create_index(["plan_date", "session"])
+    db["measurements"].create_index(["time_utc"])
+
+    # Channel order and saturation per measurement; samples name their channel.
+    db["measurement_channels"].create({
+        "measurement_id": int, "channel_index": int, "channel": str, "saturated": int,
+    }, pk=("measurement_id", "channel"), not_null=["channel_index", "saturated"],
+        foreign_keys=[("measurement_id", "measurements", "id")])
+
+    # Primary key order serves the per-channel aggregates of session_points().
+    db["samples"].create({
+        "measurement_id": int, "kind": str, "channel": str, "sample_index": int,
+        "value_v": float,
+    }, pk=("measurement_id", "kind", "channel", "sample_index"),
+        foreign_keys=[("measurement_id", "measurements", "id")])
+
+    db["housekeeping"].create({
+        "measurement_id": int, "detector_temp_c": float, "case_temp_c": float,
+        "ambient_temp_c": float, "supply_v": float, "humidity_pct": float,
+        "pressure_hpa": float,
+    }, pk="measurement_id", foreign_keys=[("measurement_id", "measurements", "id")])
+
+    db["events"].create({
+        "id": int, "time_utc": str, "level": str, "kind": str, "message": str, "detail": str,
+    }, pk="id", not_null=["time_utc", "level", "kind", "message"])
+    db["events"].create_index(["time_utc"])
+
+    db["plans"].create({"plan_date": str, "created_utc": str, "plan_json": str},
+                       pk="plan_date", not_null=["created_utc", "plan_json"])
+
+    db["session_results"].create({
+        "plan_date": str, "session": str, "channel": str, "wavelength_nm": float,
+        "v0": float, "v0_1au": float, "v0_rel_unc": float, "tau": float,
+        "n_used": int, "n_total": int, "airmass_min": float, "airmass_max": float,
+        "accepted": int, "reasons": str, "notes": str, "earth_sun_factor": float,
+        "residual_sd": float, "fitted_utc": str,
+    }, pk=("plan_date", "session", "channel"), not_null=["accepted", "fitted_utc"])
+
+    db["meta"].create({"key": str, "value": str, "updated_utc": str}, pk="key")
+
+
+# Every migration is pending on an empty database: that lists the names this version knows.
+KNOWN_MIGRATIONS = frozenset(m.name for m in migrations.pending(
+    Database(memory=True, execute_plugins=False)))
+
+# --------------------------------------------------------------------------- records
+
+
+def utc_iso(when: _dt.datetime) -> str:
+    """ISO 8601 text of an aware datetime in UTC (``...+00:00``, microseconds).
+
+    The fixed width keeps text order equal to time order. Naive datetimes raise
+    ValueError: their zone is a guess, and a guess in a stored timestamp is a bug.
+    """
+    if not isinstance(when, _dt.datetime):
+        raise ValueError(f"expected a timezone-aware datetime, got {when!r}")
+    if when.tzinfo is None or when.utcoffset() is None:
+        raise ValueError(f"naive datetime {when.isoformat()} has no time zone; pass an aware "
+                         "UTC datetime (datetime.now(timezone.utc) or the injected clock)")
+    return when.astimezone(_dt.UTC).isoformat(timespec="microseconds")
+
+
+def _num(value: Any) -> float | None:
+    """A float for the store, or None (NULL) for missing or non-finite values."""
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _jsonable(obj: Any) -> Any:
+    """Make ``obj`` strict-JSON safe: NaN and infinities become null, times become text."""
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, _dt.datetime):
+        return utc_iso(obj)
+    if isinstance(obj, _dt.date):
+        return obj.isoformat()
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple | set | frozenset):
+        return [_jsonable(v) for v in obj]
+    if hasattr(obj, "item") and callable(obj.item):  # numpy scalars
+        return _jsonable(obj.item())
+    if isinstance(obj, str | int | bool) or obj is None:
+        return obj
+    raise ValueError(f"cannot store a value of type {type(obj).__name__} as JSON: {obj!r}")
+
+
+def _dumps(obj: Any) -> str:
+    return json.dumps(_jsonable(obj), sort_keys=True, allow_nan=False)
+
+
+@dataclass(frozen=True)
+class MeasurementRecord:
+    """Everything about one measurement at one target, as the acquisition took it.
+
+    ``sun[i][c]`` and ``dark[i][c]`` are sample ``i`` of channel ``c`` [V] in the
+    order of ``channels``; ``dark`` may be empty. Geometry is computed at the
+    burst's mean time. A failed measurement carries ``status='failed'``, a
+    ``failure`` text, and whatever was read before the failure.
+    """
+
+    time_utc: _dt.datetime
+    plan_date: str
+    session: str  # 'am', 'pm' or 'routine'
+    target_airmass: float | None
+    status: str  # 'ok' or 'failed'
+    failure: str | None
+    apparent_zenith_deg: float | None
+    azimuth_deg: float | None
+    airmass: float | None
+    ozone_airmass: float | None
+    earth_sun_factor: float | None  # (r0/r)^2 on the day
+    pressure_hpa: float | None
+    pointing_error_deg: float | None
+    locked: bool
+    duration_s: float | None
+    channels: tuple[str, ...]
+    sun: tuple[tuple[float, ...], ...]
+    dark: tuple[tuple[float, ...], ...] = ()
+    saturated: tuple[bool, ...] = ()
+    housekeeping: Housekeeping | None = None
+
+
+@dataclass(frozen=True)
+class ChannelStats:
+    """Per-channel aggregates of one measurement's raw samples [V]."""
+
+    sun_mean_v: float | None
+    sun_sd_v: float | None  # sample standard deviation; None with fewer than 2 samples
+    n_sun: int
+    dark_mean_v: float | None  # None when no dark samples were read
+    n_dark: int
+    saturated: bool
+
+
+@dataclass(frozen=True)
+class SessionPoint:
+    """One 'ok' measurement of a session, reduced for the Langley fit."""
+
+    measurement_id: int
+    time_utc: _dt.datetime
+    target_airmass: float | None
+    apparent_zenith_deg: float | None
+    azimuth_deg: float | None
+    airmass: float | None
+    ozone_airmass: float | None
+    earth_sun_factor: float | None
+    pressure_hpa: float | None
+    pointing_error_deg: float | None
+    locked: bool
+    duration_s: float | None
+    housekeeping: Housekeeping | None
+    channels: dict[str, ChannelStats] = field(default_factory=dict)
+
+
+def _check_record(rec: MeasurementRecord) -> None:
+    """Reject a malformed record before anything is written."""
+    if rec.session not in SESSIONS:
+        raise ValueError(f"session must be one of {', '.join(SESSIONS)}; got {rec.session!r}")
+    if rec.status not in STATUSES:
+        raise ValueError(f"status must be 'ok' or 'failed'; got {rec.status!r}")
+    if rec.status == "failed" and not rec.failure:
+        raise ValueError("a failed measurement needs a failure text saying what went wrong")
+    check_plan_date(rec.plan_date)
+    n_ch = len(rec.channels)
+    if len(set(rec.channels)) != n_ch:
+        raise ValueError(f"channel names repeat in {rec.channels!r}; give each its own name")
+    if rec.status == "ok" and n_ch == 0:
+        raise ValueError("an 'ok' measurement needs at least one channel")
+    for kind, samples in (("sun", rec.sun), ("dark", rec.dark)):
+        for i, row in enumerate(samples):
+            if len(row) != n_ch:
+                raise ValueError(f"{kind} sample {i} has {len(row)} values for {n_ch} channels "
+                                 f"{rec.channels!r}; every sample needs one value per channel")
+    if rec.saturated and len(rec.saturated) != n_ch:
+        raise ValueError(f"saturated has {len(rec.saturated)} flags for {n_ch} channels")
+    if rec.status == "ok" and not rec.sun:
+        raise ValueError("an 'ok' measurement needs at least one sun sample")
+
+
+# --------------------------------------------------------------------------- store
+
+
+class Store:
+    """The service's read-write handle on the store. Open with :meth:`Store.open`.
+
+    Safe to share between the service's threads: calls are serialised by a lock.
+    """
+
+    def __init__(self, db: Database, path: Path):
+        self.db = db
+        self.path = path
+        self._lock = threading.RLock()
+
+    @property
+    def conn(self) -> sqlite3.Connection:
+        """The underlying connection (for :mod:`daemon.storeread` queries and tests)."""
+        return self.db.conn
+
+    # ------------------------------------------------------------------ opening
+
+    @classmethod
+    def open(cls, path: str | Path) -> Store:
+        """Open or create the store at ``path`` and bring its schema up to date.
+
+        Creates missing parent directories. An existing file that is not an SQLite
+        database, or fails ``PRAGMA quick_check``, raises :class:`StoreError` and is
+        left exactly as it was.
+        """
+        p = Path(path).expanduser()
+        if p.is_dir():
+            raise StoreError(f"{p}: is a directory; store.path must name a file")
+        try:
+            p.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise StoreError(f"{p.parent}: cannot create the store's directory ({exc}); "
+                             "create it or point store.path somewhere writable") from None
+        if p.exists():
+            _check_header(p)
+        try:
+            conn = sqlite3.connect(str(p), timeout=BUSY_TIMEOUT_S, check_same_thread=False)
+        except sqlite3.Error as exc:
+            raise StoreError(f"{p}: cannot open the store ({exc}); check the path and its "
+                             "permissions") from None
+        try:
+            _quick_check(conn, p)
+            db = Database(conn, execute_plugins=False)
+            db.enable_wal()
+            if db.journal_mode != "wal":
+                raise StoreError(f"{p}: the file system does not allow SQLite's WAL mode "
+                                 f"(journal mode is {db.journal_mode!r}); put the store on "
+                                 "a local disk")
+            db.execute("PRAGMA foreign_keys = ON")
+            db.execute("PRAGMA synchronous = FULL")
+            _apply_migrations(db, p)
+        except StoreError:
+            conn.close()
+            raise
+        except sqlite3.Error as exc:
+            conn.close()
+            raise StoreError(f"{p}: cannot prepare the store ({exc})") from None
+        return cls(db, p)
+
+    def close(self) -> None:
+        """Close the connection; the last connection out checkpoints the WAL."""
+        with self._lock:
+            self.db.close()
+
+    def __enter__(self) -> Store:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # ------------------------------------------------------------------ writing
+
+    def record_measurement(self, rec: MeasurementRecord) -> int:
+        """Write one measurement with its samples and housekeeping atomically.
+
+        Returns
+        -------
+        int
+            The new measurement id.
+        """
+        _check_record(rec)
+        time_text = utc_iso(rec.time_utc)
+        hk = rec.housekeeping
+        row = {
+            "time_utc": time_text,
+            "plan_date": rec.plan_date,
+            "session": rec.session,
+            "target_airmass": _num(rec.target_airmass),
+            "status": rec.status,
+            "failure": rec.failure,
+            "apparent_zenith_deg": _num(rec.apparent_zenith_deg),
+            "azimuth_deg": _num(rec.azimuth_deg),
+            "airmass": _num(rec.airmass),
+            "ozone_airmass": _num(rec.ozone_airmass),
+            "earth_sun_factor": _num(rec.earth_sun_factor),
+            "pressure_hpa": _num(rec.pressure_hpa),
+            "pointing_error_deg": _num(rec.pointing_error_deg),
+            "locked": int(bool(rec.locked)),
+            "duration_s": _num(rec.duration_s),
+            "n_samples": len(rec.sun),
+            "n_dark_samples": len(rec.dark),
+        }
+        saturated = rec.saturated or (False,) * len(rec.channels)
+        with self._lock, self.db.atomic():
+            table = self.db["measurements"].insert(row)
+            mid = int(table.last_pk)
+            self.db["measurement_channels"].insert_all(
+                {"measurement_id": mid, "channel_index": i, "channel": name,
+                 "saturated": int(bool(sat))}
+                for i, (name, sat) in enumerate(zip(rec.channels, saturated, strict=True)))
+            self.db["samples"].insert_all(_sample_rows(mid, rec))
+            if hk is not None:
+                self.db["housekeeping"].insert({
+                    "measurement_id": mid,
+                    "detector_temp_c": _num(hk.detector_temp_c),
+                    "case_temp_c": _num(hk.case_temp_c),
+                    "ambient_temp_c": _num(hk.ambient_temp_c),
+                    "supply_v": _num(hk.supply_v),
+                    "humidity_pct": _num(hk.humidity_pct),
+                    "pressure_hpa": _num(hk.pressure_hpa),
+                })
+        return mid
+
+    def record_event(self, time_utc: _dt.datetime, level: str, kind: str, message: str,
+                     detail: Mapping[str, Any] | None = None) -> int:
+        """Log an event (fault, restart, warning) with optional JSON ``detail``; return its id."""
+        if level not in EVENT_LEVELS:
+            raise ValueError(f"event level must be one of {', '.join(EVENT_LEVELS)}; "
+                             f"got {level!r}")
+        if not kind or not message:
+            raise ValueError("an event needs a kind and a message")
+        row = {"time_utc": utc_iso(time_utc), "level": level, "kind": kind,
+               "message": message, "detail": None if detail is None else _dumps(detail)}
+        with self._lock, self.db.atomic():
+            return int(self.db["events"].insert(row).last_pk)
+
+    def save_plan(self, plan_date: str | _dt.date, plan_dict: Mapping[str, Any],
+                  created_utc: _dt.datetime | None = None) -> None:
+        """Store (or replace) the plan of one local date as JSON.
+
+        ``created_utc`` should come from the injected clock; the system clock is
+        used when it is left out.
+        """
+        created = created_utc if created_utc is not None else _dt.datetime.now(_dt.UTC)
+        row = {"plan_date": check_plan_date(plan_date), "created_utc": utc_iso(created),
+               "plan_json": _dumps(plan_dict)}
+        with self._lock, self.db.atomic():
+            self.db["plans"].insert(row, replace=True)
+
+    def save_session_results(self, plan_date: str | _dt.date, session: str,
+                             rows: Iterable[Mapping[str, Any]],
+                             fitted_utc: _dt.datetime | None = None) -> None:
+        """Store one session's fit results; a re-fit replaces rows of the same channel.
+
+        Each row needs the contract keys ``channel``, ``wavelength_nm``, ``v0``,
+        ``v0_1au``, ``v0_rel_unc``, ``tau``, ``n_used``, ``n_total``,
+        ``airmass_min``, ``airmass_max``, ``accepted`` and ``reasons``, and may carry
+        ``notes``, ``earth_sun_factor``, ``residual_sd`` and ``fitted_utc``. NaN is
+        stored as NULL. ``fitted_utc`` defaults to the system clock.
+        """
+        date = check_plan_date(plan_date)
+        if session not in FIT_SESSIONS:
+            raise ValueError(f"session results are per 'am' or 'pm' session; got {session!r}")
+        default_fitted = fitted_utc if fitted_utc is not None else _dt.datetime.now(_dt.UTC)
+        records = []
+        for r in rows:
+            for key, want in (("date", date), ("session", session)):
+                if key in r and r[key] != want:
+                    raise ValueError(f"row for channel {r.get('channel')!r} has {key} "
+                                     f"{r[key]!r} but is saved under {want!r}")
+            fitted = r.get("fitted_utc", default_fitted)
+            records.append({
+                "plan_date": date, "session": session, "channel": str(r["channel"]),
+                "wavelength_nm": _num(r["wavelength_nm"]),
+                "v0": _num(r["v0"]), "v0_1au": _num(r["v0_1au"]),
+                "v0_rel_unc": _num(r["v0_rel_unc"]), "tau": _num(r["tau"]),
+                "n_used": int(r["n_used"]), "n_total": int(r["n_total"]),
+                "airmass_min": _num(r["airmass_min"]), "airmass_max": _num(r["airmass_max"]),
+                "accepted": int(bool(r["accepted"])),
+                "reasons": _dumps(list(r["reasons"])),
+                "notes": _dumps(list(r.get("notes", ()))),
+                "earth_sun_factor": _num(r.get("earth_sun_factor")),
+                "residual_sd": _num(r.get("residual_sd")),
+                "fitted_utc": fitted if isinstance(fitted, str) else utc_iso(fitted),
+            })
+        with self._lock, self.db.atomic():
+            self.db["session_results"].insert_all(records, replace=True)
+
+    def heartbeat(self, now: _dt.datetime) -> None:
+        """Record that the service is alive at ``now`` (aware UTC)."""
+        text = utc_iso(now)
+        with self._lock, self.db.atomic():
+            self.db["meta"].insert({"key": "heartbeat_utc", "value": text, "updated_utc": text},
+                                   replace=True)
+
+    # ------------------------------------------------------------------ reading
+
+    def session_points(self, plan_date: str | _dt.date, session: str) -> list[SessionPoint]:
+        """The 'ok' measurements of one session with per-channel sample aggregates.
+
+        Means, sample standard deviations and counts come from SQL aggregates over
+        the raw samples (two passes: the mean first, then squared deviations from
+        it, which avoids the cancellation of the sum-of-squares formula).
+        """
+        date = check_plan_date(plan_date)
+        if session not in SESSIONS:
+            raise ValueError(f"session must be one of {', '.join(SESSIONS)}; got {session!r}")
+        with self._lock:
+            conn = self.db.conn
+            meas = conn.execute(_POINTS_SQL, (date, session)).fetchall()
+            stats = conn.execute(_STATS_SQL, (date, session)).fetchall()
+        by_id: dict[int, dict[str, ChannelStats]] = {}
+        for mid, channel, saturated, sun_mean, n_sun, sun_ss, dark_mean, n_dark in stats:
+            n_sun = int(n_sun or 0)
+            sd = math.sqrt(sun_ss / (n_sun - 1)) if n_sun >= 2 and sun_ss is not None else None
+            by_id.setdefault(mid, {})[channel] = ChannelStats(
+                sun_mean_v=sun_mean, sun_sd_v=sd, n_sun=n_sun,
+                dark_mean_v=dark_mean if n_dark else None, n_dark=int(n_dark or 0),
+                saturated=bool(saturated))
+        points = []
+        for r in meas:
+            hk = None
+            if r[13]:
+                hk = Housekeeping(detector_temp_c=_nan(r[14]), case_temp_c=_nan(r[15]),
+                                  ambient_temp_c=_nan(r[16]), supply_v=_nan(r[17]),
+                                  humidity_pct=_nan(r[18]), pressure_hpa=r[19])
+            points.append(SessionPoint(
+                measurement_id=r[0], time_utc=_dt.datetime.fromisoformat(r[1]),
+                target_airmass=r[2], apparent_zenith_deg=r[3], azimuth_deg=r[4],
+                airmass=r[5], ozone_airmass=r[6], earth_sun_factor=r[7], pressure_hpa=r[8],
+                pointing_error_deg=r[9], locked=bool(r[10]), duration_s=r[11],
+                housekeeping=hk, channels=by_id.get(r[0], {})))
+        return points
+
+
+def _nan(value: float | None) -> float:
+    return math.nan if value is None else value
+
+
+_POINTS_SQL = """
+SELECT m.id, m.time_utc, m.target_airmass, m.apparent_zenith_deg, m.azimuth_deg, m.airmass,
+       m.ozone_airmass, m.earth_sun_factor, m.pressure_hpa, m.pointing_error_deg, m.locked,
+       m.duration_s, m.n_samples, h.measurement_id IS NOT NULL, h.detector_temp_c,
+       h.case_temp_c, h.ambient_temp_c, h.supply_v, h.humidity_pct, h.pressure_hpa
+FROM measurements m LEFT JOIN housekeeping h ON h.measurement_id = m.id
+WHERE m.plan_date = ? AND m.session = ? AND m.status = 'ok'
+ORDER BY m.time_utc, m.id
+"""
+
+_STATS_SQL = """
+WITH sel AS (
+    SELECT id FROM measurements WHERE plan_date = ?1 AND session = ?2 AND status = 'ok'
+), mean AS (
+    SELECT s.measurement_id, s.channel, s.kind, AVG(s.value_v) AS mean_v,
+           COUNT(s.value_v) AS n
+    FROM samples s JOIN sel ON sel.id = s.measurement_id
+    GROUP BY s.measurement_id, s.channel, s.kind
+), spread AS (
+    SELECT s.measurement_id, s.channel,
+           SUM((s.value_v - mean.mean_v) * (s.value_v - mean.mean_v)) AS ss
+    FROM samples s JOIN mean ON mean.measurement_id = s.measurement_id
+         AND mean.channel = s.channel AND mean.kind = s.kind
+    WHERE s.kind = 'sun'
+    GROUP BY s.measurement_id, s.channel
+)
+SELECT mc.measurement_id, mc.channel, mc.saturated, sun.mean_v, sun.n, spread.ss,
+       dark.mean_v, dark.n
+FROM measurement_channels mc JOIN sel ON sel.id = mc.measurement_id
+LEFT JOIN mean sun ON sun.measurement_id = mc.measurement_id AND sun.channel = mc.channel
+     AND sun.kind = 'sun'
+LEFT JOIN mean dark ON dark.measurement_id = mc.measurement_id AND dark.channel = mc.channel
+     AND dark.kind = 'dark'
+LEFT JOIN spread ON spread.measurement_id = mc.measurement_id AND spread.channel = mc.channel
+ORDER BY mc.measurement_id, mc.channel_index
+"""
+
+
+def _sample_rows(mid: int, rec: MeasurementRecord) -> Iterable[dict[str, Any]]:
+    for kind, samples in (("sun", rec.sun), ("dark", rec.dark)):
+        for i, values in enumerate(samples):
+            for name, value in zip(rec.channels, values, strict=True):
+                yield {"measurement_id": mid, "kind": kind, "channel": name,
+                       "sample_index": i, "value_v": _num(value)}
+
+
+def _check_header(p: Path) -> None:
+    """Refuse a non-empty file that does not start with the SQLite magic string.
+
+    Checked before SQLite touches the file, so a wrong path never gets a WAL or
+    journal written next to (or into) someone else's file.
+    """
+    try:
+        with p.open("rb") as fh:
+            head = fh.read(len(_SQLITE_MAGIC))
+    except OSError as exc:
+        raise StoreError(f"{p}: cannot read the store ({exc}); check its permissions") from None
+    if head and head != _SQLITE_MAGIC:
+        raise StoreError(f"{p}: not an SQLite database; the file was left untouched. Check "
+                         "store.path, or move the file aside so a new store can be created")
+
+
+def _quick_check(conn: sqlite3.Connection, p: Path) -> None:
+    try:
+        rows = conn.execute("PRAGMA quick_check").fetchall()
+    except sqlite3.OperationalError as exc:
+        raise StoreError(f"{p}: cannot read the store ({exc}); check its permissions and "
+                         "that no other program holds it locked") from None
+    except sqlite3.DatabaseError as exc:
+        raise StoreError(f"{p}: the store is damaged ({exc}); the file was left untouched. "
+                         "Move it aside (keep it for recovery with the sqlite3 shell's "
+                         ".recover) and restart to begin a new store") from None
+    problems = [r[0] for r in rows if r[0] != "ok"]
+    if problems:
+        shown = "; ".join(problems[:3])
+        raise StoreError(f"{p}: the store failed its integrity check ({shown}); the file was "
+                         "left untouched. Move it aside (keep it for recovery with the sqlite3 "
+                         "shell's .recover) and restart to begin a new store")
+
+
+def _apply_migrations(db: Database, p: Path) -> None:
+    applied = {m.name for m in migrations.applied(db)}
+    unknown = sorted(applied - KNOWN_MIGRATIONS)
+    if unknown:
+        raise StoreError(f"{p}: the store has schema changes this version does not know "
+                         f"({', '.join(unknown)}); it was written by a newer heliotrope. "
+                         "Upgrade heliotrope, or point store.path at another file")
+    migrations.apply(db)
+
+
+def sample_matrix(values: Sequence[Sequence[float]]) -> tuple[tuple[float, ...], ...]:
+    """Freeze a samples-by-channels list of lists into the tuple shape records use."""
+    return tuple(tuple(float(v) for v in row) for row in values)

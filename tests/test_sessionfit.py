@@ -1,0 +1,225 @@
+"""Session fit end to end on a temporary store filled with synthetic measurements."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import math
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+from daemon import storeread
+from daemon.config import Channel, parse_config
+from daemon.sessionfit import fit_stored_session, temperature_corrected
+from daemon.store import MeasurementRecord, Store
+from drivers.interfaces import Housekeeping
+
+UTC = dt.UTC
+DAY = "2025-03-21"
+T_AM = dt.datetime(2025, 3, 21, 13, 0, tzinfo=UTC)
+T_PM = dt.datetime(2025, 3, 21, 22, 0, tzinfo=UTC)
+AIRMASS = np.arange(2.0, 6.0001, 0.25)  # 17 targets, as the default plan
+DARK_V = 0.0042
+TEMP_COEFF = 0.003  # per K: near-infrared silicon is 0.1-0.5 %/K (REFERENCES.md, from memory)
+
+
+def spencer_factor(doy: int) -> float:
+    # (r0/r)^2 of Spencer (1971), Search 2(5):172 (citation from memory; REFERENCES.md).
+    g = 2 * math.pi * (doy - 1) / 365
+    return (1.000110 + 0.034221 * math.cos(g) + 0.001280 * math.sin(g)
+            + 0.000719 * math.cos(2 * g) + 0.000077 * math.sin(2 * g))
+
+
+ES_FACTOR = spencer_factor(80)  # 21 March
+
+# Pico Sereno Station channels with invented V0 at 1 AU and total optical depths
+# (the Rayleigh part near Bodhaine et al. 1999 at about 650 hPa, REFERENCES.md).
+TRUTH = {
+    "380": (0.9500, 0.33), "440": (1.4200, 0.19), "500": (1.6500, 0.12),
+    "675": (1.3100, 0.06), "870": (1.1200, 0.03), "1020": (0.8800, 0.025),
+}
+WAVELENGTH = {"380": 380, "440": 440, "500": 500, "675": 675, "870": 870, "1020": 1020}
+
+
+def make_config(**fit):
+    channels = [{"name": n, "wavelength_nm": WAVELENGTH[n], "bandwidth_nm": 10}
+                for n in TRUTH]
+    channels[-1]["temp_coeff_per_k"] = TEMP_COEFF  # 1020 nm is temperature sensitive
+    channels[-1]["reference_temp_c"] = 25.0
+    data = {
+        "site": {"name": "Pico Sereno Station", "latitude_deg": 19.95,
+                 "longitude_deg": -101.30, "elevation_m": 3650,
+                 "timezone": "America/Mexico_City", "ozone_du": 260},
+        "instrument": {"radiometer": {"port": "loop://"}, "tracker": {"port": "loop://"},
+                       "channels": channels},
+        "fit": {"airmass_min": 2.0, "airmass_max": 6.0, **fit},
+    }
+    return parse_config(data)
+
+
+def synthetic_record(i: int, m: float, t0: dt.datetime, session: str, rng, *,
+                     detector_temp_c: float = 25.0, cloud: float = 0.0,
+                     burst_cv: float = 2e-4, **changes) -> MeasurementRecord:
+    names = tuple(TRUTH)
+    true_v = np.array([v0 * ES_FACTOR * math.exp(-tau * m) for v0, tau in TRUTH.values()])
+    gain = np.ones(len(names))
+    gain[-1] = 1 + TEMP_COEFF * (detector_temp_c - 25.0)  # the detector's response
+    net = true_v * gain * math.exp(-cloud)
+    sun = net * (1 + rng.normal(0.0, burst_cv, (10, len(names)))) + DARK_V
+    dark = DARK_V + rng.normal(0.0, 2e-5, (5, len(names)))
+    rec = MeasurementRecord(
+        time_utc=t0 + dt.timedelta(minutes=6 * i), plan_date=DAY, session=session,
+        target_airmass=float(m), status="ok", failure=None,
+        apparent_zenith_deg=float(np.degrees(np.arccos(1 / m))), azimuth_deg=100.0,
+        airmass=float(m), ozone_airmass=float(m) * 0.99, earth_sun_factor=ES_FACTOR,
+        pressure_hpa=650.0, pointing_error_deg=0.03, locked=True, duration_s=1.0,
+        channels=names, sun=tuple(map(tuple, sun.tolist())),
+        dark=tuple(map(tuple, dark.tolist())), saturated=(False,) * len(names),
+        housekeeping=Housekeeping(detector_temp_c=detector_temp_c, case_temp_c=20.0,
+                                  ambient_temp_c=3.0, supply_v=12.2, humidity_pct=15.0,
+                                  pressure_hpa=650.0))
+    return replace(rec, **changes)
+
+
+@pytest.fixture
+def filled_store(tmp_path):
+    """A clear afternoon with one cloudy, one saturated, one unlocked and one failed burst."""
+    store = Store.open(tmp_path / "heliotrope.db")
+    rng = np.random.default_rng(2025)
+    temps = np.linspace(12.0, 34.0, AIRMASS.size)  # the detector warms over the afternoon
+    for i, m in enumerate(AIRMASS):
+        extra = {}
+        if i == 4:
+            extra = {"cloud": 0.05, "burst_cv": 0.05}  # a cloud edge during the burst
+        elif i == 8:
+            extra = {"saturated": (False, False, True, False, False, False)}
+        elif i == 12:
+            extra = {"locked": False}
+        store.record_measurement(synthetic_record(i, m, T_PM, "pm", rng,
+                                                  detector_temp_c=temps[i], **extra))
+    store.record_measurement(synthetic_record(99, 3.0, T_PM, "pm", rng, status="failed",
+                                              failure="tracker timeout", sun=(), dark=()))
+    yield store
+    store.close()
+
+
+def test_clear_afternoon_recovers_v0_at_1au(filled_store):
+    config = make_config()
+    rows = fit_stored_session(filled_store, config, DAY, "pm", T_PM + dt.timedelta(hours=2))
+    assert [r["channel"] for r in rows] == list(TRUTH)
+    for r in rows:
+        v0, tau = TRUTH[r["channel"]]
+        assert tuple(r) == storeread.RESULT_KEYS
+        assert r["date"] == DAY and r["session"] == "pm"
+        assert r["accepted"] is True and r["reasons"] == []
+        # Invented truth (demo scenario); tolerance from the 2e-4 burst noise.
+        assert r["v0_1au"] == pytest.approx(v0, rel=5e-4)
+        assert r["v0"] == pytest.approx(v0 * ES_FACTOR, rel=5e-4)
+        assert r["tau"] == pytest.approx(tau, abs=2e-4)
+        assert 0 < r["v0_rel_unc"] < 5e-4
+        assert r["n_total"] == AIRMASS.size  # the failed burst is not a point
+        assert r["n_used"] == AIRMASS.size - (3 if r["channel"] == "500" else 2)
+        assert (r["airmass_min"], r["airmass_max"]) == (2.0, 6.0)
+    json.dumps(rows, allow_nan=False)
+
+    conn = storeread.open_readonly(filled_store.path)
+    try:
+        back = storeread.latest_results(conn)
+        notes = conn.execute("SELECT notes FROM session_results WHERE channel = '500'"
+                             ).fetchone()[0]
+    finally:
+        conn.close()
+    key = {(r["session"], r["channel"]): r for r in back}
+    for r in rows:
+        assert key[("pm", r["channel"])] == r
+    notes = json.loads(notes)
+    assert "1 burst screened as cloudy: burst coefficient of variation above 0.02" in notes
+    assert "1 burst screened: saturated" in notes
+    assert any(n.startswith("1 burst screened: sun lock not confirmed") for n in notes)
+
+
+def test_temperature_correction_matters_at_1020_nm(filled_store):
+    # Without the correction the warming detector tilts the Langley line: the test
+    # would catch a correction applied the wrong way round or not at all.
+    config = make_config()
+    uncorrected = replace(config, channels=tuple(
+        replace(ch, temp_coeff_per_k=0.0) for ch in config.channels))
+    good = fit_stored_session(filled_store, config, DAY, "pm", T_PM)[-1]
+    bad = fit_stored_session(filled_store, uncorrected, DAY, "pm", T_PM)[-1]
+    v0 = TRUTH["1020"][0]
+    assert abs(good["v0_1au"] / v0 - 1) < 5e-4
+    assert abs(bad["v0_1au"] / v0 - 1) > 0.01
+
+
+def test_temperature_corrected_formula():
+    ch = Channel(name="1020", wavelength_nm=1020, bandwidth_nm=10, temp_coeff_per_k=0.002,
+                 reference_temp_c=25.0)
+    assert temperature_corrected(1.0, 35.0, ch) == pytest.approx(1 / 1.02, rel=1e-15)
+    assert temperature_corrected(1.0, math.nan, ch) == 1.0
+    assert temperature_corrected(1.0, 35.0, replace(ch, temp_coeff_per_k=0.0)) == 1.0
+
+
+def test_refit_replaces_and_a_short_session_gives_reasons(filled_store):
+    config = make_config(min_airmass_span=5.0)
+    first = fit_stored_session(filled_store, make_config(), DAY, "pm", T_PM)
+    rows = fit_stored_session(filled_store, config, DAY, "pm", T_PM + dt.timedelta(hours=1))
+    assert all(r["accepted"] for r in first)
+    assert not any(r["accepted"] for r in rows)
+    assert "air-mass span 4.00 below the required 5.00" in rows[0]["reasons"]
+    # Screening that explains the missing points is listed after the failed criteria.
+    assert any("screened: saturated" in x for x in rows[2]["reasons"])
+    n = filled_store.conn.execute("SELECT count(*), count(DISTINCT fitted_utc) "
+                                  "FROM session_results").fetchone()
+    assert n == (len(TRUTH), 1)
+
+
+def test_empty_session_and_unknown_channel_give_null_numbers(tmp_path):
+    store = Store.open(tmp_path / "h.db")
+    try:
+        rows = fit_stored_session(store, make_config(), DAY, "am", T_AM)
+        assert len(rows) == len(TRUTH)
+        for r in rows:
+            assert r["accepted"] is False and r["n_total"] == 0 and r["n_used"] == 0
+            assert r["v0"] is None and r["v0_1au"] is None and r["tau"] is None
+            assert r["reasons"] == ["no usable points of 0 in the air-mass window 2 to 6; "
+                                    "a Langley fit needs at least 3"]
+        json.dumps(rows, allow_nan=False)
+
+        rng = np.random.default_rng(1)
+        for i, m in enumerate(AIRMASS):
+            store.record_measurement(synthetic_record(i, m, T_AM, "am", rng))
+        config = make_config()
+        extra = replace(config.channels[0], name="940", wavelength_nm=940)
+        config = replace(config, channels=config.channels + (extra,))
+        rows = fit_stored_session(store, config, DAY, "am", T_AM)
+        assert all(r["accepted"] for r in rows[:-1])
+        water = rows[-1]
+        assert water["channel"] == "940" and water["accepted"] is False
+        assert "17 bursts without samples of channel 940" in water["reasons"]
+    finally:
+        store.close()
+
+
+def test_dark_signal_is_subtracted(tmp_path):
+    # With a large dark offset, forgetting to subtract it would bend ln V and bias V0.
+    store = Store.open(tmp_path / "h.db")
+    try:
+        rng = np.random.default_rng(4)
+        for i, m in enumerate(AIRMASS):
+            rec = synthetic_record(i, m, T_AM, "am", rng)
+            offset = 0.2
+            rec = replace(rec, sun=tuple(tuple(v + offset for v in s) for s in rec.sun),
+                          dark=tuple(tuple(v + offset for v in s) for s in rec.dark))
+            store.record_measurement(rec)
+        rows = fit_stored_session(store, make_config(), DAY, "am", T_AM)
+        for r in rows:
+            assert r["v0_1au"] == pytest.approx(TRUTH[r["channel"]][0], rel=5e-4)
+    finally:
+        store.close()
+
+
+def test_only_am_and_pm_are_fitted(filled_store):
+    with pytest.raises(ValueError, match="'am' and 'pm'"):
+        fit_stored_session(filled_store, make_config(), DAY, "routine", T_PM)
