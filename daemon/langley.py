@@ -29,6 +29,9 @@ from daemon.config import FitSettings
 
 # Fewer points leave no degree of freedom for a residual SD.
 MIN_FIT_POINTS = 3
+# Relative widening of the air-mass window at both edges: a target planned on the edge
+# is measured seconds after its time (lock, half a burst) and must still count.
+WINDOW_EDGE_TOLERANCE = 0.01
 
 
 @dataclass(frozen=True)
@@ -277,7 +280,9 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
 
     Notes
     -----
-    Points outside ``[settings.airmass_min, settings.airmass_max]`` and points whose
+    Points outside ``[settings.airmass_min, settings.airmass_max]`` (widened by
+    ``WINDOW_EDGE_TOLERANCE`` of each edge, because a target planned exactly on the
+    edge is measured a few seconds late and lands a hair outside) and points whose
     signal is not finite or not positive are left out. The worst point beyond
     ``settings.clip_sigma`` residual SDs is removed and the line refitted, one point
     at a time, while at least ``settings.min_fraction_kept`` of the usable points in
@@ -304,7 +309,8 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
         nonpositive_sig = np.isfinite(v) & (v <= 0.0)
         bad_sig = nonfinite_sig | nonpositive_sig
         finite_m = np.isfinite(m)
-        in_window = finite_m & (m >= lo) & (m <= hi)
+        in_window = (finite_m & (m >= lo * (1 - WINDOW_EDGE_TOLERANCE))
+                     & (m <= hi * (1 + WINDOW_EDGE_TOLERANCE)))
     if nonfinite_sig.any():
         notes.append(f"{_plural(int(nonfinite_sig.sum()), 'point')} dropped: signal not finite")
     if nonpositive_sig.any():
