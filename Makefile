@@ -24,7 +24,8 @@ lint: $(STAMP)
 	$(BIN)/ruff check daemon drivers sim_instrument tests benchmarks
 
 bench: $(STAMP)
-	$(BIN)/python benchmarks/run_all.py
+	$(BIN)/python -m pip install --quiet -e '.[test,bench]'
+	set -e; for f in benchmarks/bench_*.py; do echo "== $$f"; $(BIN)/python $$f; done
 
 clean:
 	rm -rf $(VENV) build *.egg-info
