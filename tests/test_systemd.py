@@ -1,0 +1,60 @@
+"""The unit files pass systemd's own checks: `systemd-analyze verify` prints nothing and
+the service's exposure rating (`systemd-analyze security --offline=yes`) is 2.0 or lower.
+
+The units name the installed location /opt/heliotrope/.venv; verify checks that the
+ExecStart binary exists, so the test points that prefix at this checkout's venv."""
+
+from __future__ import annotations
+
+import re
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+UNITS = Path(__file__).resolve().parent.parent / "systemd"
+ANALYZE = shutil.which("systemd-analyze")
+pytestmark = pytest.mark.skipif(ANALYZE is None,
+                                reason="systemd-analyze not installed (Debian: systemd)")
+
+
+def _installed_copy(tmp_path: Path, name: str) -> Path:
+    text = (UNITS / name).read_text()
+    bindir = str(Path(sys.executable).parent) + "/"
+    assert "/opt/heliotrope/.venv/bin/" in text
+    unit = tmp_path / name
+    unit.write_text(text.replace("/opt/heliotrope/.venv/bin/", bindir))
+    return unit
+
+
+@pytest.mark.parametrize("name", ["heliotroped.service", "heliotrope-sim.service"])
+def test_verify_prints_nothing(tmp_path, name):
+    unit = _installed_copy(tmp_path, name)
+    proc = subprocess.run([ANALYZE, "verify", str(unit)], capture_output=True, text=True,
+                          timeout=60)
+    assert proc.returncode == 0 and proc.stdout == "" and proc.stderr == "", (
+        proc.stdout + proc.stderr)
+
+
+@pytest.mark.parametrize("name,limit", [("heliotroped.service", 2.0),
+                                        ("heliotrope-sim.service", 2.0)])
+def test_exposure_rating(tmp_path, name, limit):
+    unit = _installed_copy(tmp_path, name)
+    proc = subprocess.run([ANALYZE, "security", "--offline=yes", str(unit)],
+                          capture_output=True, text=True, timeout=60)
+    found = re.search(r"Overall exposure level for \S+: (\d+\.\d+)", proc.stdout)
+    assert found, proc.stdout[-2000:] + proc.stderr
+    assert float(found.group(1)) <= limit
+
+
+def test_service_unit_has_the_field_settings():
+    text = (UNITS / "heliotroped.service").read_text()
+    for line in ["Type=notify", "WatchdogSec=", "Restart=on-failure", "StateDirectory=",
+                 "ConfigurationDirectory=", "After=time-sync.target", "ProtectSystem=strict",
+                 "ProtectHome=yes", "NoNewPrivileges=yes", "PrivateTmp=yes",
+                 "DevicePolicy=closed", "DeviceAllow=char-ttyUSB rw",
+                 "DeviceAllow=char-ttyACM rw", "RestrictAddressFamilies=AF_UNIX",
+                 "SystemCallFilter=@system-service", "SupplementaryGroups=dialout"]:
+        assert line in text, line
