@@ -96,8 +96,35 @@ class SimClock:
         self.sleep(ahead)
 
     def advance(self, seconds: float) -> None:
-        """Move the clock forward (tests: a step of the wall clock, work that took time)."""
+        """Move the clock forward (tests: work that took time)."""
         self.sleep(seconds)
+
+    def step_wall(self, seconds: float) -> None:
+        """Step the wall clock alone, as NTP does on a board without a real-time clock."""
+        self._start += timedelta(seconds=seconds)
 
     def wake(self) -> None:
         pass
+
+
+class StepDetector:
+    """Notices the wall clock stepping against the monotonic clock.
+
+    Each :meth:`check` compares how far wall time and monotonic time moved since the
+    previous check; a difference beyond ``threshold_s`` is a step (an NTP sync after a
+    boot without a real-time clock, an operator's ``date -s``). Slow slewing stays below
+    the threshold and is absorbed.
+    """
+
+    def __init__(self, clock: Clock, threshold_s: float = 60.0):
+        self.clock = clock
+        self.threshold_s = threshold_s
+        self._wall = clock.now()
+        self._mono = clock.monotonic()
+
+    def check(self) -> float | None:
+        """The step in seconds (positive: wall clock jumped ahead) or None."""
+        wall, mono = self.clock.now(), self.clock.monotonic()
+        step = (wall - self._wall).total_seconds() - (mono - self._mono)
+        self._wall, self._mono = wall, mono
+        return step if abs(step) > self.threshold_s else None

@@ -84,6 +84,12 @@ class Radiometer(abc.ABC):
     @abc.abstractmethod
     def reset(self) -> None: ...
 
+    def link_counters(self) -> dict[str, int]:
+        """Link faults seen so far (timeouts, bad checksums, reconnects...), by kind.
+
+        Drivers without a counted link return an empty mapping."""
+        return {}
+
     @abc.abstractmethod
     def close(self) -> None: ...
 
@@ -108,6 +114,12 @@ class Tracker(abc.ABC):
 
     @abc.abstractmethod
     def park(self) -> None: ...
+
+    def link_counters(self) -> dict[str, int]:
+        """Link faults seen so far (timeouts, bad checksums, reconnects...), by kind.
+
+        Drivers without a counted link return an empty mapping."""
+        return {}
 
     @abc.abstractmethod
     def close(self) -> None: ...

@@ -10,6 +10,7 @@ reported then, with a hint (see :class:`drivers.transport.PortUnavailable`).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from datetime import datetime
 
@@ -110,6 +111,9 @@ class SerialRadiometer(Radiometer):
         self.transport.exchange(p.RST, timeout_s=p.reply_timeout_s(p.RST))
         self._channels = None
 
+    def link_counters(self) -> dict[str, int]:
+        return dataclasses.asdict(self.transport.counters)
+
     def close(self) -> None:
         self.transport.close()
 
@@ -147,6 +151,9 @@ class SerialTracker(Tracker):
 
     def park(self) -> None:
         self.transport.exchange(p.PARK)
+
+    def link_counters(self) -> dict[str, int]:
+        return dataclasses.asdict(self.transport.counters)
 
     def close(self) -> None:
         self.transport.close()

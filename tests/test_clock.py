@@ -39,3 +39,19 @@ def test_real_clock_is_aware_utc_and_wakes_early():
     m0 = clock.monotonic()
     clock.sleep_until(clock.now() + timedelta(hours=1))  # would be an hour without wake()
     assert clock.monotonic() - m0 < 600  # returned: woken, not an hour later
+
+
+def test_step_detector_sees_steps_of_the_wall_clock_only():
+    from daemon.clock import StepDetector
+
+    clock = SimClock(datetime(2027, 2, 15, 15, 0, tzinfo=UTC))
+    watch = StepDetector(clock, threshold_s=60)
+    clock.advance(3600)  # an hour of ordinary time: no step
+    assert watch.check() is None
+    clock.step_wall(-600)  # NTP pulls the clock back ten minutes
+    assert watch.check() == pytest.approx(-600)
+    clock.step_wall(45)  # under the threshold: absorbed
+    assert watch.check() is None
+    clock.advance(30)
+    clock.step_wall(600)
+    assert watch.check() == pytest.approx(600)

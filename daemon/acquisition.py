@@ -1,0 +1,289 @@
+"""Acquisition: what happens at each planned moment of a day.
+
+:class:`Station` ties the devices, the store and the clock together and knows how to
+measure one target (point, lock, burst, dark, housekeeping, geometry, store) and how
+to fit a finished session. :func:`run_day` walks a day's plan with any clock: the
+simulated clock for the demo and the tests, the real clock in the service. Device
+trouble never escapes from here: it becomes an event and, for a target, a measurement
+stored as failed, and the day goes on.
+"""
+
+from __future__ import annotations
+
+import logging
+import sqlite3
+import threading
+from dataclasses import dataclass
+from datetime import UTC, date, datetime, timedelta
+
+from daemon import solar
+from daemon.clock import Clock
+from daemon.config import Config
+from daemon.planner import Plan, PlanEvent, PlannedTarget, plan_day
+from daemon.sessionfit import fit_stored_session
+from daemon.store import MeasurementRecord, Store
+from drivers.interfaces import (
+    Burst,
+    DeviceError,
+    LinkError,
+    Radiometer,
+    Tracker,
+    TrackerState,
+)
+
+log = logging.getLogger(__name__)
+
+LINK_FAULT_KINDS = ("retries", "timeouts", "crc_errors", "stale", "garbage", "reconnects",
+                    "device_errors")
+POLL_S = 1.0  # tracker state polling interval while waiting for a lock
+SLEW_TIMEOUT_S = 180.0  # a full-circle slew of a slow tracker, with margin
+
+
+class NoSunLock(Exception):
+    """The tracker did not confirm the sun within the allowed time."""
+
+
+class Abandoned(Exception):
+    """The service is stopping; the measurement in progress is dropped whole."""
+
+
+@dataclass(frozen=True)
+class TargetOutcome:
+    target: PlannedTarget
+    measurement_id: int | None
+    ok: bool
+    message: str
+
+
+class Station:
+    """The devices, the store and the clock of one site."""
+
+    def __init__(self, config: Config, radiometer: Radiometer, tracker: Tracker,
+                 store: Store, clock: Clock):
+        self.config = config
+        self.radiometer = radiometer
+        self.tracker = tracker
+        self.store = store
+        self.clock = clock
+        self.pressure_hpa = solar.site_pressure_hpa(config.site)
+        self.stopping = threading.Event()
+        self._link_seen: dict[str, dict[str, int]] = {}
+
+    # ------------------------------------------------------------------ events
+
+    def event(self, level: str, kind: str, message: str, detail: dict | None = None) -> None:
+        """Log and store an event. A store that cannot be written (a full disk) is logged
+        to the journal and survived: losing an event must never stop acquisition."""
+        getattr(log, level if level in ("info", "warning", "error") else "info")(message)
+        try:
+            self.store.record_event(self.clock.now(), level, kind, message, detail)
+        except sqlite3.Error as exc:
+            log.error("could not store event %r: %s", kind, exc)
+
+    def record_link_faults(self) -> None:
+        """Store one event per device whose link counters grew since the last look
+        (garbage, bad checksums, timeouts, reconnects recovered by the transport)."""
+        for name, device in (("radiometer", self.radiometer), ("tracker", self.tracker)):
+            now = device.link_counters()
+            before = self._link_seen.get(name, {})
+            grown = {k: v - before.get(k, 0) for k, v in now.items()
+                     if k in LINK_FAULT_KINDS and v > before.get(k, 0)}
+            self._link_seen[name] = now
+            if grown:
+                what = ", ".join(f"{v} {k.replace('_', ' ')}" for k, v in sorted(grown.items()))
+                self.event("warning", "link_fault", f"{name} link: {what} (recovered)",
+                           {"device": name, **grown})
+
+    # ------------------------------------------------------------------ devices
+
+    def sync_clocks(self) -> None:
+        """Set both devices' clocks from ours. Done at every target and after every wait,
+        so a simulated clock that jumps keeps the bench instruments in step."""
+        now = self.clock.now()
+        self.radiometer.set_clock(now)
+        self.tracker.set_clock(now)
+
+    def _pause(self) -> None:
+        """One polling interval; gives up at once when the service is stopping."""
+        if self.stopping.is_set():
+            raise Abandoned("service stopping")
+        self.clock.sleep(POLL_S)
+        if self.stopping.is_set():
+            raise Abandoned("service stopping")
+        self.sync_clocks()
+
+    def _wait_for_lock(self) -> TrackerState:
+        acq = self.config.acquisition
+        start = self.clock.monotonic()
+        state = self.tracker.state()
+        while state.mode == "slewing" and self.clock.monotonic() - start < SLEW_TIMEOUT_S:
+            self._pause()
+            state = self.tracker.state()
+        lock_start = self.clock.monotonic()
+        while True:
+            if state.locked and state.error_deg <= acq.max_pointing_error_deg:
+                return state
+            if self.clock.monotonic() - lock_start >= acq.lock_timeout_s:
+                why = ("still slewing" if state.mode == "slewing" else
+                       f"pointing error {state.error_deg:.3f} deg" if state.locked else
+                       "sun sensor reports no lock")
+                raise NoSunLock(f"no sun lock after {acq.lock_timeout_s:g} s ({why})")
+            self._pause()
+            state = self.tracker.state()
+
+    # ------------------------------------------------------------------ one target
+
+    def measure(self, target: PlannedTarget, plan_date: date) -> TargetOutcome:
+        """Point, lock, read and store one target.
+
+        Never raises for device trouble or a store that cannot be written: a failed
+        target is stored as a failed measurement with its reason, and a store write
+        that fails (a full disk) leaves the store as it was and is logged.
+        """
+        what = f"{target.session} target m={target.airmass:g}"
+        try:
+            rec = self._acquire(target, plan_date)
+            ok, message = True, "ok"
+        except Abandoned:
+            self.event("warning", "abandoned", f"{what}: abandoned, service stopping")
+            return TargetOutcome(target, None, False, "abandoned")
+        except (LinkError, DeviceError, NoSunLock) as exc:
+            message = f"{what}: {exc}"
+            kind = "no_lock" if isinstance(exc, NoSunLock) else "device_fault"
+            self.event("warning", kind, message, {"error": type(exc).__name__})
+            rec = self._failed_record(target, plan_date, str(exc))
+            ok = False
+        finally:
+            self.record_link_faults()
+        try:
+            mid = self.store.record_measurement(rec)
+        except sqlite3.Error as exc:
+            log.error("%s: measurement not stored: %s", what, exc)
+            self.event("error", "store_error", f"{what}: measurement not stored: {exc}")
+            return TargetOutcome(target, None, False, f"not stored: {exc}")
+        return TargetOutcome(target, mid, ok, message)
+
+    def _acquire(self, target: PlannedTarget, plan_date: date) -> MeasurementRecord:
+        acq = self.config.acquisition
+        self.sync_clocks()
+        aim = solar.geometry_at(self.clock.now(), self.config.site, self.pressure_hpa)
+        self.tracker.goto(aim.azimuth_deg, aim.apparent_elevation_deg)
+        self.tracker.follow_sun(True)
+        self._wait_for_lock()
+        self.sync_clocks()
+        started = self.clock.now()
+        burst = self.radiometer.read_burst(acq.burst_samples)
+        dark = (self.radiometer.read_dark(acq.dark_samples) if acq.dark_samples
+                else Burst(samples=(), duration_s=0.0, saturated=()))
+        housekeeping = self.radiometer.read_housekeeping()
+        after = self.tracker.state()
+        self._check_shape(burst, dark)
+        mean_time = started + timedelta(seconds=burst.duration_s / 2)
+        pressure = housekeeping.pressure_hpa or self.pressure_hpa
+        geo = solar.geometry_at(mean_time, self.config.site, pressure)
+        return MeasurementRecord(
+            time_utc=mean_time, plan_date=plan_date.isoformat(), session=target.session,
+            target_airmass=target.airmass, status="ok", failure=None,
+            apparent_zenith_deg=geo.apparent_zenith_deg, azimuth_deg=geo.azimuth_deg,
+            airmass=geo.airmass, ozone_airmass=geo.ozone_airmass,
+            earth_sun_factor=geo.earth_sun_factor, pressure_hpa=pressure,
+            pointing_error_deg=after.error_deg, locked=after.locked,
+            duration_s=burst.duration_s, channels=self._channel_names(),
+            sun=burst.samples, dark=dark.samples, saturated=burst.saturated,
+            housekeeping=housekeeping,
+        )
+
+    def _channel_names(self) -> tuple[str, ...]:
+        return tuple(ch.name for ch in self.config.channels)
+
+    def _check_shape(self, burst: Burst, dark: Burst) -> None:
+        n = len(self.config.channels)
+        for name, b in (("burst", burst), ("dark", dark)):
+            for row in b.samples:
+                if len(row) != n:
+                    raise DeviceError(f"{name} has {len(row)} channels but the configuration "
+                                      f"lists {n}; check instrument.channels")
+
+    def _failed_record(self, target: PlannedTarget, plan_date: date,
+                       why: str) -> MeasurementRecord:
+        now = self.clock.now()
+        geo = solar.geometry_at(now, self.config.site, self.pressure_hpa)
+        return MeasurementRecord(
+            time_utc=now, plan_date=plan_date.isoformat(), session=target.session,
+            target_airmass=target.airmass, status="failed", failure=why,
+            apparent_zenith_deg=geo.apparent_zenith_deg, azimuth_deg=geo.azimuth_deg,
+            airmass=geo.airmass, ozone_airmass=geo.ozone_airmass,
+            earth_sun_factor=geo.earth_sun_factor, pressure_hpa=self.pressure_hpa,
+            pointing_error_deg=None, locked=False, duration_s=0.0,
+            channels=self._channel_names(), sun=(), dark=(), saturated=(),
+            housekeeping=None,
+        )
+
+    # ------------------------------------------------------------------ sessions
+
+    def fit_session(self, plan_date: date, session: str) -> list[dict]:
+        """Fit a finished session from the store and store the result."""
+        try:
+            rows = fit_stored_session(self.store, self.config, plan_date.isoformat(), session,
+                                      self.clock.now())
+        except sqlite3.Error as exc:
+            self.event("error", "store_error", f"{plan_date} {session}: fit not stored: {exc}")
+            return []
+        accepted = sum(1 for r in rows if r["accepted"])
+        self.event("info", "session_fit",
+                   f"{plan_date} {session}: {accepted}/{len(rows)} channels accepted",
+                   {"date": plan_date.isoformat(), "session": session})
+        return rows
+
+    def park(self) -> None:
+        try:
+            self.tracker.follow_sun(False)
+            self.tracker.park()
+        except (LinkError, DeviceError) as exc:
+            self.event("warning", "device_fault", f"parking failed: {exc}")
+
+
+def perform(station: Station, item: PlannedTarget | PlanEvent, day: date,
+            fits: dict[str, list[dict]], grace: timedelta = timedelta(minutes=2)) -> object:
+    """Carry out one timeline item that is due now: measure, fit or park.
+
+    A target more than ``grace`` late (a restart in mid-session, a stepped clock) is
+    recorded as missed instead of measured at the wrong air mass.
+    """
+    late = station.clock.now() - item.time_utc
+    if isinstance(item, PlannedTarget):
+        if late > grace:
+            station.event("warning", "missed_target",
+                          f"{item.session} target m={item.airmass:g} planned for "
+                          f"{item.time_utc:%H:%M:%S} UTC missed by {late}")
+            return None
+        return station.measure(item, day)
+    if item.kind in ("fit_am", "fit_pm"):
+        session = item.kind[-2:]
+        fits[session] = station.fit_session(day, session)
+        return fits[session]
+    if item.kind == "park":
+        station.park()
+    return None
+
+
+def run_day(station: Station, day: date, plan: Plan | None = None,
+            on_step=None, stop=lambda: False) -> dict[str, list[dict]]:
+    """Walk one day's plan with ``station.clock``; return the session fits by session."""
+    plan = plan or plan_day(station.config, day)
+    station.store.save_plan(day.isoformat(), plan.to_dict())
+    fits: dict[str, list[dict]] = {}
+    for item in plan.timeline():
+        station.clock.sleep_until(item.time_utc)
+        if stop():
+            break
+        outcome = perform(station, item, day, fits)
+        if on_step and isinstance(outcome, TargetOutcome):
+            on_step(outcome)
+        station.store.heartbeat(station.clock.now())
+    return fits
+
+
+def local_midnight_utc(config: Config, day: date) -> datetime:
+    """The start of ``day`` at the site, in UTC."""
+    return datetime(day.year, day.month, day.day, tzinfo=config.tz).astimezone(UTC)

@@ -1,0 +1,158 @@
+"""The bench: run a simulated day through the real protocol.
+
+The simulator is started as its own process (``python -m sim_instrument``), exactly
+as a technician would start ``heliotrope-sim``; the daemon never imports it. The day
+then runs on a :class:`~daemon.clock.SimClock` with the same plan, acquisition, store
+and fit code as the service.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import date
+from pathlib import Path
+
+from daemon.config import Config
+
+SIM_START_TIMEOUT_S = 30.0
+
+
+class BenchError(Exception):
+    """The simulator could not be started or did not answer as documented."""
+
+
+@dataclass(frozen=True)
+class SimEndpoints:
+    radiometer: str
+    tracker: str
+    pid: int
+
+
+@contextmanager
+def simulator(scenario: str, seed: int, port: str = "pty",
+              truth_path: Path | None = None) -> Iterator[SimEndpoints]:
+    """Start ``heliotrope-sim`` as a child process and yield its endpoints.
+
+    The child is tied to us by its standard input (``--stdin-lifeline``): if this
+    process dies, the pipe closes and the simulator exits too. On leaving the block it
+    is asked to stop with SIGTERM so it writes its truth file.
+    """
+    cmd = [sys.executable, "-m", "sim_instrument", "--scenario", scenario, "--port", port,
+           "--seed", str(seed), "--stdin-lifeline"]
+    if truth_path is not None:
+        cmd += ["--truth", str(truth_path)]
+    proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        endpoints = _read_endpoints(proc)
+        yield endpoints
+    finally:
+        _stop(proc)
+
+
+def _read_endpoints(proc: subprocess.Popen) -> SimEndpoints:
+    import selectors
+
+    sel = selectors.DefaultSelector()
+    sel.register(proc.stdout, selectors.EVENT_READ)
+    deadline = time.monotonic() + SIM_START_TIMEOUT_S
+    while time.monotonic() < deadline:
+        if sel.select(timeout=0.2):
+            line = proc.stdout.readline()
+            if not line:
+                break
+            try:
+                info = json.loads(line)
+                return SimEndpoints(info["radiometer"], info["tracker"], int(info["pid"]))
+            except (ValueError, KeyError) as exc:
+                raise BenchError(f"simulator printed {line.strip()!r}, expected its "
+                                 f"endpoints as JSON ({exc})") from None
+        if proc.poll() is not None:
+            break
+    err = ""
+    if proc.poll() is not None:
+        err = proc.stderr.read().strip()
+    raise BenchError("the simulator did not start"
+                     + (f": {err.splitlines()[-1]}" if err else
+                        f" within {SIM_START_TIMEOUT_S:g} s"))
+
+
+def _stop(proc: subprocess.Popen) -> None:
+    if proc.poll() is None:
+        proc.terminate()
+        try:
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+    for stream in (proc.stdin, proc.stdout, proc.stderr):
+        if stream:
+            stream.close()
+
+
+def with_ports(config: Config, endpoints: SimEndpoints) -> Config:
+    """The same configuration, pointed at the simulator's ports."""
+    return dataclasses.replace(
+        config,
+        radiometer=dataclasses.replace(config.radiometer, url=endpoints.radiometer),
+        tracker=dataclasses.replace(config.tracker, url=endpoints.tracker),
+    )
+
+
+@dataclass
+class DayRun:
+    day: date
+    results: list[dict]
+    truth: dict
+    targets_planned: int
+    targets_ok: int
+    wall_s: float
+    store_path: str
+
+
+def run_simulated_day(config: Config, day: date, store_path: Path, scenario: str,
+                      seed: int, port: str = "pty", work_dir: Path | None = None) -> DayRun:
+    """Plan ``day``, start the simulator, acquire the whole day and fit both sessions."""
+    from daemon.acquisition import Station, local_midnight_utc, run_day
+    from daemon.clock import SimClock
+    from daemon.planner import plan_day
+    from daemon.store import Store
+    from drivers.reference import open_radiometer, open_tracker
+
+    t0 = time.perf_counter()
+    work_dir = work_dir or store_path.parent
+    truth_path = work_dir / f"truth-{os.getpid()}.json"
+    plan = plan_day(config, day)
+    outcomes = []
+    store = Store.open(store_path)
+    try:
+        with simulator(scenario, seed, port, truth_path) as ends:
+            cfg = with_ports(config, ends)
+            radiometer = open_radiometer(cfg.radiometer.url, cfg.radiometer.baudrate,
+                                         cfg.radiometer.timeout_s, cfg.radiometer.retries)
+            tracker = open_tracker(cfg.tracker.url, cfg.tracker.baudrate,
+                                   cfg.tracker.timeout_s, cfg.tracker.retries)
+            try:
+                clock = SimClock(local_midnight_utc(cfg, day))
+                station = Station(cfg, radiometer, tracker, store, clock)
+                fits = run_day(station, day, plan, on_step=outcomes.append)
+            finally:
+                radiometer.close()
+                tracker.close()
+        truth = json.loads(truth_path.read_text()) if truth_path.exists() else {}
+    finally:
+        store.close()
+        truth_path.unlink(missing_ok=True)
+    results = fits.get("am", []) + fits.get("pm", [])
+    return DayRun(day=day, results=results, truth=truth,
+                  targets_planned=len([t for t in plan.targets if t.session in ("am", "pm")]),
+                  targets_ok=sum(1 for o in outcomes if o.ok),
+                  wall_s=time.perf_counter() - t0, store_path=str(store_path))

@@ -1,0 +1,272 @@
+"""``heliotrope``: the operator's command.
+
+Read commands (``today``, ``plan`` from the store) open the store read-only with the
+standard library and import nothing heavy, so they answer fast over SSH and never
+lock the service out. Heavy modules (numpy, pvlib, sqlite-utils) are imported inside
+the commands that need them.
+
+Exit codes: 0 done; 1 nothing to show; 64 bad usage; 65 bad input data;
+66 a file that should exist does not; 69 the simulator or a device is unavailable;
+78 bad configuration (sysexits.h).
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from collections.abc import Sequence
+from datetime import date
+from pathlib import Path
+
+from daemon.tables import dumps, fmt, table
+
+EX_USAGE, EX_DATAERR, EX_NOINPUT, EX_UNAVAILABLE, EX_CONFIG = 64, 65, 66, 69, 78
+DEFAULT_DB = "/var/lib/heliotrope/heliotrope.db"
+REPO_CONFIG = Path(__file__).resolve().parent.parent / "config"
+
+
+class CommandError(Exception):
+    """A failure with a message for the operator and an exit code."""
+
+    def __init__(self, message: str, code: int):
+        super().__init__(message)
+        self.code = code
+
+
+def _default_db() -> str:
+    return os.environ.get("HELIOTROPE_DB", DEFAULT_DB)
+
+
+def _parse_date(text: str) -> date:
+    try:
+        return date.fromisoformat(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a date; use YYYY-MM-DD") from None
+
+
+def _load_config(path: str):
+    from daemon.config import ConfigError, load_config
+    try:
+        return load_config(path)
+    except ConfigError as exc:
+        raise CommandError(str(exc), EX_CONFIG) from None
+
+
+# --------------------------------------------------------------------------- commands
+
+def cmd_check_config(args: argparse.Namespace) -> int:
+    cfg = _load_config(args.file)
+    names = ", ".join(ch.name for ch in cfg.channels)
+    print(f"{args.file}: ok - {cfg.site.name}, {len(cfg.channels)} channels ({names}), "
+          f"store {cfg.store_path}")
+    return 0
+
+
+def cmd_today(args: argparse.Namespace) -> int:
+    from daemon.storeread import StoreReadError, latest_results, open_readonly
+    try:
+        conn = open_readonly(args.db)
+    except StoreReadError as exc:
+        raise CommandError(str(exc), EX_NOINPUT) from None
+    try:
+        rows = latest_results(conn)
+    finally:
+        conn.close()
+    if args.json:
+        print(dumps({"results": rows}))
+        return 0
+    if not rows:
+        print(f"no session results yet in {args.db}")
+        return 1
+    print(f"preliminary results for {rows[0]['date']}")
+    print(results_table(rows))
+    return 0
+
+
+def results_table(rows: Sequence[dict], truth: dict | None = None) -> str:
+    """The per-channel, per-session table of the demo and of ``today``."""
+    headers = ["channel", "sess", "V0 1AU [V]"]
+    if truth is not None:
+        headers += ["truth [V]", "diff [%]"]
+    headers += ["unc [%]", "tau", "used", "ok"]
+    body = []
+    for r in rows:
+        line = [r["channel"], r["session"], fmt(r["v0_1au"], ".5f")]
+        if truth is not None:
+            true_v0 = truth.get(r["channel"], {}).get("v0_1au")
+            diff = (100.0 * (r["v0_1au"] / true_v0 - 1.0)
+                    if true_v0 and r["v0_1au"] is not None else None)
+            line += [fmt(true_v0, ".5f"), fmt(diff, "+.3f")]
+        unc = r["v0_rel_unc"] * 100 if r["v0_rel_unc"] is not None else None
+        line += [fmt(unc, ".3f"), fmt(r["tau"], ".4f"), f"{r['n_used']}/{r['n_total']}",
+                 fmt(bool(r["accepted"]))]
+        body.append(line)
+    right = [False, False] + [True] * (len(headers) - 3) + [False]
+    text = table(headers, body, right)
+    notes = [f"  {r['channel']} {r['session']}: {'; '.join(r['reasons'])}"
+             for r in rows if r["reasons"]]
+    return text + ("\nnot accepted:\n" + "\n".join(notes) if notes else "")
+
+
+def cmd_plan(args: argparse.Namespace) -> int:
+    day = args.date
+    plan_dict = None
+    if args.config is None and Path(args.db).exists():
+        from daemon.storeread import StoreReadError, open_readonly, stored_plan
+        try:
+            conn = open_readonly(args.db)
+            try:
+                plan_dict = stored_plan(conn, day.isoformat() if day else None)
+            finally:
+                conn.close()
+        except StoreReadError as exc:
+            raise CommandError(str(exc), EX_NOINPUT) from None
+    if plan_dict is None:
+        if args.config is None:
+            raise CommandError(f"no stored plan{' for ' + str(day) if day else ''} in "
+                               f"{args.db}; pass --config FILE to compute one", EX_NOINPUT)
+        from daemon.planner import plan_day
+        cfg = _load_config(args.config)
+        plan_dict = plan_day(cfg, day or date.today()).to_dict()
+    if args.json:
+        print(dumps(plan_dict))
+        return 0
+    print(plan_table(plan_dict))
+    return 0
+
+
+def plan_table(plan: dict) -> str:
+    """A stored or computed plan as an aligned table, UTC with local time beside it."""
+    from datetime import datetime
+    from zoneinfo import ZoneInfo
+
+    tz = ZoneInfo(plan.get("timezone") or "UTC")
+
+    def times(iso: str) -> tuple[str, str]:
+        t = datetime.fromisoformat(iso)
+        return t.strftime("%H:%M:%S"), t.astimezone(tz).strftime("%H:%M:%S")
+
+    items = [(t["time_utc"], t["session"], f"{t['airmass']:.2f}",
+              f"{t['apparent_zenith_deg']:.2f}", f"{t['azimuth_deg']:.1f}")
+             for t in plan["targets"]]
+    items += [(e["time_utc"], e["kind"], "", "", "") for e in plan.get("events", [])]
+    items.sort(key=lambda r: datetime.fromisoformat(r[0]))  # in time, across 00:00 UTC
+    rows = [[*times(when), *rest] for when, *rest in items]
+    head = f"plan for {plan['date']} at {plan.get('site_name', '?')} (local time {tz.key})"
+    out = [head, table(["UTC", "local", "what", "air mass", "zenith", "azimuth"], rows,
+                       [False, False, False, True, True, True])]
+    for s in plan.get("skipped", []):
+        out.append(f"skipped {s['session']} m={s['airmass']:g}: {s['reason']}")
+    out += [f"note: {n}" for n in plan.get("notes", [])]
+    return "\n".join(out)
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    import tempfile
+
+    from daemon.bench import BenchError, run_simulated_day
+    cfg = _load_config(args.config)
+    with tempfile.TemporaryDirectory(prefix="heliotrope-demo-") as tmp:
+        store_path = Path(args.db) if args.db else Path(tmp) / "demo.db"
+        if args.db and store_path.exists():
+            raise CommandError(f"{store_path} already exists; the demo writes a fresh store. "
+                               "Choose a new path or remove the old file.", EX_USAGE)
+        if not args.json:
+            print(f"simulating {args.date} at {cfg.site.name} "
+                  f"(scenario {args.scenario}, seed {args.seed}, port {args.port}) ...",
+                  flush=True)
+        try:
+            run = run_simulated_day(cfg, args.date, store_path, args.scenario, args.seed,
+                                    args.port, work_dir=Path(tmp))
+        except BenchError as exc:
+            raise CommandError(str(exc), EX_UNAVAILABLE) from None
+    truth = run.truth.get("channels", {})
+    if args.json:
+        print(dumps({"results": run.results,
+                     "truth": {k: {"v0_1au": v["v0_1au"]} for k, v in truth.items()},
+                     "targets_planned": run.targets_planned, "targets_ok": run.targets_ok,
+                     "wall_s": round(run.wall_s, 3)}))
+        return 0
+    print(f"{run.targets_ok} of {run.targets_planned} targets measured; "
+          "V0 normalised to 1 AU")
+    print(results_table(run.results, truth))
+    print(f"wall time {run.wall_s:.1f} s")
+    return 0
+
+
+def cmd_probe(args: argparse.Namespace) -> int:
+    from daemon.probe import run
+    return run(args, _load_config(args.config))
+
+
+# --------------------------------------------------------------------------- parser
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="heliotrope", description=(
+        "Operate a heliotrope sun-radiometer station: read results, plans and "
+        "configuration, or run a simulated day on the bench."))
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    c = sub.add_parser("check-config", help="validate a configuration file")
+    c.add_argument("file")
+    c.set_defaults(func=cmd_check_config)
+
+    c = sub.add_parser("today", help="the latest day's preliminary results")
+    c.add_argument("--db", default=_default_db(), help="store path (default: %(default)s)")
+    c.add_argument("--json", action="store_true", help="print JSON")
+    c.set_defaults(func=cmd_today)
+
+    c = sub.add_parser("plan", help="the day's plan: stored, or computed with --config")
+    c.add_argument("--date", type=_parse_date, help="local date at the site, YYYY-MM-DD")
+    c.add_argument("--config", help="compute the plan from this configuration")
+    c.add_argument("--db", default=_default_db(), help="store path (default: %(default)s)")
+    c.add_argument("--json", action="store_true", help="print JSON")
+    c.set_defaults(func=cmd_plan)
+
+    c = sub.add_parser("demo", help="a simulated clear day on the bench, ending in the table")
+    c.add_argument("--config", default=str(REPO_CONFIG / "pico-sereno.yaml"))
+    c.add_argument("--scenario", default="pico-sereno-clear")
+    c.add_argument("--date", type=_parse_date, default=date(2027, 2, 15),
+                   help="simulated local date (default: %(default)s)")
+    c.add_argument("--seed", type=int, default=1)
+    c.add_argument("--port", default="pty", help="pty or tcp:0 (default: %(default)s)")
+    c.add_argument("--db", help="keep the store at this new path (default: a temporary one)")
+    c.add_argument("--json", action="store_true", help="print JSON")
+    c.set_defaults(func=cmd_demo)
+
+    c = sub.add_parser(
+        "probe", help="identify both devices and read them once; never moves the tracker",
+        description="First contact with the instrument: sends ID, one BURST and HK to the "
+        "radiometer and ID and STATUS to the tracker, and reports each round-trip time. "
+        "It only reads: it never moves the tracker, never sets a clock, never resets a "
+        "device. Stop the service first (it holds the ports). Exit 0 when everything "
+        "answered, 69 otherwise.")
+    c.add_argument("--config", default=os.environ.get("HELIOTROPE_CONFIG",
+                                                      "/etc/heliotrope/heliotrope.yaml"),
+                   help="configuration file (default: $HELIOTROPE_CONFIG, else %(default)s)")
+    c.add_argument("--radiometer-port", metavar="URL",
+                   help="probe this port instead of the configured one "
+                        "(e.g. socket://127.0.0.1:7001 for heliotrope-sim --port tcp:7001)")
+    c.add_argument("--tracker-port", metavar="URL",
+                   help="probe this port instead of the configured one")
+    c.add_argument("--json", action="store_true", help="print one JSON object")
+    c.set_defaults(func=cmd_probe)
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return args.func(args)
+    except CommandError as exc:
+        print(f"heliotrope {args.command}: {exc}", file=sys.stderr)
+        return exc.code
+    except BrokenPipeError:
+        return 0
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

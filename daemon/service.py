@@ -1,0 +1,292 @@
+"""``heliotroped``: the long-running service.
+
+APScheduler (3.x, BlockingScheduler in UTC) is only the alarm clock here: each item
+of the day's plan becomes a one-shot job that calls the same
+:func:`daemon.acquisition.perform` the simulated day uses. All jobs run on one worker
+thread, so two targets never fight over the serial ports, and the once-a-minute
+``tick`` (heartbeat, systemd watchdog, clock-step check) runs on that same worker: a
+worker stuck in a hung call stops the watchdog pings and systemd restarts the service.
+
+Exit codes: 0 stopped by a signal; 74 the store cannot be opened safely (it is left
+untouched); 78 bad configuration.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import os
+import signal
+import socket
+import sys
+import threading
+from datetime import UTC, date, datetime, timedelta
+
+from daemon.config import EX_CONFIG, Config, ConfigError, load_config
+
+log = logging.getLogger("heliotroped")
+
+EX_IOERR = 74
+MISFIRE_GRACE_S = 120  # a target more than 2 min late is a different air mass: skip it
+TICK_S = 60
+CLOCK_STEP_S = 60  # a wall-clock step larger than this re-plans the day
+STOP_WAIT_S = 3.0  # how long shutdown waits for the job in progress
+
+
+def sd_notify(message: str) -> None:
+    """Send state lines to systemd (no-op outside a Type=notify unit)."""
+    address = os.environ.get("NOTIFY_SOCKET")
+    if not address:
+        return
+    if address.startswith("@"):
+        address = "\0" + address[1:]
+    try:
+        with socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM) as sock:
+            sock.sendto(message.encode(), address)
+    except OSError as exc:
+        log.debug("sd_notify failed: %s", exc)
+
+
+def _item_key(day: date, item) -> tuple:
+    """Identity of a plan item, stable across re-plans of the same day."""
+    return (day, getattr(item, "session", None), getattr(item, "airmass", None),
+            getattr(item, "kind", None), item.time_utc if getattr(item, "session", None)
+            == "routine" else None)
+
+
+class Service:
+    """The scheduler adapter. ``scheduler`` and ``clock`` are injectable for tests."""
+
+    def __init__(self, config: Config, store, radiometer, tracker, clock=None,
+                 scheduler=None):
+        from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED
+        from apscheduler.executors.pool import ThreadPoolExecutor
+        from apscheduler.schedulers.blocking import BlockingScheduler
+
+        from daemon.acquisition import Station
+        from daemon.clock import RealClock, StepDetector
+
+        self.clock = clock or RealClock()
+        self.station = Station(config, radiometer, tracker, store, self.clock)
+        self.steps = StepDetector(self.clock, CLOCK_STEP_S)
+        self.fits: dict[str, list[dict]] = {}
+        self.done: set[tuple] = set()
+        self.day: date | None = None
+        self.last_result = "no session fitted yet"
+        self._idle = threading.Event()
+        self._idle.set()
+        self.scheduler = scheduler or BlockingScheduler(
+            timezone=UTC,
+            executors={"default": ThreadPoolExecutor(max_workers=1)},
+            # Each job says its own grace; coalesce so a backlog after a stall runs once.
+            job_defaults={"misfire_grace_time": MISFIRE_GRACE_S, "coalesce": True,
+                          "max_instances": 1},
+        )
+        self.scheduler.add_listener(self._on_job_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED)
+
+    # ------------------------------------------------------------------ planning
+
+    def local_today(self) -> date:
+        return self.clock.now().astimezone(self.station.config.tz).date()
+
+    def schedule_day(self, day: date) -> None:
+        """Plan ``day`` and turn every item still ahead into a job."""
+        from daemon.planner import plan_day
+
+        plan = plan_day(self.station.config, day)
+        self.station.store.save_plan(day.isoformat(), plan.to_dict())
+        self.schedule_plan(plan, day)
+
+    def schedule_plan(self, plan, day: date) -> None:
+        """Jobs for the items of ``plan`` that are still ahead. Items already past (a
+        restart or a clock step in mid-session) are recorded as missed targets; items
+        already carried out are not repeated."""
+        from daemon.planner import PlannedTarget
+
+        for job in self.scheduler.get_jobs():
+            if job.id.startswith("plan-"):
+                job.remove()
+        if day != self.day:
+            self.fits, self.done, self.day = {}, set(), day
+        now = self.clock.now()
+        missed = 0
+        for i, item in enumerate(plan.timeline()):
+            key = _item_key(day, item)
+            if key in self.done:
+                continue
+            if item.time_utc < now - timedelta(seconds=MISFIRE_GRACE_S):
+                self.done.add(key)
+                if isinstance(item, PlannedTarget):
+                    missed += 1
+                    self.station.event("warning", "missed_target",
+                                       f"{item.session} target m={item.airmass:g} at "
+                                       f"{item.time_utc:%H:%M:%S} UTC passed before it "
+                                       "could be measured")
+                continue
+            self.scheduler.add_job(self.run_item, "date", run_date=item.time_utc,
+                                   args=[item, day], id=f"plan-{day}-{i}",
+                                   misfire_grace_time=MISFIRE_GRACE_S)
+        ends = [e.time_utc for e in plan.events if e.kind in ("park", "replan")]
+        next_plan = max(ends) if ends else datetime(
+            day.year, day.month, day.day, tzinfo=self.station.config.tz) + timedelta(days=1)
+        self.scheduler.add_job(self.schedule_day, "date",
+                               run_date=max(next_plan, now) + timedelta(seconds=1),
+                               args=[day + timedelta(days=1)], id=f"plan-next-{day}",
+                               misfire_grace_time=None)
+        upcoming = len([t for t in plan.targets if t.time_utc >= now])
+        self.station.event("info", "plan",
+                           f"plan for {day}: {len(plan.targets)} targets, {upcoming} ahead, "
+                           f"{missed} missed", {"date": day.isoformat()})
+        self._status()
+
+    # ------------------------------------------------------------------ jobs
+
+    def run_item(self, item, day: date) -> None:
+        """One plan item on the worker thread; nothing it raises stops the service."""
+        from daemon.acquisition import perform
+
+        key = _item_key(day, item)
+        if key in self.done or self.station.stopping.is_set():
+            return
+        self.done.add(key)
+        self._idle.clear()
+        try:
+            result = perform(self.station, item, day, self.fits)
+        except Exception as exc:  # the service must outlive any one item
+            log.exception("plan item failed")
+            self.station.event("error", "job_error", f"{_describe(item)} failed: {exc!r}")
+            return
+        finally:
+            self._idle.set()
+        if isinstance(result, list):
+            accepted = sum(1 for r in result if r["accepted"])
+            self.last_result = (f"{day} {item.kind[-2:]}: {accepted}/{len(result)} "
+                                "channels accepted")
+        self._heartbeat()
+        self._status()
+
+    def tick(self) -> None:
+        """Every minute, on the worker: watchdog, heartbeat, clock-step check."""
+        sd_notify("WATCHDOG=1")
+        self._heartbeat()
+        step = self.steps.check()
+        if step is not None:
+            self.station.event("warning", "clock_step",
+                               f"wall clock stepped {step:+.0f} s; re-planning",
+                               {"step_s": step})
+            self.schedule_day(self.local_today())
+
+    def _heartbeat(self) -> None:
+        import sqlite3
+        try:
+            self.station.store.heartbeat(self.clock.now())
+        except sqlite3.Error as exc:
+            log.error("heartbeat not stored: %s", exc)
+
+    def _status(self) -> None:
+        nxt = [j for j in self.scheduler.get_jobs()
+               if j.id.startswith("plan-") and j.args and hasattr(j.args[0], "airmass")]
+        when = min(nxt, key=lambda j: j.args[0].time_utc).args[0] if nxt else None
+        head = (f"next {when.session} m={when.airmass:g} at {when.time_utc:%H:%M} UTC"
+                if when else "no target ahead")
+        sd_notify(f"STATUS={head}; last: {self.last_result}")
+
+    def _on_job_event(self, event) -> None:
+        if getattr(event, "exception", None) is not None:
+            self.station.event("error", "job_error",
+                               f"job {event.job_id} failed: {event.exception!r}")
+        else:
+            self.station.event("warning", "missed_target",
+                               f"job {event.job_id} missed its time "
+                               f"{event.scheduled_run_time:%Y-%m-%d %H:%M:%S} UTC")
+
+    # ------------------------------------------------------------------ life cycle
+
+    def stop(self, *_args) -> None:
+        """Signal handler: stop taking jobs, interrupt waits, let ``run`` clean up."""
+        self.station.stopping.set()
+        self.clock.wake()
+        if self.scheduler.running:
+            self.scheduler.shutdown(wait=False)
+
+    def identify_devices(self) -> None:
+        from drivers.interfaces import DeviceError, LinkError
+
+        for name, device in (("radiometer", self.station.radiometer),
+                             ("tracker", self.station.tracker)):
+            try:
+                ident = device.identify()
+                self.station.event("info", "device", f"{name}: {ident.model} serial "
+                                   f"{ident.serial} firmware {ident.firmware}")
+            except (LinkError, DeviceError) as exc:
+                self.station.event("error", "device_fault",
+                                   f"{name} does not answer at start-up: {exc}; "
+                                   "acquisition will retry at every target")
+
+    def run(self) -> None:
+        self.station.event("info", "start", "service started")
+        self.identify_devices()
+        self.schedule_day(self.local_today())
+        self.scheduler.add_job(self.tick, "interval", seconds=TICK_S, id="tick",
+                               next_run_time=self.clock.now(), misfire_grace_time=None,
+                               coalesce=True)
+        sd_notify("READY=1")
+        self.scheduler.start()  # blocks until stop()
+        sd_notify("STOPPING=1")
+        self._drain()
+        self.station.park()
+        self.station.event("info", "stop", "service stopped")
+
+    def _drain(self) -> None:
+        """Wait briefly for the job in progress; it gives up at its next poll."""
+        if not self._idle.wait(STOP_WAIT_S):
+            log.warning("a job was still running after %.0f s; leaving it", STOP_WAIT_S)
+
+
+def _describe(item) -> str:
+    if hasattr(item, "airmass"):
+        return f"{item.session} target m={item.airmass:g}"
+    return f"{item.kind} at {item.time_utc:%H:%M:%S} UTC"
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(prog="heliotroped",
+                                description="heliotrope acquisition service (systemd starts it)")
+    p.add_argument("--config", default=os.environ.get("HELIOTROPE_CONFIG",
+                                                      "/etc/heliotrope/heliotrope.yaml"))
+    p.add_argument("--log-level", default="INFO",
+                   choices=["DEBUG", "INFO", "WARNING", "ERROR"])
+    args = p.parse_args(argv)
+    logging.basicConfig(level=args.log_level,
+                        format="%(levelname)s %(name)s: %(message)s")
+    try:
+        config = load_config(args.config)
+    except ConfigError as exc:
+        print(f"heliotroped: {exc}", file=sys.stderr)
+        return EX_CONFIG
+
+    from daemon.store import Store, StoreError
+    from drivers.reference import open_radiometer, open_tracker
+
+    try:
+        store = Store.open(config.store_path)
+    except StoreError as exc:
+        print(f"heliotroped: {exc}", file=sys.stderr)
+        return EX_IOERR
+    r, t = config.radiometer, config.tracker
+    radiometer = open_radiometer(r.url, r.baudrate, r.timeout_s, r.retries)
+    tracker = open_tracker(t.url, t.baudrate, t.timeout_s, t.retries)
+    service = Service(config, store, radiometer, tracker)
+    signal.signal(signal.SIGTERM, service.stop)
+    signal.signal(signal.SIGINT, service.stop)
+    try:
+        service.run()
+    finally:
+        radiometer.close()
+        tracker.close()
+        store.close()
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
