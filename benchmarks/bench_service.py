@@ -1,0 +1,224 @@
+"""Service figures: resident memory over a simulated month, idle CPU between targets, and
+the delay from a target's planned time to the start of its burst in real time.
+
+    .venv/bin/python benchmarks/bench_service.py [--days 30] [--idle-s 60] [--targets 8]
+
+Prints the figures; exits 1 if a budget is missed (memory growth 5 MB over the month,
+idle CPU 1 % of a core). Runs against the simulator over loopback TCP.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import socket
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import UTC, date, datetime, timedelta
+from pathlib import Path
+
+import yaml
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from daemon.acquisition import Station, local_midnight_utc, run_day  # noqa: E402
+from daemon.bench import simulator, with_ports  # noqa: E402
+from daemon.clock import SimClock  # noqa: E402
+from daemon.config import load_config  # noqa: E402
+from daemon.planner import Plan, PlannedTarget, plan_day  # noqa: E402
+from daemon.store import Store  # noqa: E402
+from drivers.reference import open_radiometer, open_tracker  # noqa: E402
+
+CONFIG = ROOT / "config" / "pico-sereno.yaml"
+
+
+def rss_mb() -> float:
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def devices(cfg):
+    r, t = cfg.radiometer, cfg.tracker
+    return (open_radiometer(r.url, r.baudrate, r.timeout_s, r.retries),
+            open_tracker(t.url, t.baudrate, t.timeout_s, t.retries))
+
+
+def memory_over_month(days: int) -> tuple[float, float]:
+    cfg0 = load_config(CONFIG)
+    with tempfile.TemporaryDirectory() as tmp, simulator("pico-sereno-clear", 1,
+                                                         "tcp:0") as ends:
+        cfg = with_ports(cfg0, ends)
+        store = Store.open(Path(tmp) / "month.db")
+        radiometer, tracker = devices(cfg)
+        first = date(2027, 3, 1)
+        after_one = None
+        for k in range(days):
+            day = first + timedelta(days=k)
+            station = Station(cfg, radiometer, tracker, store, SimClock(local_midnight_utc(cfg, day)))
+            run_day(station, day)
+            if k == 0:
+                after_one = rss_mb()
+        after_all = rss_mb()
+        radiometer.close()
+        tracker.close()
+        store.close()
+    return after_one, after_all
+
+
+def _quiet_site(cfg_data: dict, cfg) -> dict:
+    """Shift the site's longitude so that no target falls in the next few minutes."""
+    now = datetime.now(UTC)
+    plan = plan_day(cfg, now.astimezone(cfg.tz).date())
+    busy = any(abs((t.time_utc - now).total_seconds()) < 900 for t in plan.targets)
+    if busy:
+        lon = cfg_data["site"]["longitude_deg"]
+        cfg_data["site"]["longitude_deg"] = lon + 180 if lon < 0 else lon - 180
+        cfg_data["site"]["timezone"] = "UTC"
+    return cfg_data
+
+
+def idle_cpu(idle_s: float) -> float:
+    """Percent of one core used by heliotroped over ``idle_s`` seconds with no target."""
+    with tempfile.TemporaryDirectory() as tmp, simulator("pico-sereno-clear", 1,
+                                                         "tcp:0") as ends:
+        data = yaml.safe_load(CONFIG.read_text())
+        data["instrument"]["radiometer"]["port"] = ends.radiometer
+        data["instrument"]["tracker"]["port"] = ends.tracker
+        data["store"]["path"] = str(Path(tmp) / "idle.db")
+        data = _quiet_site(data, load_config(CONFIG))
+        cfg_path = Path(tmp) / "idle.yaml"
+        cfg_path.write_text(yaml.safe_dump(data))
+        sock_path = Path(tmp) / "notify"
+        sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
+        sock.bind(str(sock_path))
+        sock.settimeout(60)
+        proc = subprocess.Popen([sys.executable, "-m", "daemon.service", "--config",
+                                 str(cfg_path), "--log-level", "ERROR"],
+                                env=dict(os.environ, NOTIFY_SOCKET=str(sock_path)))
+        try:
+            while b"READY=1" not in sock.recv(4096):
+                pass
+            time.sleep(2)  # let start-up work (first tick, plan) finish
+
+            def cpu_s() -> float:
+                fields = Path(f"/proc/{proc.pid}/stat").read_text().rsplit(")", 1)[1].split()
+                return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+            c0, t0 = cpu_s(), time.monotonic()
+            time.sleep(idle_s)
+            c1, t1 = cpu_s(), time.monotonic()
+        finally:
+            proc.terminate()
+            proc.wait(timeout=30)
+            sock.close()
+    return 100.0 * (c1 - c0) / (t1 - t0)
+
+
+class _Timed:
+    """Wraps a radiometer; notes the wall time at which each burst command starts."""
+
+    def __init__(self, inner):
+        self.inner = inner
+        self.starts: list[datetime] = []
+
+    def read_burst(self, n):
+        self.starts.append(datetime.now(UTC))
+        return self.inner.read_burst(n)
+
+    def __getattr__(self, name):
+        return getattr(self.inner, name)
+
+
+def target_latency(n: int) -> list[float]:
+    """Seconds from each planned time to its burst start, real clock, APScheduler."""
+    import threading
+
+    from apscheduler.schedulers.background import BackgroundScheduler
+
+    from daemon.service import Service
+
+    cfg0 = load_config(CONFIG)
+    with tempfile.TemporaryDirectory() as tmp, simulator("pico-sereno-clear", 1,
+                                                         "tcp:0") as ends:
+        cfg = with_ports(cfg0, ends)
+        store = Store.open(Path(tmp) / "latency.db")
+        radiometer, tracker = devices(cfg)
+        timed = _Timed(radiometer)
+        sched = BackgroundScheduler(timezone=UTC)
+        svc = Service(cfg, store, timed, tracker, scheduler=sched)
+        now = datetime.now(UTC)
+        day = now.astimezone(cfg.tz).date()
+        # Synthetic targets every 4 s: the figure is the scheduler and the acquisition
+        # path, not the sky.
+        # Lock on the sun first, so the figure is the scheduler and acquisition path and
+        # not the first slew. The simulator's sun is wherever the real hour puts it.
+        from daemon.solar import geometry_at
+        aim = geometry_at(now, cfg.site)
+        if aim.apparent_elevation_deg < 5:
+            print("latency: the sun is down at the site now; run this in its daytime")
+            return []
+        svc.station.sync_clocks()
+        tracker.goto(aim.azimuth_deg, aim.apparent_elevation_deg)
+        tracker.follow_sun(True)
+        settle = time.monotonic() + 120
+        while not tracker.state().locked and time.monotonic() < settle:
+            time.sleep(1)
+            svc.station.sync_clocks()
+        now = datetime.now(UTC)
+        targets = tuple(PlannedTarget(now + timedelta(seconds=4 * (k + 1)), "routine",
+                                      1.0 + k / 1000, 0.0, 0.0) for k in range(n))
+        plan = Plan(day, cfg.site.name, cfg.site.timezone, targets, (), (), None, None,
+                    None, ())
+        svc.schedule_plan(plan, day)
+        sched.start()
+        done = threading.Event()
+        deadline = time.monotonic() + 8 * (n + 4)
+        while len(timed.starts) < n and time.monotonic() < deadline and not done.is_set():
+            time.sleep(0.2)
+        sched.shutdown(wait=True)
+        radiometer.close()
+        tracker.close()
+        store.close()
+    return [(s - t.time_utc).total_seconds() for s, t in zip(timed.starts, targets,
+                                                             strict=False)]
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--days", type=int, default=30)
+    ap.add_argument("--idle-s", type=float, default=60)
+    ap.add_argument("--targets", type=int, default=8)
+    args = ap.parse_args()
+    ok = True
+
+    one, month = memory_over_month(args.days)
+    growth = month - one
+    print(f"resident memory after 1 day {one:.1f} MB, after {args.days} days {month:.1f} MB "
+          f"(growth {growth:+.1f} MB; budget 5 MB)")
+    ok &= growth < 5.0
+
+    cpu = idle_cpu(args.idle_s)
+    print(f"idle service CPU over {args.idle_s:g} s: {cpu:.2f} % of one core (budget 1 %)")
+    ok &= cpu < 1.0
+
+    delays = target_latency(args.targets)
+    if delays:
+        print(f"planned time to burst start over {len(delays)} targets: median "
+              f"{statistics.median(delays) * 1000:.0f} ms, worst {max(delays) * 1000:.0f} ms")
+    else:
+        print("latency: no burst started (is the simulator answering?)")
+        ok = False
+    print(json.dumps({"rss_1_day_mb": one, "rss_month_mb": month, "idle_cpu_pct": cpu,
+                      "latency_s": delays}))
+    return 0 if ok else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
