@@ -61,7 +61,8 @@ def memory_over_month(days: int) -> tuple[float, float]:
         after_one = None
         for k in range(days):
             day = first + timedelta(days=k)
-            station = Station(cfg, radiometer, tracker, store, SimClock(local_midnight_utc(cfg, day)))
+            clock = SimClock(local_midnight_utc(cfg, day))
+            station = Station(cfg, radiometer, tracker, store, clock)
             run_day(station, day)
             if k == 0:
                 after_one = rss_mb()
