@@ -27,12 +27,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from daemon.acquisition import Station, local_midnight_utc, run_day  # noqa: E402
-from daemon.bench import simulator, with_ports  # noqa: E402
+from daemon.bench import bench_rig, quiet_site, simulator  # noqa: E402
 from daemon.clock import SimClock  # noqa: E402
 from daemon.config import load_config  # noqa: E402
-from daemon.planner import Plan, PlannedTarget, plan_day  # noqa: E402
-from daemon.store import Store  # noqa: E402
-from drivers.reference import open_radiometer, open_tracker  # noqa: E402
+from daemon.planner import Plan, PlannedTarget  # noqa: E402
 
 CONFIG = ROOT / "config" / "pico-sereno.yaml"
 
@@ -44,19 +42,10 @@ def rss_mb() -> float:
     return float("nan")
 
 
-def devices(cfg):
-    r, t = cfg.radiometer, cfg.tracker
-    return (open_radiometer(r.url, r.baudrate, r.timeout_s, r.retries),
-            open_tracker(t.url, t.baudrate, t.timeout_s, t.retries))
-
-
 def memory_over_month(days: int) -> tuple[float, float]:
-    cfg0 = load_config(CONFIG)
-    with tempfile.TemporaryDirectory() as tmp, simulator("pico-sereno-clear", 1,
-                                                         "tcp:0") as ends:
-        cfg = with_ports(cfg0, ends)
-        store = Store.open(Path(tmp) / "month.db")
-        radiometer, tracker = devices(cfg)
+    with tempfile.TemporaryDirectory() as tmp, bench_rig(
+            load_config(CONFIG), Path(tmp) / "month.db", "pico-sereno-clear", 1,
+            "tcp:0") as (cfg, store, radiometer, tracker):
         first = date(2027, 3, 1)
         after_one = None
         for k in range(days):
@@ -67,22 +56,7 @@ def memory_over_month(days: int) -> tuple[float, float]:
             if k == 0:
                 after_one = rss_mb()
         after_all = rss_mb()
-        radiometer.close()
-        tracker.close()
-        store.close()
     return after_one, after_all
-
-
-def _quiet_site(cfg_data: dict, cfg) -> dict:
-    """Shift the site's longitude so that no target falls in the next few minutes."""
-    now = datetime.now(UTC)
-    plan = plan_day(cfg, now.astimezone(cfg.tz).date())
-    busy = any(abs((t.time_utc - now).total_seconds()) < 900 for t in plan.targets)
-    if busy:
-        lon = cfg_data["site"]["longitude_deg"]
-        cfg_data["site"]["longitude_deg"] = lon + 180 if lon < 0 else lon - 180
-        cfg_data["site"]["timezone"] = "UTC"
-    return cfg_data
 
 
 def idle_cpu(idle_s: float) -> float:
@@ -93,7 +67,7 @@ def idle_cpu(idle_s: float) -> float:
         data["instrument"]["radiometer"]["port"] = ends.radiometer
         data["instrument"]["tracker"]["port"] = ends.tracker
         data["store"]["path"] = str(Path(tmp) / "idle.db")
-        data = _quiet_site(data, load_config(CONFIG))
+        data = quiet_site(data, datetime.now(UTC))
         cfg_path = Path(tmp) / "idle.yaml"
         cfg_path.write_text(yaml.safe_dump(data))
         sock_path = Path(tmp) / "notify"
@@ -145,12 +119,9 @@ def target_latency(n: int) -> list[float]:
 
     from daemon.service import Service
 
-    cfg0 = load_config(CONFIG)
-    with tempfile.TemporaryDirectory() as tmp, simulator("pico-sereno-clear", 1,
-                                                         "tcp:0") as ends:
-        cfg = with_ports(cfg0, ends)
-        store = Store.open(Path(tmp) / "latency.db")
-        radiometer, tracker = devices(cfg)
+    with tempfile.TemporaryDirectory() as tmp, bench_rig(
+            load_config(CONFIG), Path(tmp) / "latency.db", "pico-sereno-clear", 1,
+            "tcp:0") as (cfg, store, radiometer, tracker):
         timed = _Timed(radiometer)
         sched = BackgroundScheduler(timezone=UTC)
         svc = Service(cfg, store, timed, tracker, scheduler=sched)
@@ -184,9 +155,6 @@ def target_latency(n: int) -> list[float]:
         while len(timed.starts) < n and time.monotonic() < deadline and not done.is_set():
             time.sleep(0.2)
         sched.shutdown(wait=True)
-        radiometer.close()
-        tracker.close()
-        store.close()
     return [(s - t.time_utc).total_seconds() for s, t in zip(timed.starts, targets,
                                                              strict=False)]
 

@@ -103,13 +103,15 @@ class Station:
         self.radiometer.set_clock(now)
         self.tracker.set_clock(now)
 
+    def _check_stop(self) -> None:
+        if self.stopping.is_set():
+            raise Abandoned("service stopping")
+
     def _pause(self) -> None:
         """One polling interval; gives up at once when the service is stopping."""
-        if self.stopping.is_set():
-            raise Abandoned("service stopping")
+        self._check_stop()
         self.clock.sleep(POLL_S)
-        if self.stopping.is_set():
-            raise Abandoned("service stopping")
+        self._check_stop()
         self.sync_clocks()
 
     def _wait_for_lock(self) -> TrackerState:
@@ -170,11 +172,14 @@ class Station:
         self.tracker.goto(aim.azimuth_deg, aim.apparent_elevation_deg)
         self.tracker.follow_sun(True)
         self._wait_for_lock()
+        self._check_stop()
         self.sync_clocks()
         started = self.clock.now()
         burst = self.radiometer.read_burst(acq.burst_samples)
+        self._check_stop()
         dark = (self.radiometer.read_dark(acq.dark_samples) if acq.dark_samples
                 else Burst(samples=(), duration_s=0.0, saturated=()))
+        self._check_stop()
         housekeeping = self.radiometer.read_housekeeping()
         after = self.tracker.state()
         self._check_shape(burst, dark)

@@ -17,7 +17,7 @@ import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import date
+from datetime import date, datetime
 from pathlib import Path
 
 from daemon.config import Config
@@ -107,6 +107,26 @@ def with_ports(config: Config, endpoints: SimEndpoints) -> Config:
     )
 
 
+def quiet_site(data: dict, now: datetime, margin_s: float = 900) -> dict:
+    """Configuration data (as parsed YAML) moved half-way round the world if a target
+    of the site falls within ``margin_s`` of ``now``: real-time bench runs (service
+    life cycle, idle CPU) must not depend on the hour they happen to run at."""
+    import copy
+
+    from daemon.config import parse_config
+    from daemon.planner import plan_day
+
+    cfg = parse_config(data)
+    plan = plan_day(cfg, now.astimezone(cfg.tz).date())
+    if not any(abs((t.time_utc - now).total_seconds()) < margin_s for t in plan.targets):
+        return data
+    data = copy.deepcopy(data)
+    lon = data["site"]["longitude_deg"]
+    data["site"]["longitude_deg"] = lon + 180 if lon < 0 else lon - 180
+    data["site"]["timezone"] = "UTC"
+    return data
+
+
 @dataclass
 class DayRun:
     day: date
@@ -118,38 +138,53 @@ class DayRun:
     store_path: str
 
 
+@contextmanager
+def bench_rig(config: Config, store_path: Path, scenario: str, seed: int, port: str = "pty",
+              truth_path: Path | None = None) -> Iterator[tuple[Config, object, object, object]]:
+    """The simulator, the configuration pointed at it, an open store and both drivers.
+
+    Yields ``(config, store, radiometer, tracker)``; everything is closed on leaving.
+    """
+    from daemon.store import Store
+    from drivers.reference import open_radiometer, open_tracker
+
+    store = Store.open(store_path)
+    try:
+        with simulator(scenario, seed, port, truth_path) as ends:
+            cfg = with_ports(config, ends)
+            r, t = cfg.radiometer, cfg.tracker
+            radiometer = open_radiometer(r.url, r.baudrate, r.timeout_s, r.retries)
+            tracker = open_tracker(t.url, t.baudrate, t.timeout_s, t.retries)
+            try:
+                yield cfg, store, radiometer, tracker
+            finally:
+                radiometer.close()
+                tracker.close()
+    finally:
+        store.close()
+
+
 def run_simulated_day(config: Config, day: date, store_path: Path, scenario: str,
                       seed: int, port: str = "pty", work_dir: Path | None = None) -> DayRun:
     """Plan ``day``, start the simulator, acquire the whole day and fit both sessions."""
     from daemon.acquisition import Station, local_midnight_utc, run_day
     from daemon.clock import SimClock
     from daemon.planner import plan_day
-    from daemon.store import Store
-    from drivers.reference import open_radiometer, open_tracker
 
     t0 = time.perf_counter()
     work_dir = work_dir or store_path.parent
     truth_path = work_dir / f"truth-{os.getpid()}.json"
     plan = plan_day(config, day)
     outcomes = []
-    store = Store.open(store_path)
     try:
-        with simulator(scenario, seed, port, truth_path) as ends:
-            cfg = with_ports(config, ends)
-            radiometer = open_radiometer(cfg.radiometer.url, cfg.radiometer.baudrate,
-                                         cfg.radiometer.timeout_s, cfg.radiometer.retries)
-            tracker = open_tracker(cfg.tracker.url, cfg.tracker.baudrate,
-                                   cfg.tracker.timeout_s, cfg.tracker.retries)
-            try:
-                clock = SimClock(local_midnight_utc(cfg, day))
-                station = Station(cfg, radiometer, tracker, store, clock)
-                fits = run_day(station, day, plan, on_step=outcomes.append)
-            finally:
-                radiometer.close()
-                tracker.close()
+        with bench_rig(config, store_path, scenario, seed, port, truth_path) as rig:
+            cfg, store, radiometer, tracker = rig
+            clock = SimClock(local_midnight_utc(cfg, day))
+            station = Station(cfg, radiometer, tracker, store, clock)
+            fits = run_day(station, day, plan, on_step=outcomes.append)
+        # The simulator writes its truth file when it stops, on leaving the rig.
         truth = json.loads(truth_path.read_text()) if truth_path.exists() else {}
     finally:
-        store.close()
         truth_path.unlink(missing_ok=True)
     results = fits.get("am", []) + fits.get("pm", [])
     return DayRun(day=day, results=results, truth=truth,

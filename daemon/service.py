@@ -233,14 +233,17 @@ class Service:
         sd_notify("READY=1")
         self.scheduler.start()  # blocks until stop()
         sd_notify("STOPPING=1")
-        self._drain()
-        self.station.park()
+        if self._drain():
+            self.station.park()
+        else:  # two threads on one serial line would garble both: leave the tracker
+            self.station.event("warning", "not_parked", "tracker not parked: a "
+                               f"measurement was still running after {STOP_WAIT_S:g} s")
         self.station.event("info", "stop", "service stopped")
 
-    def _drain(self) -> None:
-        """Wait briefly for the job in progress; it gives up at its next poll."""
-        if not self._idle.wait(STOP_WAIT_S):
-            log.warning("a job was still running after %.0f s; leaving it", STOP_WAIT_S)
+    def _drain(self) -> bool:
+        """Wait briefly for the job in progress (it gives up at its next step); True
+        when the worker is idle and the devices are free."""
+        return self._idle.wait(STOP_WAIT_S)
 
 
 def _describe(item) -> str:

@@ -21,6 +21,7 @@ import yaml
 from apscheduler.schedulers.background import BackgroundScheduler
 
 from daemon.acquisition import local_midnight_utc
+from daemon.bench import quiet_site
 from daemon.clock import SimClock
 from daemon.config import load_config
 from daemon.planner import PlannedTarget, plan_day
@@ -138,7 +139,8 @@ def test_full_disk_is_logged_and_survived(cfg, tmp_path, caplog):
 
 
 def _site_config(tmp_path: Path, radiometer: str, tracker: str) -> Path:
-    data = yaml.safe_load(CONFIG.read_text())
+    # No real target near the hour the test runs at: the life cycle is what is tested.
+    data = quiet_site(yaml.safe_load(CONFIG.read_text()), datetime.now(UTC))
     data["instrument"]["radiometer"]["port"] = radiometer
     data["instrument"]["tracker"]["port"] = tracker
     data["store"]["path"] = str(tmp_path / "svc.db")
