@@ -8,10 +8,10 @@ STAMP  := $(VENV)/.installed
 
 .PHONY: demo test lint bench clean
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml Makefile
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e '.[test]'
+	$(BIN)/python -m pip install --quiet -e '.[test,plot]'
 	touch $(STAMP)
 
 demo: $(STAMP)

@@ -1,0 +1,348 @@
+"""``heliotrope export``: stored data as CSV or JSON, streamed row by row.
+
+Rows come straight from an SQLite cursor and go straight to the output, so a year's
+export needs no more memory than a day's. CSV headers carry each column's unit in
+brackets (``sun_mean_v [V]``, ``airmass [1]`` for a dimensionless number); JSON is one
+array of objects whose keys are the bare column names, written element by element.
+
+What can be exported (``--what``), for local dates ``--from`` to ``--to``:
+
+``measurements``
+    one row per measurement and channel: geometry, pointing, the channel's mean and
+    standard deviation of the sun samples, the mean dark signal, and housekeeping
+``samples``
+    every raw sample (sun and dark), one row each
+``results``
+    the session results (the JSON contract of ``today``) with the fit time
+``aod``
+    aerosol optical depth per measurement and channel, from the stored calibration
+``events``
+    the service's events between local midnight of ``--from`` and local midnight after
+    ``--to`` (the site's time zone from the stored plans)
+
+Standard library only: this is a read command.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import datetime as _dt
+import json
+import math
+import os
+import sqlite3
+import sys
+import tempfile
+from collections.abc import Iterable, Iterator
+from pathlib import Path
+from typing import IO, Any
+
+# (column, unit); unit None for text, flags and counts, "1" for dimensionless numbers.
+MEASUREMENT_COLUMNS: tuple[tuple[str, str | None], ...] = (
+    ("measurement_id", None), ("time_utc", None), ("plan_date", None), ("session", None),
+    ("status", None), ("failure", None), ("target_airmass", "1"),
+    ("apparent_zenith_deg", "deg"), ("azimuth_deg", "deg"), ("airmass", "1"),
+    ("ozone_airmass", "1"), ("earth_sun_factor", "1"), ("pressure_hpa", "hPa"),
+    ("pointing_error_deg", "deg"), ("locked", None), ("duration_s", "s"),
+    ("channel", None), ("saturated", None), ("sun_mean_v", "V"), ("sun_sd_v", "V"),
+    ("n_sun", None), ("dark_mean_v", "V"), ("n_dark", None),
+    ("detector_temp_c", "degC"), ("case_temp_c", "degC"), ("ambient_temp_c", "degC"),
+    ("supply_v", "V"), ("humidity_pct", "%"), ("housekeeping_pressure_hpa", "hPa"),
+)
+SAMPLE_COLUMNS: tuple[tuple[str, str | None], ...] = (
+    ("measurement_id", None), ("time_utc", None), ("plan_date", None), ("session", None),
+    ("channel", None), ("kind", None), ("sample_index", None), ("value_v", "V"),
+)
+RESULT_COLUMNS: tuple[tuple[str, str | None], ...] = (
+    ("date", None), ("session", None), ("channel", None), ("wavelength_nm", "nm"),
+    ("v0", "V"), ("v0_1au", "V"), ("v0_rel_unc", "1"), ("tau", "1"), ("n_used", None),
+    ("n_total", None), ("airmass_min", "1"), ("airmass_max", "1"), ("accepted", None),
+    ("reasons", None), ("fitted_utc", None),
+)
+AOD_COLUMNS: tuple[tuple[str, str | None], ...] = (
+    ("time_utc", None), ("plan_date", None), ("session", None), ("measurement_id", None),
+    ("channel", None), ("wavelength_nm", "nm"), ("aod", "1"), ("aod_unc", "1"),
+    ("tau_total", "1"), ("tau_rayleigh", "1"), ("tau_ozone", "1"), ("airmass", "1"),
+    ("ozone_airmass", "1"), ("pressure_hpa", "hPa"), ("flag", None),
+    ("calibration_id", None), ("angstrom_alpha", "1"), ("angstrom_channels", None),
+)
+EVENT_COLUMNS: tuple[tuple[str, str | None], ...] = (
+    ("id", None), ("time_utc", None), ("level", None), ("kind", None), ("message", None),
+    ("detail", None),
+)
+COLUMNS = {"measurements": MEASUREMENT_COLUMNS, "samples": SAMPLE_COLUMNS,
+           "results": RESULT_COLUMNS, "aod": AOD_COLUMNS, "events": EVENT_COLUMNS}
+WHATS = tuple(COLUMNS)
+FORMATS = ("csv", "json")
+EX_CANTCREAT = 73  # sysexits.h: cannot create the output file
+
+_MEASUREMENTS_SQL = """
+WITH sel AS (
+    SELECT id FROM measurements WHERE plan_date BETWEEN ?1 AND ?2
+), mean AS (
+    SELECT s.measurement_id, s.channel, s.kind, AVG(s.value_v) AS mean_v,
+           COUNT(s.value_v) AS n
+    FROM samples s JOIN sel ON sel.id = s.measurement_id
+    GROUP BY s.measurement_id, s.channel, s.kind
+), spread AS (
+    SELECT s.measurement_id, s.channel,
+           SUM((s.value_v - mean.mean_v) * (s.value_v - mean.mean_v)) AS ss
+    FROM samples s JOIN mean ON mean.measurement_id = s.measurement_id
+         AND mean.channel = s.channel AND mean.kind = s.kind
+    WHERE s.kind = 'sun'
+    GROUP BY s.measurement_id, s.channel
+)
+SELECT m.id, m.time_utc, m.plan_date, m.session, m.status, m.failure, m.target_airmass,
+       m.apparent_zenith_deg, m.azimuth_deg, m.airmass, m.ozone_airmass,
+       m.earth_sun_factor, m.pressure_hpa, m.pointing_error_deg, m.locked, m.duration_s,
+       mc.channel, mc.saturated, sun.mean_v, sun.n, spread.ss, dark.mean_v, dark.n,
+       h.detector_temp_c, h.case_temp_c, h.ambient_temp_c, h.supply_v, h.humidity_pct,
+       h.pressure_hpa
+FROM measurements m JOIN sel ON sel.id = m.id
+LEFT JOIN measurement_channels mc ON mc.measurement_id = m.id
+LEFT JOIN mean sun ON sun.measurement_id = m.id AND sun.channel = mc.channel
+     AND sun.kind = 'sun'
+LEFT JOIN mean dark ON dark.measurement_id = m.id AND dark.channel = mc.channel
+     AND dark.kind = 'dark'
+LEFT JOIN spread ON spread.measurement_id = m.id AND spread.channel = mc.channel
+LEFT JOIN housekeeping h ON h.measurement_id = m.id
+ORDER BY m.time_utc, m.id, mc.channel_index
+"""
+
+_SAMPLES_SQL = """
+SELECT m.id, m.time_utc, m.plan_date, m.session, s.channel, s.kind, s.sample_index, s.value_v
+FROM measurements m JOIN samples s ON s.measurement_id = m.id
+LEFT JOIN measurement_channels mc ON mc.measurement_id = m.id AND mc.channel = s.channel
+WHERE m.plan_date BETWEEN ? AND ?
+ORDER BY m.time_utc, m.id, s.kind DESC, mc.channel_index, s.sample_index
+"""
+
+_RESULTS_SQL = """
+SELECT plan_date, session, channel, wavelength_nm, v0, v0_1au, v0_rel_unc, tau, n_used,
+       n_total, airmass_min, airmass_max, accepted, reasons, fitted_utc
+FROM session_results WHERE plan_date BETWEEN ? AND ?
+ORDER BY plan_date, session, wavelength_nm, channel
+"""
+
+
+class ExportError(Exception):
+    """The export cannot be made as asked; the message says why and what to do."""
+
+
+# --------------------------------------------------------------------------- row sources
+
+def measurement_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
+    """One dict per measurement and channel (failed measurements included), time order."""
+    names = [c for c, _ in MEASUREMENT_COLUMNS]
+    for r in conn.execute(_MEASUREMENTS_SQL, (first, last)):
+        r = tuple(r)
+        channel, saturated, sun_mean, n_sun, ss, dark_mean, n_dark = r[16:23]
+        sd = math.sqrt(ss / (n_sun - 1)) if n_sun and n_sun >= 2 and ss is not None else None
+        if channel is not None:  # a measurement without channel rows has no counts either
+            n_sun, n_dark = n_sun or 0, n_dark or 0
+        values = r[:14] + (None if r[14] is None else bool(r[14]), r[15], channel,
+                           None if saturated is None else bool(saturated), sun_mean, sd,
+                           n_sun, dark_mean if n_dark else None, n_dark) + r[23:]
+        yield dict(zip(names, values, strict=True))
+
+
+def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
+    """Every raw sample [V], sun before dark, in time and channel order."""
+    names = [c for c, _ in SAMPLE_COLUMNS]
+    for r in conn.execute(_SAMPLES_SQL, (first, last)):
+        yield dict(zip(names, tuple(r), strict=True))
+
+
+def result_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
+    """Session results in the JSON contract of ``today``, plus ``fitted_utc``."""
+    from daemon.storeread import result_row_to_contract
+
+    for r in conn.execute(_RESULTS_SQL, (first, last)):
+        row = dict(zip(("plan_date", "session", "channel", "wavelength_nm", "v0", "v0_1au",
+                        "v0_rel_unc", "tau", "n_used", "n_total", "airmass_min",
+                        "airmass_max", "accepted", "reasons", "fitted_utc"), tuple(r),
+                       strict=True))
+        out = result_row_to_contract(row)
+        out["fitted_utc"] = row["fitted_utc"]
+        yield out
+
+
+def event_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
+    """Events from local midnight of ``first`` to local midnight after ``last``."""
+    from daemon.status import site_zone
+    from daemon.storeread import stored_plan
+
+    plan = stored_plan(conn)
+    tz = site_zone((plan or {}).get("timezone"))
+    d1 = _dt.date.fromisoformat(first)
+    d2 = _dt.date.fromisoformat(last) + _dt.timedelta(days=1)
+    start = _dt.datetime(d1.year, d1.month, d1.day, tzinfo=tz).astimezone(_dt.UTC)
+    end = _dt.datetime(d2.year, d2.month, d2.day, tzinfo=tz).astimezone(_dt.UTC)
+    cur = conn.execute("SELECT id, time_utc, level, kind, message, detail FROM events "
+                       "WHERE time_utc >= ? AND time_utc < ? ORDER BY time_utc, id",
+                       (start.isoformat(timespec="microseconds"),
+                        end.isoformat(timespec="microseconds")))
+    for r in cur:
+        yield {"id": r[0], "time_utc": r[1], "level": r[2], "kind": r[3], "message": r[4],
+               "detail": json.loads(r[5]) if r[5] else None}
+
+
+def aod_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
+    """Aerosol optical depths from :func:`daemon.storeread.aod_between`."""
+    from daemon.storeread import aod_between
+
+    yield from aod_between(conn, first, last)
+
+
+SOURCES = {"measurements": measurement_rows, "samples": sample_rows, "results": result_rows,
+           "aod": aod_rows, "events": event_rows}
+
+
+def export_rows(conn: sqlite3.Connection, what: str, first: str | _dt.date,
+                last: str | _dt.date) -> Iterator[dict]:
+    """Rows of one kind for local dates ``first`` to ``last`` (inclusive), lazily."""
+    from daemon.storeread import check_plan_date
+
+    if what not in SOURCES:
+        raise ExportError(f"cannot export {what!r}; choose one of {', '.join(WHATS)}")
+    try:
+        d1, d2 = check_plan_date(first), check_plan_date(last)
+    except ValueError as exc:
+        raise ExportError(str(exc)) from None
+    if d2 < d1:
+        raise ExportError(f"the end date {d2} is before the start date {d1}; swap them")
+    return SOURCES[what](conn, d1, d2)
+
+
+# --------------------------------------------------------------------------- writers
+
+def csv_header(columns: Iterable[tuple[str, str | None]]) -> list[str]:
+    """Column names with their units in brackets: ``sun_mean_v [V]``."""
+    return [name if unit is None else f"{name} [{unit}]" for name, unit in columns]
+
+
+def _csv_cell(value: Any) -> Any:
+    if value is None:
+        return ""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, float):
+        return repr(value) if math.isfinite(value) else ""
+    if isinstance(value, list):
+        return "; ".join(str(v) for v in value)
+    if isinstance(value, dict):
+        return json.dumps(value, sort_keys=True)
+    return value
+
+
+def _json_value(value: Any) -> Any:
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def write_csv(rows: Iterable[dict], columns: tuple[tuple[str, str | None], ...],
+              out: IO[str]) -> int:
+    """Write rows as CSV with a unit-bearing header; return the number of rows."""
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(csv_header(columns))
+    names = [c for c, _ in columns]
+    n = 0
+    for row in rows:
+        writer.writerow([_csv_cell(row.get(c)) for c in names])
+        n += 1
+    return n
+
+
+def write_json(rows: Iterable[dict], columns: tuple[tuple[str, str | None], ...],
+               out: IO[str]) -> int:
+    """Write rows as one JSON array, element by element; return the number of rows."""
+    names = [c for c, _ in columns]
+    n = 0
+    out.write("[")
+    for row in rows:
+        out.write(",\n" if n else "\n")
+        out.write(json.dumps({c: _json_value(row.get(c)) for c in names}, allow_nan=False))
+        n += 1
+    out.write("\n]\n" if n else "]\n")
+    return n
+
+
+def export(conn: sqlite3.Connection, what: str, first: str | _dt.date, last: str | _dt.date,
+           fmt: str, out: IO[str]) -> int:
+    """Stream one kind of rows to ``out`` in ``fmt`` ('csv' or 'json'); return the row count."""
+    if fmt not in FORMATS:
+        raise ExportError(f"unknown format {fmt!r}; choose csv or json")
+    rows = export_rows(conn, what, first, last)
+    writer = write_csv if fmt == "csv" else write_json
+    return writer(rows, COLUMNS[what], out)
+
+
+# --------------------------------------------------------------------------- command
+
+def publish(tmp: str | Path, out: Path) -> None:
+    """Give a finished temporary file the usual permissions and move it onto ``out``."""
+    mask = os.umask(0)
+    os.umask(mask)  # mkstemp makes 0600 files; an export is as readable as any new file
+    os.chmod(tmp, 0o666 & ~mask)
+    os.replace(tmp, out)
+
+
+def _check_out_path(out: Path, db: Path) -> None:
+    if out.is_dir():
+        raise ExportError(f"--out {out}: is a directory; name a file")
+    if not out.parent.is_dir():
+        raise ExportError(f"--out {out}: the directory {out.parent} does not exist; create "
+                          "it first")
+    for suffix in ("", "-wal", "-shm", "-journal"):
+        candidate = Path(str(db) + suffix)
+        try:
+            same = out.exists() and candidate.exists() and out.samefile(candidate)
+        except OSError:
+            same = False
+        if same or out.resolve() == candidate.resolve():
+            raise ExportError(f"--out {out}: that is the store itself; choose another file")
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    from daemon.cli import EX_NOINPUT, EX_USAGE, CommandError
+    from daemon.storeread import StoreReadError, open_readonly
+
+    last = args.to or args.from_
+    db = Path(args.db).expanduser()
+    out_path = Path(args.out).expanduser() if args.out else None
+    try:
+        if out_path is not None:
+            _check_out_path(out_path, db)
+        conn = open_readonly(db)
+    except ExportError as exc:
+        raise CommandError(str(exc), EX_USAGE) from None
+    except StoreReadError as exc:
+        raise CommandError(str(exc), EX_NOINPUT) from None
+    try:
+        if out_path is None:
+            export(conn, args.what, args.from_, last, args.format, sys.stdout)
+            sys.stdout.flush()
+            return 0
+        # Written beside the target and renamed at the end: a reader of FILE never sees
+        # half an export, and a failed export leaves the old file in place.
+        try:
+            fd, tmp = tempfile.mkstemp(prefix=f".{out_path.name}.", dir=out_path.parent)
+        except OSError as exc:
+            raise CommandError(f"--out {out_path}: cannot write there ({exc})",
+                               EX_CANTCREAT) from None
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+                n = export(conn, args.what, args.from_, last, args.format, fh)
+            publish(tmp, out_path)
+        except OSError as exc:
+            raise CommandError(f"--out {out_path}: cannot write ({exc})", EX_CANTCREAT) from None
+        finally:
+            Path(tmp).unlink(missing_ok=True)
+    except ExportError as exc:
+        raise CommandError(str(exc), EX_USAGE) from None
+    finally:
+        conn.close()
+    print(f"{n} {args.what} row{'s' if n != 1 else ''} written to {out_path}", file=sys.stderr)
+    return 0

@@ -1,0 +1,444 @@
+"""``heliotrope plot``: the Langley plot of one channel and session, in the terminal.
+
+The session fit (:mod:`daemon.sessionfit`) stores its result per channel, not which
+points it used, and it cannot run here: its extinction corrections import pvlib,
+which the read commands never do. So the plot draws
+
+- the fitted line of the stored result (ln V0 and tau), and
+- the session's points read back from the store (read-only), as ln of the dark- and
+  temperature-corrected signal, screened as the session fit screens them (no sun
+  lock, saturated, cloudy) and marked used or rejected by fitting them again with
+  :func:`daemon.langley.fit_session` and the service's fit settings, without the
+  small ozone and pressure corrections.
+
+When the recomputed number of points used differs from the stored one, a note says
+so. Without a stored result the recomputed line is drawn.
+
+The terminal plot uses Unicode (Braille dots for the line, one glyph per point) and
+fits 80 columns: ``●`` a point in the fit, ``×`` a point the fit rejected as an
+outlier, ``○`` a point screened out before the fit or outside the air-mass window.
+``--png FILE`` draws the same with matplotlib (the ``plot`` extra). numpy is imported
+for the fit; matplotlib only for ``--png``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import os
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+DEFAULT_CONFIG = "/etc/heliotrope/heliotrope.yaml"
+PLOT_EXTRA_HINT = "install the plot extra: pip install 'heliotrope[plot]'"
+USED, REJECTED, EXCLUDED = "used", "rejected", "excluded"
+GLYPHS = {USED: "●", REJECTED: "×", EXCLUDED: "○"}
+_PRIORITY = {EXCLUDED: 1, USED: 2, REJECTED: 3}  # which glyph wins a shared cell
+# Braille dot bits by (column, row) inside one character cell (Unicode U+2800 block).
+_BRAILLE = ((0x01, 0x02, 0x04, 0x40), (0x08, 0x10, 0x20, 0x80))
+
+
+@dataclass(frozen=True)
+class PlotPoint:
+    """One measurement of the session as the plot shows it."""
+
+    measurement_id: int
+    time_utc: str
+    airmass: float | None
+    signal_v: float | None  # dark-corrected (and temperature-corrected) signal [V]
+    role: str  # USED, REJECTED or EXCLUDED
+    why: str | None = None  # why a point is excluded
+
+    @property
+    def ln_v(self) -> float | None:
+        if self.signal_v is None or not (self.signal_v > 0) or not math.isfinite(self.signal_v):
+            return None
+        return math.log(self.signal_v)
+
+
+@dataclass
+class SessionView:
+    """Everything one Langley plot shows: points, the fitted line and the stored result."""
+
+    plan_date: str
+    session: str
+    channel: str
+    wavelength_nm: float
+    points: list[PlotPoint]
+    ln_v0: float | None  # fitted intercept [ln V]; None without a fit
+    tau: float | None  # minus the fitted slope
+    v0: float | None
+    v0_rel_unc: float | None
+    n_used: int
+    accepted: bool
+    reasons: list[str]
+    stored: dict[str, Any] | None  # the stored session result, if any
+    site_name: str | None = None
+    line_source: str | None = None  # where the drawn line comes from
+    notes: list[str] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"date": self.plan_date, "session": self.session, "channel": self.channel,
+                "wavelength_nm": self.wavelength_nm,
+                "fit": {"v0": self.v0, "ln_v0": self.ln_v0, "tau": self.tau,
+                        "v0_rel_unc": self.v0_rel_unc, "n_used": self.n_used,
+                        "n_total": len(self.points), "accepted": self.accepted,
+                        "reasons": self.reasons},
+                "line_source": self.line_source, "stored": self.stored, "notes": self.notes,
+                "points": [{"measurement_id": p.measurement_id, "time_utc": p.time_utc,
+                            "airmass": p.airmass, "signal_v": p.signal_v, "ln_v": p.ln_v,
+                            "role": p.role, "why": p.why} for p in self.points]}
+
+
+# --------------------------------------------------------------------------- recompute
+
+def _temperature_corrected(signal_v: float, detector_temp_c: float | None, channel) -> float:
+    # Same correction as daemon.sessionfit.temperature_corrected (which cannot be imported
+    # here: it pulls in sqlite-utils through daemon.store).
+    if (channel.temp_coeff_per_k == 0.0 or detector_temp_c is None
+            or not math.isfinite(detector_temp_c)):
+        return signal_v
+    return signal_v / (1.0 + channel.temp_coeff_per_k
+                       * (detector_temp_c - channel.reference_temp_c))
+
+
+def _screen(points: list[dict], channel, config) -> tuple[list[dict], list[PlotPoint]]:
+    """Split the session's points as daemon.sessionfit screens them: the fit's inputs
+    (dicts with airmass and signal), and the screened-out points."""
+    max_cv = config.fit.max_cv
+    max_pointing = config.acquisition.max_pointing_error_deg
+    kept: list[dict] = []
+    screened: list[PlotPoint] = []
+    for p in points:
+        st = p["channels"].get(channel.name)
+        if st is None or st["n_sun"] == 0 or st["sun_mean_v"] is None:
+            continue
+        net = st["sun_mean_v"] - (st["dark_mean_v"] or 0.0)
+
+        def out(why: str, value: float = net, p: dict = p) -> None:
+            screened.append(PlotPoint(p["measurement_id"], p["time_utc"], p["airmass"],
+                                      value, EXCLUDED, why))
+
+        pointing = p["pointing_error_deg"]
+        if not p["locked"] or (pointing is not None and pointing > max_pointing):
+            out("sun lock not confirmed or pointing error too large")
+            continue
+        if st["saturated"]:
+            out("saturated")
+            continue
+        if st["sun_sd_v"] is not None and net > 0.0 and st["sun_sd_v"] / net > max_cv:
+            out(f"cloudy: burst coefficient of variation above {max_cv:g}")
+            continue
+        if p["has_housekeeping"]:
+            net = _temperature_corrected(net, p["detector_temp_c"], channel)
+        kept.append({"p": p, "airmass": math.nan if p["airmass"] is None else p["airmass"],
+                     "signal": net})
+    return kept, screened
+
+
+def langley_view(conn, config, plan_date: str, session: str, channel_name: str) -> SessionView:
+    """Recompute one channel's session fit from the stored points, with per-point roles.
+
+    Parameters
+    ----------
+    conn : sqlite3.Connection
+        A read-only store connection (:func:`daemon.storeread.open_readonly`).
+    config : daemon.config.Config
+        The service's configuration: channels, screening limits and fit settings.
+    plan_date : str
+        Local date of the plan, YYYY-MM-DD.
+    session : str
+        'am' or 'pm'.
+    channel_name : str
+        A channel named in the configuration.
+    """
+    import numpy as np
+
+    from daemon.langley import WINDOW_EDGE_TOLERANCE, fit_session
+    from daemon.storeread import results_between, session_points_readonly
+
+    channel = config.channel(channel_name)
+    raw = session_points_readonly(conn, plan_date, session)
+    kept, screened = _screen(raw, channel, config)
+    fit = fit_session(np.array([k["airmass"] for k in kept], dtype=float),
+                      np.array([k["signal"] for k in kept], dtype=float), config.fit)
+    lo = config.fit.airmass_min * (1 - WINDOW_EDGE_TOLERANCE)
+    hi = config.fit.airmass_max * (1 + WINDOW_EDGE_TOLERANCE)
+    points = list(screened)
+    for k, used in zip(kept, fit.used, strict=True):
+        p, m, v = k["p"], k["airmass"], k["signal"]
+        if used:
+            role, why = USED, None
+        elif not (math.isfinite(m) and lo <= m <= hi):
+            role, why = EXCLUDED, "outside the fit's air-mass window"
+        elif not (math.isfinite(v) and v > 0):
+            role, why = EXCLUDED, "signal zero or negative"
+        else:
+            role, why = REJECTED, "rejected by the fit as an outlier"
+        points.append(PlotPoint(p["measurement_id"], p["time_utc"], p["airmass"], v, role, why))
+    points.sort(key=lambda q: (q.time_utc, q.measurement_id))
+    stored = next((r for r in results_between(conn, plan_date, plan_date)
+                   if r["session"] == session and r["channel"] == channel_name), None)
+    view = SessionView(
+        plan_date=plan_date, session=session, channel=channel.name,
+        wavelength_nm=channel.wavelength_nm, points=points, ln_v0=None, tau=None, v0=None,
+        v0_rel_unc=None, n_used=fit.n_used, accepted=fit.accepted, reasons=list(fit.reasons),
+        stored=stored)
+    if stored is not None:
+        view.v0, view.v0_rel_unc = stored["v0"], stored["v0_rel_unc"]
+        view.accepted, view.reasons = stored["accepted"], list(stored["reasons"])
+        if stored["v0"] is not None and stored["v0"] > 0 and stored["tau"] is not None:
+            view.ln_v0, view.tau = math.log(stored["v0"]), stored["tau"]
+            view.line_source = "stored session result"
+        if stored["n_used"] != fit.n_used:
+            view.notes.append(f"the stored fit used {stored['n_used']} points, this "
+                              f"recomputation {fit.n_used}: the marks may be off (the "
+                              "configuration or the fit changed since the session was "
+                              "fitted?)")
+    elif math.isfinite(fit.ln_v0) and math.isfinite(fit.tau):
+        view.ln_v0, view.tau, view.v0 = fit.ln_v0, fit.tau, fit.v0
+        view.v0_rel_unc = fit.v0_rel_unc if math.isfinite(fit.v0_rel_unc) else None
+        view.line_source = "recomputed here"
+        view.notes.append("no stored result for this session yet: the line is fitted here")
+    return view
+
+
+# --------------------------------------------------------------------------- terminal
+
+def _nice_range(lo: float, hi: float) -> tuple[float, float]:
+    if hi <= lo:
+        pad = abs(lo) * 0.05 or 0.05
+        return lo - pad, hi + pad
+    pad = 0.04 * (hi - lo)
+    return lo - pad, hi + pad
+
+
+def render_terminal(view: SessionView, width: int = 80, height: int = 16) -> str:
+    """The Langley plot as text: at most ``width`` columns, ``height`` plot rows.
+
+    ln V [ln(V/1 V)] against air mass from 0, so the fitted line runs back to its
+    intercept ln V0 at air mass zero.
+    """
+    label_w = 8
+    plot_w = max(20, width - label_w - 2)
+    plot_h = max(6, height)
+    head = [f"Langley plot {view.plan_date} {view.session}, channel {view.channel} "
+            f"({view.wavelength_nm:g} nm)"
+            + (f", {view.site_name}" if view.site_name else "")]
+    if view.ln_v0 is not None:
+        stored_1au = view.stored.get("v0_1au") if view.stored else None
+        at_1au = f" ({stored_1au:.5f} V at 1 AU)" if stored_1au is not None else ""
+        unc = (f" +/- {100 * view.v0_rel_unc:.3f} %" if view.v0_rel_unc is not None else "")
+        head.append(f"V0 {view.v0:.5f} V{unc}{at_1au}, tau {view.tau:.4f}")
+    n_plotted = sum(1 for p in view.points if p.ln_v is not None and p.airmass is not None)
+    head.append(f"{view.n_used} of {len(view.points)} points in the fit, "
+                f"{'accepted' if view.accepted else 'NOT accepted'}"
+                + (f"; line: {view.line_source}" if view.line_source else ""))
+    plotted = [p for p in view.points if p.ln_v is not None and p.airmass is not None
+               and math.isfinite(p.airmass)]
+    if not plotted:
+        return "\n".join(head + ["nothing to plot: no point with a positive signal"]
+                         + [f"note: {n}" for n in view.notes])
+    x_hi = max(p.airmass for p in plotted)
+    x_lo = 0.0 if view.ln_v0 is not None else math.floor(min(p.airmass for p in plotted))
+    x_hi = math.ceil(2.0 * x_hi) / 2.0  # a target measured just past m = 6 keeps the axis at 6.5
+    if x_hi <= x_lo:
+        x_hi = x_lo + 1.0
+    ys = [p.ln_v for p in plotted]
+    if view.ln_v0 is not None:
+        ys += [view.ln_v0 - view.tau * x_lo, view.ln_v0 - view.tau * x_hi]
+    y_lo, y_hi = _nice_range(min(ys), max(ys))
+
+    dots_w, dots_h = 2 * plot_w, 4 * plot_h
+
+    def dot_x(x: float) -> int:
+        return min(dots_w - 1, max(0, round((x - x_lo) / (x_hi - x_lo) * (dots_w - 1))))
+
+    def dot_y(y: float) -> int:
+        return min(dots_h - 1, max(0, round((y_hi - y) / (y_hi - y_lo) * (dots_h - 1))))
+
+    bits = [[0] * plot_w for _ in range(plot_h)]
+    if view.ln_v0 is not None:
+        prev = None
+        for px in range(dots_w):
+            x = x_lo + px / (dots_w - 1) * (x_hi - x_lo)
+            py = dot_y(view.ln_v0 - view.tau * x)
+            lo_y, hi_y = (py, py) if prev is None else (min(prev, py), max(prev, py))
+            for yy in range(lo_y, hi_y + 1):
+                bits[yy // 4][px // 2] |= _BRAILLE[px % 2][yy % 4]
+            prev = py
+    glyph: dict[tuple[int, int], str] = {}
+    for p in plotted:
+        cell = (dot_y(p.ln_v) // 4, dot_x(p.airmass) // 2)
+        if cell not in glyph or _PRIORITY[p.role] > _PRIORITY[glyph[cell]]:
+            glyph[cell] = p.role
+
+    digits = 4 if (y_hi - y_lo) < 0.2 else 3
+    label_rows = {0: y_hi, plot_h // 2: y_hi - (plot_h // 2) / (plot_h - 1) * (y_hi - y_lo),
+                  plot_h - 1: y_lo}
+    lines = head + [" " * (label_w - 4) + "ln V"]
+    for row in range(plot_h):
+        label = f"{label_rows[row]:.{digits}f}" if row in label_rows else ""
+        tick = "┤" if row in label_rows else "│"
+        cells = []
+        for col in range(plot_w):
+            role = glyph.get((row, col))
+            if role is not None:
+                cells.append(GLYPHS[role])
+            elif bits[row][col]:
+                cells.append(chr(0x2800 + bits[row][col]))
+            else:
+                cells.append(" ")
+        lines.append(f"{label:>{label_w}} {tick}" + "".join(cells).rstrip())
+    axis = ["─"] * plot_w
+    tick_labels = [" "] * (plot_w + 4)
+    for m in range(int(x_lo), int(math.floor(x_hi)) + 1):
+        col = dot_x(float(m)) // 2
+        axis[col] = "┬"
+        text = str(m)
+        start = max(0, col - len(text) // 2)
+        tick_labels[start:start + len(text)] = list(text)
+    lines.append(" " * label_w + " └" + "".join(axis))
+    lines.append(" " * (label_w + 2) + "".join(tick_labels).rstrip())
+    lines.append(" " * (label_w + 2 + plot_w // 2 - 4) + "air mass")
+    lines.append(f"{GLYPHS[USED]} in the fit  {GLYPHS[REJECTED]} rejected by the fit  "
+                 f"{GLYPHS[EXCLUDED]} screened or outside the window  "
+                 + ("⠒ fit" if view.ln_v0 is not None else ""))
+    if n_plotted < len(view.points):
+        lines.append(f"{len(view.points) - n_plotted} point(s) without a positive signal "
+                     "are not drawn")
+    lines += [f"note: {n}" for n in view.notes]
+    return "\n".join(_wrap(line, width) for line in lines)
+
+
+def _wrap(line: str, width: int) -> str:
+    """Break a text line at spaces so that no line is wider than ``width``."""
+    if len(line) <= width:
+        return line
+    out, current = [], ""
+    for word in line.split(" "):
+        candidate = f"{current} {word}" if current else word
+        if len(candidate) > width and current:
+            out.append(current)
+            current = "  " + word
+        else:
+            current = candidate
+    out.append(current)
+    return "\n".join(part[:width] for part in out)
+
+
+# --------------------------------------------------------------------------- PNG
+
+def render_png(views: list[SessionView], path: Path) -> None:
+    """Draw the views side by side into a PNG file (matplotlib, Agg backend)."""
+    try:
+        import matplotlib
+    except ImportError:
+        raise ImportError(PLOT_EXTRA_HINT) from None
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, axes = plt.subplots(1, len(views), figsize=(6 * len(views), 4.5), squeeze=False)
+    styles = {USED: dict(marker="o", color="tab:blue", label="in the fit"),
+              REJECTED: dict(marker="x", color="tab:red", label="rejected by the fit"),
+              EXCLUDED: dict(marker="o", mfc="none", color="tab:gray",
+                             label="screened or outside the window")}
+    for ax, view in zip(axes[0], views, strict=True):
+        for role, style in styles.items():
+            pts = [p for p in view.points if p.role == role and p.ln_v is not None
+                   and p.airmass is not None]
+            if pts:
+                ax.plot([p.airmass for p in pts], [p.ln_v for p in pts], linestyle="none",
+                        **style)
+        if view.ln_v0 is not None:
+            x_hi = max([p.airmass for p in view.points if p.airmass is not None] + [1.0])
+            ax.plot([0.0, x_hi], [view.ln_v0, view.ln_v0 - view.tau * x_hi], color="k",
+                    linewidth=1, label=f"fit: V0 {view.v0:.5f} V, tau {view.tau:.4f}")
+        ax.set_xlim(left=0.0)
+        ax.set_xlabel("air mass")
+        ax.set_ylabel("ln V [ln(V / 1 V)]")
+        ax.set_title(f"{view.plan_date} {view.session}, channel {view.channel} "
+                     f"({view.wavelength_nm:g} nm)")
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize="small")
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
+# --------------------------------------------------------------------------- command
+
+def service_config(path: str | None):
+    """The service's configuration for the plot and the report (CommandError if bad)."""
+    from daemon.cli import EX_CONFIG, CommandError
+    from daemon.config import ConfigError, load_config
+
+    path = path or os.environ.get("HELIOTROPE_CONFIG") or DEFAULT_CONFIG
+    try:
+        return load_config(path)
+    except ConfigError as exc:
+        raise CommandError(f"{exc}. The plot and the report need the service's configuration "
+                           "(channels, screening and fit settings): pass --config FILE or set "
+                           "HELIOTROPE_CONFIG", EX_CONFIG) from None
+
+
+def session_views(db: str | Path, config, plan_date: str, channel: str,
+                  sessions: tuple[str, ...]) -> list[SessionView]:
+    """The views of one channel for the given sessions that have points, from a store."""
+    from daemon.storeread import open_readonly, stored_plan
+
+    conn = open_readonly(db)
+    try:
+        plan = stored_plan(conn, plan_date)
+        views = []
+        for session in sessions:
+            view = langley_view(conn, config, plan_date, session, channel)
+            view.site_name = (plan or {}).get("site_name") or config.site.name
+            if view.points or len(sessions) == 1:
+                views.append(view)
+        return views
+    finally:
+        conn.close()
+
+
+def cmd_plot(args: argparse.Namespace) -> int:
+    from daemon.cli import EX_NOINPUT, EX_UNAVAILABLE, EX_USAGE, CommandError
+    from daemon.storeread import StoreReadError
+    from daemon.tables import dumps
+
+    config = service_config(args.config)
+    names = [ch.name for ch in config.channels]
+    if args.channel not in names:
+        raise CommandError(f"--channel {args.channel!r} is not in {config.source}; "
+                           f"choose one of {', '.join(names)}", EX_USAGE)
+    png = Path(args.png).expanduser() if args.png else None
+    if png is not None:
+        import importlib.util
+        if importlib.util.find_spec("matplotlib") is None:
+            raise CommandError(PLOT_EXTRA_HINT, EX_UNAVAILABLE)
+        from daemon.export import ExportError, _check_out_path
+        try:
+            _check_out_path(png, Path(args.db).expanduser())
+        except ExportError as exc:
+            raise CommandError(str(exc).replace("--out", "--png"), EX_USAGE) from None
+    sessions = (args.session,) if args.session else ("am", "pm")
+    try:
+        views = session_views(args.db, config, args.date.isoformat(), args.channel, sessions)
+    except StoreReadError as exc:
+        raise CommandError(str(exc), EX_NOINPUT) from None
+    if not views:
+        raise CommandError(f"no measurements of {args.date} in {args.db}; "
+                           "`heliotrope results` lists the dates with results", EX_NOINPUT)
+    if args.json:
+        print(dumps({"plots": [v.to_dict() for v in views]}))
+    else:
+        print("\n\n".join(render_terminal(v) for v in views))
+    if png is not None:
+        try:
+            render_png(views, png)
+        except ImportError:
+            raise CommandError(PLOT_EXTRA_HINT, EX_UNAVAILABLE) from None
+        print(f"PNG written to {png}", file=sys.stderr)
+    return 0

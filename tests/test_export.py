@@ -1,0 +1,215 @@
+"""``heliotrope export``: units in the CSV header, values equal to the raw samples'
+statistics, local-date ranges, streaming, and safe output files."""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import io
+import json
+
+import numpy as np
+import pytest
+
+from daemon import export as ex
+from daemon.cli import main
+from daemon.storeread import open_readonly, results_between
+from tests.synthetic_store import DAY, build_day
+
+D = DAY.isoformat()
+
+
+@pytest.fixture(scope="module")
+def day(tmp_path_factory):
+    return build_day(tmp_path_factory.mktemp("export") / "day.db")
+
+
+def _run(capsys, *argv) -> tuple[int, str, str]:
+    rc = main(list(argv))
+    cap = capsys.readouterr()
+    return rc, cap.out, cap.err
+
+
+def test_measurements_csv_has_units_and_the_samples_statistics(day, capsys):
+    rc, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                      "measurements")
+    assert rc == 0
+    rows = list(csv.reader(io.StringIO(out)))
+    header = rows[0]
+    for col in ("sun_mean_v [V]", "sun_sd_v [V]", "dark_mean_v [V]", "airmass [1]",
+                "pressure_hpa [hPa]", "pointing_error_deg [deg]", "detector_temp_c [degC]",
+                "supply_v [V]", "time_utc", "channel"):
+        assert col in header, col
+    body = [dict(zip(header, r, strict=True)) for r in rows[1:]]
+    n_channels = len(day.config.channels)
+    assert len(body) == len(day.records) * n_channels
+    # Mean and sample standard deviation recomputed with numpy from the written samples.
+    rec = day.records[day.outlier_id]
+    mine = [r for r in body if r["measurement_id"] == str(day.outlier_id)]
+    for r in mine:
+        c = rec.channels.index(r["channel"])
+        sun = np.array([s[c] for s in rec.sun])
+        dark = np.array([s[c] for s in rec.dark])
+        assert float(r["sun_mean_v [V]"]) == pytest.approx(sun.mean(), rel=1e-12)
+        assert float(r["sun_sd_v [V]"]) == pytest.approx(sun.std(ddof=1), rel=1e-9)
+        assert float(r["dark_mean_v [V]"]) == pytest.approx(dark.mean(), rel=1e-12)
+        assert r["n_sun"] == "10" and r["n_dark"] == "5" and r["locked"] == "true"
+    failed = [r for r in body if r["measurement_id"] == str(day.failed_id)]
+    assert {r["status"] for r in failed} == {"failed"}
+    assert all(r["sun_mean_v [V]"] == "" and r["n_sun"] == "0" for r in failed)
+
+
+def test_json_is_one_array_with_the_same_rows(day, capsys):
+    _, out_csv, _ = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                         "measurements", "--format", "csv")
+    rc, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                      "measurements", "--format", "json")
+    assert rc == 0
+    rows = json.loads(out)
+    assert isinstance(rows, list) and len(rows) == len(out_csv.splitlines()) - 1
+    assert set(rows[0]) == {c for c, _ in ex.MEASUREMENT_COLUMNS}
+    assert isinstance(rows[0]["locked"], bool)
+
+
+def test_samples_export_holds_every_raw_value(day, capsys):
+    rc, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                      "samples", "--format", "json")
+    assert rc == 0
+    rows = json.loads(out)
+    expected = sum(len(r.sun) + len(r.dark) for r in day.records.values()) * 6
+    assert len(rows) == expected
+    rec = day.records[day.outlier_id]
+    sun_500 = [r["value_v"] for r in rows if r["measurement_id"] == day.outlier_id
+               and r["kind"] == "sun" and r["channel"] == "500"]
+    assert sun_500 == [s[rec.channels.index("500")] for s in rec.sun]
+
+
+def test_results_export_matches_the_reader(day, capsys):
+    rc, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", D, "--to", D,
+                      "--what", "results", "--format", "json")
+    assert rc == 0
+    rows = json.loads(out)
+    conn = open_readonly(day.path)
+    try:
+        want = results_between(conn, D, D)
+    finally:
+        conn.close()
+    assert [{k: r[k] for k in want[0]} for r in rows] == want
+    assert all(r["fitted_utc"] for r in rows)
+    rc, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                      "results")
+    header = out.splitlines()[0]
+    assert "v0_1au [V]" in header and "wavelength_nm [nm]" in header and "tau [1]" in header
+
+
+def test_events_follow_the_local_date(day, capsys):
+    # Pico Sereno keeps America/Mexico_City time, UTC-6 (IANA tz database): 05:30 UTC on
+    # the 16th is 23:30 on the 15th; 06:30 UTC is already the 16th.
+    rc, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                      "events", "--format", "json")
+    assert rc == 0
+    kinds = [e["kind"] for e in json.loads(out)]
+    assert "late" in kinds and "next_day" not in kinds and "no_lock" in kinds
+    _, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", "2027-02-16",
+                     "--what", "events", "--format", "json")
+    assert [e["kind"] for e in json.loads(out)] == ["next_day"]
+
+
+def test_empty_range_gives_a_header_or_an_empty_array(day, capsys):
+    _, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", "2020-01-01",
+                     "--what", "measurements")
+    assert len(out.splitlines()) == 1
+    _, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", "2020-01-01",
+                     "--what", "results", "--format", "json")
+    assert json.loads(out) == []
+
+
+def test_aod_export_uses_the_calibration_table(tmp_path, capsys):
+    from daemon.store import Store
+
+    day = build_day(tmp_path / "aod.db", fit=False, events=False)
+    if not hasattr(Store, "save_aod"):
+        pytest.skip("the store has no AOD table in this version (calibration engine absent)")
+    mid = day.record_ids[("am", 0)]
+    with Store.open(day.path) as s:
+        cid = s.save_calibration(dt.datetime(2027, 3, 1, tzinfo=dt.UTC), D, D,
+                                 "Pico Sereno Station", {}, [], [])
+        s.save_aod([{"measurement_id": mid, "channel": "500", "calibration_id": cid,
+                     "wavelength_nm": 500.0, "aod": 0.021, "aod_unc": 0.001,
+                     "tau_total": 0.1196, "tau_rayleigh": 0.0915, "tau_ozone": 0.0081,
+                     "airmass": 6.0, "ozone_airmass": 5.6, "pressure_hpa": 645.0,
+                     "flag": None}])
+    rc, out, _ = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what", "aod")
+    assert rc == 0
+    rows = list(csv.DictReader(io.StringIO(out)))
+    assert len(rows) == 1 and rows[0]["channel"] == "500"
+    assert float(rows[0]["aod [1]"]) == pytest.approx(0.021)
+    assert "wavelength_nm [nm]" in rows[0]
+
+
+def test_writers_stream_row_by_row():
+    pulled: list[int] = []
+
+    def rows():
+        for i in range(5):
+            pulled.append(i)
+            yield {"id": i, "time_utc": "t", "level": "info", "kind": "k", "message": "m",
+                   "detail": None}
+
+    class Sink(io.StringIO):
+        """Records how many rows had been pulled when the first row reached the output."""
+
+        def __init__(self, marker: str):
+            super().__init__()
+            self.marker, self.pulled_at_first_row = marker, None
+
+        def write(self, text):
+            if self.pulled_at_first_row is None and self.marker in text:
+                self.pulled_at_first_row = len(pulled)
+            return super().write(text)
+
+    for writer, marker in ((ex.write_json, '"id": 0'), (ex.write_csv, "0,t,info")):
+        pulled.clear()
+        sink = Sink(marker)
+        assert writer(rows(), ex.EVENT_COLUMNS, sink) == 5
+        assert sink.pulled_at_first_row == 1, writer.__name__
+    buf = io.StringIO()
+    ex.write_json(rows(), ex.EVENT_COLUMNS, buf)
+    assert [r["id"] for r in json.loads(buf.getvalue())] == [0, 1, 2, 3, 4]
+
+
+def test_row_sources_are_lazy(day):
+    conn = open_readonly(day.path)
+    try:
+        for what in ex.WHATS:
+            it = ex.export_rows(conn, what, D, D)
+            assert iter(it) is it, what  # a generator over the cursor, not a list
+    finally:
+        conn.close()
+
+
+def test_out_file_is_written_whole_and_never_the_store(day, tmp_path, capsys):
+    out = tmp_path / "m.csv"
+    rc, stdout, err = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                           "results", "--out", str(out))
+    assert rc == 0 and stdout == "" and "12 results rows written" in err
+    assert out.read_text().startswith("date,session,channel")
+    assert not list(tmp_path.glob(".m.csv.*"))  # no temporary file left behind
+    rc, _, err = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                      "results", "--out", str(day.path))
+    assert rc == 64 and "the store itself" in err
+    rc, _, err = _run(capsys, "export", "--db", str(day.path), "--from", D, "--what",
+                      "results", "--out", str(tmp_path / "no" / "such" / "dir.csv"))
+    assert rc == 64 and "does not exist" in err
+
+
+def test_bad_ranges_and_stores_are_clear(day, tmp_path, capsys):
+    rc, _, err = _run(capsys, "export", "--db", str(day.path), "--from", "2027-02-16",
+                      "--to", D, "--what", "results")
+    assert rc == 64 and "before the start date" in err
+    rc, _, err = _run(capsys, "export", "--db", str(tmp_path / "x.db"), "--from", D,
+                      "--what", "results")
+    assert rc == 66 and "no store here" in err
+    with pytest.raises(SystemExit):
+        main(["export", "--db", str(day.path), "--from", "15/02/2027", "--what", "results"])
+    assert "YYYY-MM-DD" in capsys.readouterr().err

@@ -1,0 +1,171 @@
+"""The operator's read commands: no heavy imports, no writes, no waiting for the writer.
+
+Every read command runs against a synthetic day (tests/synthetic_store.py): in a
+fresh interpreter to see what it imports, in-process to check the store file is left
+byte for byte as it was, and while another process holds an open write transaction.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import json
+import os
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from daemon import storeread
+from daemon.cli import main
+from tests.synthetic_store import CONFIG_PATH, DAY, build_day
+
+ROOT = Path(__file__).resolve().parent.parent
+D = DAY.isoformat()
+HEAVY = ("pvlib", "pandas", "scipy", "sqlite_utils", "matplotlib")
+
+# (argv without --db, numpy allowed, environment additions)
+READ_COMMANDS = [
+    (["status", "--json"], False, {}),
+    (["today", "--json"], False, {}),
+    (["today"], False, {}),
+    (["results", "--from", D, "--to", D], False, {}),
+    (["plan", "--date", D, "--json"], False, {}),
+    (["export", "--from", D, "--what", "measurements", "--format", "csv"], False, {}),
+    (["export", "--from", D, "--what", "samples", "--format", "json"], False, {}),
+    (["export", "--from", D, "--what", "results", "--format", "csv"], False, {}),
+    (["export", "--from", D, "--what", "events", "--format", "json"], False, {}),
+    (["export", "--from", D, "--what", "aod", "--format", "csv"], False, {}),
+    (["plot", "--date", D, "--channel", "500", "--config", str(CONFIG_PATH)], True, {}),
+    (["report", "--date", D, "--config", str(CONFIG_PATH)], True, {}),
+    (["ssh-gate"], False, {"SSH_ORIGINAL_COMMAND": "today --json"}),
+]
+
+
+def _ids(cmds):
+    return [" ".join(c[0][:3]) for c in cmds]
+
+
+@pytest.fixture(scope="module")
+def day(tmp_path_factory):
+    path = tmp_path_factory.mktemp("read") / "heliotrope.db"
+    return build_day(path, heartbeat=dt.datetime.now(dt.UTC))
+
+
+def _sha(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+_PROBE = """
+import json, sys
+from daemon.cli import main
+import io, contextlib
+out = io.StringIO()
+with contextlib.redirect_stdout(out):
+    rc = main(sys.argv[1:])
+print(json.dumps({"rc": rc, "modules": sorted(m.split(".")[0] for m in sys.modules),
+                  "out": out.getvalue()[:200]}))
+"""
+
+
+@pytest.mark.parametrize("argv,numpy_ok,env", READ_COMMANDS, ids=_ids(READ_COMMANDS))
+def test_read_command_imports_nothing_heavy(day, argv, numpy_ok, env):
+    full = [*argv, "--db", str(day.path)]
+    result = subprocess.run([sys.executable, "-c", _PROBE, *full], capture_output=True,
+                            text=True, cwd=ROOT, env={**os.environ, **env}, timeout=60)
+    assert result.returncode == 0, result.stderr
+    info = json.loads(result.stdout.strip().splitlines()[-1])
+    assert info["rc"] in (0, 1), (info, result.stderr)
+    loaded = set(info["modules"])
+    assert not loaded & set(HEAVY), sorted(loaded & set(HEAVY))
+    if not numpy_ok:
+        assert "numpy" not in loaded
+
+
+def test_read_commands_leave_the_store_file_untouched(day, capsys):
+    before = _sha(day.path), day.path.stat().st_mtime_ns
+    for argv, _, env in READ_COMMANDS:
+        old = {k: os.environ.get(k) for k in env}
+        os.environ.update(env)
+        try:
+            rc = main([*argv, "--db", str(day.path)])
+        finally:
+            for k, v in old.items():
+                if v is None:
+                    os.environ.pop(k, None)
+                else:
+                    os.environ[k] = v
+        assert rc in (0, 1), argv
+    capsys.readouterr()
+    assert (_sha(day.path), day.path.stat().st_mtime_ns) == before
+
+
+def test_the_reader_connection_refuses_writes(day):
+    conn = storeread.open_readonly(day.path)
+    try:
+        with pytest.raises(sqlite3.OperationalError, match="readonly|read-only|query_only"):
+            conn.execute("INSERT INTO meta (key, value, updated_utc) VALUES ('x', 'y', 'z')")
+        with pytest.raises(sqlite3.OperationalError):
+            conn.execute("DELETE FROM events")
+    finally:
+        conn.close()
+
+
+_WRITER = """
+import sqlite3, sys
+conn = sqlite3.connect(sys.argv[1], isolation_level=None, timeout=5)
+conn.execute("PRAGMA journal_mode=WAL")
+conn.execute("BEGIN IMMEDIATE")
+conn.execute("INSERT INTO events (time_utc, level, kind, message) VALUES "
+             "('2027-02-15T20:00:00.000000+00:00', 'info', 'writer', 'uncommitted')")
+print("holding", flush=True)
+sys.stdin.readline()
+conn.execute("ROLLBACK")
+conn.close()
+"""
+
+
+def test_read_commands_work_while_the_service_holds_a_write_transaction(day, capsys):
+    writer = subprocess.Popen([sys.executable, "-c", _WRITER, str(day.path)],
+                              stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+    try:
+        assert writer.stdout.readline().strip() == "holding"
+        for argv, _, env in READ_COMMANDS:
+            if env:
+                continue  # the gate runs the same `today` as above
+            rc = main([*argv, "--db", str(day.path)])
+            captured = capsys.readouterr()
+            assert rc in (0, 1), (argv, captured.err)
+            assert "locked" not in captured.err
+        # The uncommitted event is invisible to readers (WAL snapshot isolation).
+        assert main(["export", "--from", D, "--what", "events", "--format", "json",
+                     "--db", str(day.path)]) == 0
+        events = json.loads(capsys.readouterr().out)
+        assert all(e["kind"] != "writer" for e in events)
+    finally:
+        writer.stdin.write("\n")
+        writer.stdin.flush()
+        writer.wait(timeout=10)
+    assert writer.returncode == 0
+
+
+def test_results_command_table_and_json(day, capsys):
+    assert main(["results", "--db", str(day.path), "--from", "2027-02-01", "--to", D]) == 0
+    text = capsys.readouterr().out
+    assert text.splitlines()[0] == D
+    assert max(len(line) for line in text.splitlines()) <= 80
+    assert text.count(" am ") + text.count(" pm ") == 12
+    assert main(["results", "--db", str(day.path), "--from", D, "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    conn = storeread.open_readonly(day.path)
+    try:
+        assert out["results"] == storeread.results_between(conn, D, D)
+    finally:
+        conn.close()
+    assert (out["from"], out["to"]) == (D, D)
+    assert main(["results", "--db", str(day.path), "--from", "2020-01-01"]) == 1
+    assert "no session results" in capsys.readouterr().out
+    assert main(["results", "--db", str(day.path), "--from", D, "--to", "2027-02-01"]) == 64
+    assert "swap them" in capsys.readouterr().err
