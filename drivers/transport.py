@@ -25,6 +25,15 @@ from typing import Any
 import serial
 
 from drivers.interfaces import LinkError
+
+try:
+    import termios
+
+    # pyserial's POSIX flush() calls termios.tcdrain, whose error on a vanished pty or
+    # USB adapter is termios.error (EIO): not an OSError, but the same failure.
+    PORT_FAILURES: tuple[type[BaseException], ...] = (OSError, termios.error)
+except ImportError:  # not POSIX
+    PORT_FAILURES = (OSError,)
 from drivers.protocol import (
     MAX_LINE_BYTES,
     RID_MAX,
@@ -221,7 +230,7 @@ class Transport:
                 except (LinkTimeout, ProtocolError) as exc:
                     last = exc
                     continue
-                except OSError as exc:
+                except PORT_FAILURES as exc:
                     # SerialException is an OSError; a vanished USB adapter gives a bare
                     # OSError. Either way the port object is finished: reopen it.
                     log.warning("%s: port failed during %s (%s); will reopen", self.name, cmd, exc)
@@ -329,7 +338,7 @@ class Transport:
         except OSError as exc:
             self._failures += 1
             raise _explain_open_failure(self.name, self.url, exc) from exc
-        with contextlib.suppress(OSError, AttributeError):
+        with contextlib.suppress(*PORT_FAILURES, AttributeError):
             port.reset_input_buffer()
         if self._port_failed:
             self._counters.reconnects += 1

@@ -7,6 +7,11 @@ way out it writes the station's truth file if asked.
 
     heliotrope-sim --scenario pico-sereno-clear --port pty
     heliotrope-sim --scenario my-day.yaml --port tcp:7700 --speed 60 --truth truth.json
+
+The scenario's faults (``faults:`` in its YAML: line damage at a rate, scheduled
+reboots, vanishing ports, tracker stalls) are played as the instrument clock reaches
+them. Everything random is drawn from ``--seed``: the same seed, scenario and sequence
+of requests give the same replies and the same truth file.
 """
 
 from __future__ import annotations
@@ -71,7 +76,9 @@ def build_parser() -> argparse.ArgumentParser:
                          "--speed) as the instrument would; default: answer at once")
     ap.add_argument("--line-faults", default="", metavar="SPEC",
                     help="damage replies at random for reliability tests, e.g. "
-                         "'drop=0.05,garble=0.05,truncate=0.02,corrupt=0.02,stale=0.05'")
+                         "'drop=0.05,garble=0.05,truncate=0.02,corrupt=0.02,stale=0.05,"
+                         "late=0.01'; replaces the scenario's own line faults (its "
+                         "scheduled events still happen)")
     ap.add_argument("-v", "--verbose", action="store_true",
                     help="log every request and reply to standard error")
     return ap
@@ -141,7 +148,7 @@ def main(argv: list[str] | None = None) -> int:
                         stream=sys.stderr, format="heliotrope-sim: %(levelname)s %(message)s")
     try:
         endpoint, tcp_port = parse_port_spec(args.port)
-        faults = LineFaults.parse(args.line_faults)
+        faults = LineFaults.parse(args.line_faults) if args.line_faults.strip() else None
         if args.speed < 0:
             raise ValueError(f"--speed {args.speed:g}: must be 0 or more")
         if args.seed < 0:
@@ -159,8 +166,10 @@ def main(argv: list[str] | None = None) -> int:
         return EX_CONFIG
     delay_scale = 1.0 / args.speed if args.realtime and args.speed > 0 else 0.0
     try:
+        scenario = station.scenario
         server = StationServer(station, endpoint, tcp_port, reply_delay_scale=delay_scale,
-                               line_faults=faults, seed=args.seed)
+                               line_faults=faults, seed=args.seed, fault_plan=scenario.faults,
+                               longitude_deg=scenario.site.longitude_deg)
     except OSError as exc:
         where = f"127.0.0.1:{tcp_port} or {tcp_port + 1}" if endpoint == "tcp" else "a pty"
         print(f"heliotrope-sim: cannot listen on {where}: {exc.strerror or exc}. Pick "

@@ -6,19 +6,45 @@ falls back to a default. ``load_scenario("pico-sereno-clear")`` finds a bare nam
 in ``sim_instrument/scenarios/<name>.yaml``; anything with a path separator or a
 ``.yaml``/``.yml`` suffix is taken as a path.
 
-Layout (units in the key names)::
+Layout (units in the key names; "(x)" marks an optional key and its default)::
 
-    description: free text                        # optional
+    description: free text                        # (empty)
     start_utc: 2025-02-12T12:30:00Z               # instrument clock at start-up
     site: {name, latitude_deg, longitude_deg, elevation_m,
-           pressure_hpa (optional: standard atmosphere at elevation_m), temperature_c}
-    atmosphere: {ozone_du, aerosol_tau_500, angstrom_alpha}
+           pressure_hpa (standard atmosphere at elevation_m), temperature_c}
+    weather:                                      # (all defaults)
+      ambient_diurnal_range_k (10), humidity_pct (35), humidity_diurnal_range_pct (40),
+      wind_m_s (2), wind_diurnal_range_m_s (0), wind_gust_sd_m_s (0),
+      pressure_tide_hpa (0), supply_v (12.6)
+    atmosphere:
+      ozone_du, aerosol_tau_500, angstrom_alpha,
+      aerosol_drift_per_h (0), aerosol_drift_from_solar_h (6),
+      aerosol_drift_until_solar_h (12), aerosol_variability (0),
+      aerosol_variability_period_s (900), precipitable_water_cm (1.0)
+      clouds: [{from_solar_h, until_solar_h, optical_depth, patchiness (0),
+                cell_s (600)}, ...]                # ([])
     instrument:
-      model, serial, firmware, full_scale_v, sample_interval_s
-      noise: {relative, read_v}
-      channels: [{name, wavelength_nm, v0_1au_v, dark_v}, ...]
+      model, serial, firmware, full_scale_v, sample_interval_s,
+      field_of_view_deg (2.5)
+      noise: {relative, read_v, shot_v (0)}
+      thermal: {detector_regulated (true), detector_setpoint_c (25),
+                regulation_leak (0.02), case_sun_heating_k (6),
+                unregulated_offset_k (1), dark_doubling_k (8)}   # (all defaults)
+      channels:
+        - {name, wavelength_nm, bandwidth_nm (10), v0_1au_v, dark_v,
+           temp_coeff_per_k (0), reference_temp_c (25)}            # spectral
+        - {name, kind: broadband, responsivity_v_per_w_m2, dark_v,
+           temp_coeff_per_k (0), reference_temp_c (25)}            # direct beam, SPECTRL2
     tracker: {model, serial, firmware, slew_rate_deg_s, capture_range_deg,
-              lock_pointing_error_deg, park_azimuth_deg (0), park_elevation_deg (90)}
+              lock_pointing_error_deg, park_azimuth_deg (0), park_elevation_deg (90),
+              wind_pointing_error_deg_per_m_s (0), min_direct_fraction_for_lock (0.3)}
+    faults:                                       # (none)
+      late_reply_s (3)
+      line: {garble, drop, truncate, corrupt, stale, late}   # probability per reply
+      events: [{kind, at_solar_h, device (radiometer), duration_s (0)}, ...]
+
+Times of day are local mean solar time in hours (``*_solar_h``), so a scenario's
+morning is a morning on whatever date the host sets the instrument clock to.
 """
 
 from __future__ import annotations
@@ -34,6 +60,7 @@ import pvlib
 import yaml
 
 from sim_instrument import sky
+from sim_instrument.faults import EVENT_KINDS, FaultEvent, FaultPlan, LineFaults
 
 SCENARIO_DIR = Path(__file__).resolve().parent / "scenarios"
 
@@ -56,24 +83,74 @@ class Site:
 
 
 @dataclass(frozen=True)
+class Weather:
+    ambient_diurnal_range_k: float = 10.0  # coldest to warmest of the day [K]
+    humidity_pct: float = 35.0  # daily mean relative humidity [%]
+    humidity_diurnal_range_pct: float = 40.0  # most to least humid [%]
+    wind_m_s: float = 2.0  # daily mean wind speed [m/s]
+    wind_diurnal_range_m_s: float = 0.0  # calmest to windiest (windiest mid-afternoon)
+    wind_gust_sd_m_s: float = 0.0  # short-term variability [m/s]
+    pressure_tide_hpa: float = 0.0  # semidiurnal tide amplitude [hPa]
+    supply_v: float = 12.6  # station supply [V]
+
+
+@dataclass(frozen=True)
+class Cloud:
+    """A cloud layer over the sun from ``from_solar_h`` to ``until_solar_h`` [h]."""
+
+    from_solar_h: float
+    until_solar_h: float
+    optical_depth: float  # grey vertical optical depth of the layer
+    patchiness: float = 0.0  # relative standard deviation of its optical depth
+    cell_s: float = 600.0  # time scale of the patches drifting past [s]
+
+
+@dataclass(frozen=True)
 class Atmosphere:
     ozone_du: float
     aerosol_tau_500: float  # aerosol optical depth at 500 nm
     angstrom_alpha: float
+    aerosol_drift_per_h: float = 0.0  # change of tau_500 per hour within the window
+    aerosol_drift_from_solar_h: float = 6.0
+    aerosol_drift_until_solar_h: float = 12.0
+    aerosol_variability: float = 0.0  # relative standard deviation of tau_500
+    aerosol_variability_period_s: float = 900.0
+    precipitable_water_cm: float = 1.0
+    clouds: tuple[Cloud, ...] = ()
+
+
+SPECTRAL = "spectral"
+BROADBAND = "broadband"
 
 
 @dataclass(frozen=True)
 class Channel:
     name: str
-    wavelength_nm: float
+    wavelength_nm: float  # band centre; for a broadband channel, nan
     v0_1au_v: float  # true top-of-atmosphere signal at 1 AU [V]
-    dark_v: float  # dark signal [V]
+    dark_v: float  # dark signal at 25 degrees C [V]
+    bandwidth_nm: float = 10.0
+    kind: str = SPECTRAL
+    responsivity_v_per_w_m2: float = 0.0  # broadband only
+    temp_coeff_per_k: float = 0.0  # relative responsivity change per kelvin
+    reference_temp_c: float = 25.0
 
 
 @dataclass(frozen=True)
 class Noise:
     relative: float  # standard deviation as a fraction of the signal
     read_v: float  # signal-independent standard deviation [V]
+    shot_v: float = 0.0  # shot noise standard deviation at a 1 V signal [V]
+
+
+@dataclass(frozen=True)
+class Thermal:
+    detector_regulated: bool = True
+    detector_setpoint_c: float = 25.0
+    regulation_leak: float = 0.02  # fraction of the case's departure that reaches it
+    case_sun_heating_k: float = 6.0  # case above ambient at noon in sun [K]
+    unregulated_offset_k: float = 1.0  # unregulated detector above the case [K]
+    dark_doubling_k: float = 8.0  # dark signal doubles every this many kelvin
 
 
 @dataclass(frozen=True)
@@ -85,6 +162,8 @@ class Instrument:
     noise: Noise
     full_scale_v: float  # samples clip here and raise the saturation flag
     sample_interval_s: float  # time between samples of a burst
+    thermal: Thermal = Thermal()
+    field_of_view_deg: float = 2.5  # full angle
 
 
 @dataclass(frozen=True)
@@ -97,6 +176,8 @@ class TrackerSpec:
     lock_pointing_error_deg: float  # rms pointing error while locked
     park_azimuth_deg: float = 0.0
     park_elevation_deg: float = 90.0
+    wind_pointing_error_deg_per_m_s: float = 0.0  # rms error added per m/s of wind
+    min_direct_fraction_for_lock: float = 0.3  # sun sensor needs this much direct beam
 
 
 @dataclass(frozen=True)
@@ -108,6 +189,8 @@ class Scenario:
     atmosphere: Atmosphere
     instrument: Instrument
     tracker: TrackerSpec
+    weather: Weather = Weather()
+    faults: FaultPlan = FaultPlan()
 
 
 class _Section:
@@ -163,8 +246,29 @@ class _Section:
                                   f"punctuation marks), got {value!r}")
         return value
 
+    def boolean(self, key: str, default: bool) -> bool:
+        value = self.raw(key, required=False)
+        if value is None:
+            return default
+        if not isinstance(value, bool):
+            raise self._fail(key, f"must be true or false, got {value!r}")
+        return value
+
     def section(self, key: str) -> _Section:
         return _Section(self.raw(key), self._key(key), self.source)
+
+    def optional_section(self, key: str) -> _Section | None:
+        value = self.raw(key, required=False)
+        return None if value is None else _Section(value, self._key(key), self.source)
+
+    def items(self, key: str) -> list[tuple[str, Any]]:
+        """A list of mappings (empty when the key is left out), with their key paths."""
+        value = self.raw(key, required=False)
+        if value is None:
+            return []
+        if not isinstance(value, list):
+            raise self._fail(key, f"must be a list, got {type(value).__name__}")
+        return [(f"{self._key(key)}[{i}]", v) for i, v in enumerate(value)]
 
     def finish(self) -> None:
         unknown = sorted(set(map(str, self.data)) - self.read)
@@ -212,29 +316,136 @@ def _site(s: _Section) -> Site:
     return site
 
 
+def _weather(s: _Section | None) -> Weather:
+    if s is None:
+        return Weather()
+    d = Weather()
+    w = Weather(
+        ambient_diurnal_range_k=s.number("ambient_diurnal_range_k", 0.0, 40.0, "K",
+                                         default=d.ambient_diurnal_range_k),
+        humidity_pct=s.number("humidity_pct", 0.0, 100.0, "%", default=d.humidity_pct),
+        humidity_diurnal_range_pct=s.number("humidity_diurnal_range_pct", 0.0, 100.0, "%",
+                                            default=d.humidity_diurnal_range_pct),
+        wind_m_s=s.number("wind_m_s", 0.0, 60.0, "m/s", default=d.wind_m_s),
+        wind_diurnal_range_m_s=s.number("wind_diurnal_range_m_s", 0.0, 60.0, "m/s",
+                                        default=d.wind_diurnal_range_m_s),
+        wind_gust_sd_m_s=s.number("wind_gust_sd_m_s", 0.0, 20.0, "m/s",
+                                  default=d.wind_gust_sd_m_s),
+        pressure_tide_hpa=s.number("pressure_tide_hpa", 0.0, 5.0, "hPa",
+                                   default=d.pressure_tide_hpa),
+        supply_v=s.number("supply_v", 5.0, 30.0, "V", default=d.supply_v),
+    )
+    if w.wind_diurnal_range_m_s / 2.0 > w.wind_m_s:
+        raise s._fail("wind_diurnal_range_m_s", f"= {w.wind_diurnal_range_m_s:g} m/s would make "
+                                                f"the wind negative: at most twice wind_m_s "
+                                                f"({w.wind_m_s:g} m/s)")
+    s.finish()
+    return w
+
+
+def _cloud(s: _Section) -> Cloud:
+    c = Cloud(
+        from_solar_h=s.number("from_solar_h", 0.0, 24.0, "h (local mean solar time)"),
+        until_solar_h=s.number("until_solar_h", 0.0, 24.0, "h (local mean solar time)"),
+        optical_depth=s.number("optical_depth", 0.0, 100.0, "(optical depth)"),
+        patchiness=s.number("patchiness", 0.0, 3.0, "(relative standard deviation)",
+                            default=0.0),
+        cell_s=s.number("cell_s", 1.0, 86400.0, "s", default=600.0),
+    )
+    if c.until_solar_h <= c.from_solar_h:
+        raise s._fail("until_solar_h", f"= {c.until_solar_h:g} h must come after "
+                                       f"from_solar_h = {c.from_solar_h:g} h")
+    s.finish()
+    return c
+
+
 def _atmosphere(s: _Section) -> Atmosphere:
+    d = Atmosphere(0.0, 0.0, 0.0)
     atm = Atmosphere(
         ozone_du=s.number("ozone_du", 0.0, 700.0, "DU"),
         aerosol_tau_500=s.number("aerosol_tau_500", 0.0, 5.0, "(optical depth)"),
         angstrom_alpha=s.number("angstrom_alpha", -1.0, 4.0, "(Angstrom exponent)"),
+        aerosol_drift_per_h=s.number("aerosol_drift_per_h", -1.0, 1.0, "per hour",
+                                     default=d.aerosol_drift_per_h),
+        aerosol_drift_from_solar_h=s.number("aerosol_drift_from_solar_h", 0.0, 24.0, "h",
+                                            default=d.aerosol_drift_from_solar_h),
+        aerosol_drift_until_solar_h=s.number("aerosol_drift_until_solar_h", 0.0, 24.0, "h",
+                                             default=d.aerosol_drift_until_solar_h),
+        aerosol_variability=s.number("aerosol_variability", 0.0, 1.0,
+                                     "(relative standard deviation)",
+                                     default=d.aerosol_variability),
+        aerosol_variability_period_s=s.number("aerosol_variability_period_s", 1.0, 86400.0,
+                                              "s", default=d.aerosol_variability_period_s),
+        precipitable_water_cm=s.number("precipitable_water_cm", 0.0, 10.0, "cm",
+                                       default=d.precipitable_water_cm),
+        clouds=tuple(_cloud(_Section(c, path, s.source)) for path, c in s.items("clouds")),
     )
+    if atm.aerosol_drift_until_solar_h < atm.aerosol_drift_from_solar_h:
+        raise s._fail("aerosol_drift_until_solar_h", "must not come before "
+                                                     "aerosol_drift_from_solar_h")
+    lowest = atm.aerosol_tau_500 + min(0.0, atm.aerosol_drift_per_h * (
+        atm.aerosol_drift_until_solar_h - atm.aerosol_drift_from_solar_h))
+    if lowest < 0:
+        raise s._fail("aerosol_drift_per_h", f"drives aerosol_tau_500 below zero "
+                                             f"({lowest:.3f}) by the end of the drift window")
     s.finish()
     return atm
 
 
 def _channel(s: _Section) -> Channel:
-    ch = Channel(
-        name=s.text("name", _CHANNEL_NAME_RE),
-        wavelength_nm=s.number("wavelength_nm", 300.0, 1100.0, "nm"),
-        v0_1au_v=s.number("v0_1au_v", 0.0, 100.0, "V", lo_open=True),
+    name = s.text("name", _CHANNEL_NAME_RE)
+    kind = s.text("kind", default=SPECTRAL)
+    if kind not in (SPECTRAL, BROADBAND):
+        raise s._fail("kind", f"must be {SPECTRAL} or {BROADBAND}, got {kind!r}")
+    common = dict(
+        name=name, kind=kind,
         dark_v=s.number("dark_v", 0.0, 1.0, "V"),
+        temp_coeff_per_k=s.number("temp_coeff_per_k", -0.02, 0.02, "per K", default=0.0),
+        reference_temp_c=s.number("reference_temp_c", -40.0, 60.0, "degrees C", default=25.0),
+    )
+    if kind == BROADBAND:
+        responsivity = s.number("responsivity_v_per_w_m2", 0.0, 0.1, "V per W m^-2",
+                                lo_open=True)
+        s.finish()
+        # The true V0 is the SPECTRL2 top-of-atmosphere integral times the responsivity.
+        from sim_instrument import broadband
+
+        return Channel(wavelength_nm=math.nan, bandwidth_nm=math.nan,
+                       v0_1au_v=responsivity * broadband.extraterrestrial_w_m2(),
+                       responsivity_v_per_w_m2=responsivity, **common)
+    ch = Channel(
+        wavelength_nm=s.number("wavelength_nm", 300.0, 1100.0, "nm"),
+        bandwidth_nm=s.number("bandwidth_nm", 0.5, 50.0, "nm", default=10.0),
+        v0_1au_v=s.number("v0_1au_v", 0.0, 100.0, "V", lo_open=True),
+        **common,
     )
     s.finish()
     try:
-        sky.ozone_cross_section_cm2(ch.wavelength_nm)
+        sky.ozone_cross_section_cm2(ch.wavelength_nm, ch.bandwidth_nm)
     except ValueError as exc:
         raise ScenarioError(f"{s.source}: '{s.path}.wavelength_nm': {exc}") from None
     return ch
+
+
+def _thermal(s: _Section | None) -> Thermal:
+    if s is None:
+        return Thermal()
+    d = Thermal()
+    t = Thermal(
+        detector_regulated=s.boolean("detector_regulated", d.detector_regulated),
+        detector_setpoint_c=s.number("detector_setpoint_c", -40.0, 60.0, "degrees C",
+                                     default=d.detector_setpoint_c),
+        regulation_leak=s.number("regulation_leak", 0.0, 1.0, "(fraction)",
+                                 default=d.regulation_leak),
+        case_sun_heating_k=s.number("case_sun_heating_k", 0.0, 40.0, "K",
+                                    default=d.case_sun_heating_k),
+        unregulated_offset_k=s.number("unregulated_offset_k", -10.0, 20.0, "K",
+                                      default=d.unregulated_offset_k),
+        dark_doubling_k=s.number("dark_doubling_k", 1.0, 100.0, "K",
+                                 default=d.dark_doubling_k),
+    )
+    s.finish()
+    return t
 
 
 def _instrument(s: _Section) -> Instrument:
@@ -243,14 +454,19 @@ def _instrument(s: _Section) -> Instrument:
     firmware = s.text("firmware", _IDENT_RE)
     full_scale_v = s.number("full_scale_v", 0.0, 100.0, "V", lo_open=True)
     sample_interval_s = s.number("sample_interval_s", 0.0, 60.0, "s", lo_open=True)
+    field_of_view_deg = s.number("field_of_view_deg", 0.6, 10.0, "degrees (full angle)",
+                                 default=2.5)
     n = s.section("noise")
     noise = Noise(relative=n.number("relative", 0.0, 0.1, "(fraction of the signal)"),
-                  read_v=n.number("read_v", 0.0, 0.1, "V"))
+                  read_v=n.number("read_v", 0.0, 0.1, "V"),
+                  shot_v=n.number("shot_v", 0.0, 0.1, "V (at a 1 V signal)", default=0.0))
     n.finish()
+    thermal = _thermal(s.optional_section("thermal"))
     raw_channels = s.raw("channels")
     if not isinstance(raw_channels, list) or not 1 <= len(raw_channels) <= 32:
         raise s._fail("channels", "must be a list of 1 to 32 channels, each with name, "
-                                  "wavelength_nm, v0_1au_v and dark_v")
+                                  "wavelength_nm, v0_1au_v and dark_v (or kind: broadband, "
+                                  "responsivity_v_per_w_m2 and dark_v)")
     channels = tuple(_channel(_Section(c, f"{s.path}.channels[{i}]", s.source))
                      for i, c in enumerate(raw_channels))
     names = [c.name for c in channels]
@@ -265,7 +481,8 @@ def _instrument(s: _Section) -> Instrument:
     s.finish()
     return Instrument(model=model, serial=serial, firmware=firmware, channels=channels,
                       noise=noise, full_scale_v=full_scale_v,
-                      sample_interval_s=sample_interval_s)
+                      sample_interval_s=sample_interval_s, thermal=thermal,
+                      field_of_view_deg=field_of_view_deg)
 
 
 def _tracker(s: _Section) -> TrackerSpec:
@@ -280,9 +497,48 @@ def _tracker(s: _Section) -> TrackerSpec:
                                          "degrees (at most a quarter of the capture range)"),
         park_azimuth_deg=s.number("park_azimuth_deg", 0.0, 360.0, "degrees", default=0.0),
         park_elevation_deg=s.number("park_elevation_deg", -5.0, 90.0, "degrees", default=90.0),
+        wind_pointing_error_deg_per_m_s=s.number("wind_pointing_error_deg_per_m_s", 0.0, 0.5,
+                                                 "degrees per m/s", default=0.0),
+        min_direct_fraction_for_lock=s.number("min_direct_fraction_for_lock", 0.0, 1.0,
+                                              "(fraction of the clear-sky direct beam)",
+                                              default=0.3),
     )
     s.finish()
     return spec
+
+
+def _faults(s: _Section | None) -> FaultPlan:
+    if s is None:
+        return FaultPlan()
+    late_reply_s = s.number("late_reply_s", 0.0, 600.0, "s", default=3.0, lo_open=True)
+    line = LineFaults()
+    ls = s.optional_section("line")
+    if ls is not None:
+        line = LineFaults(**{name: ls.number(name, 0.0, 1.0, "(probability per reply)",
+                                             default=0.0)
+                             for name in LineFaults.__dataclass_fields__})
+        ls.finish()
+    events = []
+    for path, raw in s.items("events"):
+        e = _Section(raw, path, s.source)
+        kind = e.text("kind")
+        if kind not in EVENT_KINDS:
+            raise e._fail("kind", f"must be one of {', '.join(EVENT_KINDS)}, got {kind!r}")
+        device = e.text("device", default="tracker" if kind == "tracker_stall" else "radiometer")
+        if device not in ("radiometer", "tracker"):
+            raise e._fail("device", f"must be radiometer or tracker, got {device!r}")
+        needs_duration = kind in ("reboot", "port_vanish", "tracker_stall")
+        duration = e.number("duration_s", 0.0, 86400.0, "s",
+                            default=None if needs_duration else 0.0)
+        at = e.number("at_solar_h", 0.0, 24.0, "h (local mean solar time)")
+        e.finish()
+        try:
+            events.append(FaultEvent(kind=kind, at_solar_h=at % 24.0, device=device,
+                                     duration_s=duration))
+        except ValueError as exc:
+            raise ScenarioError(f"{s.source}: '{path}': {exc}") from None
+    s.finish()
+    return FaultPlan(line=line, late_reply_s=late_reply_s, events=tuple(events))
 
 
 def parse_scenario(data: Any, name: str, source: str = "<scenario>") -> Scenario:
@@ -304,6 +560,8 @@ def parse_scenario(data: Any, name: str, source: str = "<scenario>") -> Scenario
         atmosphere=_atmosphere(top.section("atmosphere")),
         instrument=_instrument(top.section("instrument")),
         tracker=_tracker(top.section("tracker")),
+        weather=_weather(top.optional_section("weather")),
+        faults=_faults(top.optional_section("faults")),
     )
     top.finish()
     return scenario

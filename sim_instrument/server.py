@@ -6,8 +6,10 @@ client opens ``socket://127.0.0.1:PORT``). One thread per endpoint; the station 
 shared, so every call into it holds one lock.
 
 :class:`DeviceEmulator` turns a request line into a reply line and knows nothing of
-I/O; the endpoints move bytes. The station is used only through the methods of the
-contract in ``sim_instrument/model.py``.
+I/O; the endpoints move bytes and play the faults of :mod:`sim_instrument.faults`
+(damage per reply at a rate; reboots, vanishing ports and one-shot line faults when
+the instrument clock crosses their time). The station is used only through the
+methods of the contract in ``sim_instrument/model.py``.
 """
 
 from __future__ import annotations
@@ -16,18 +18,31 @@ import contextlib
 import errno
 import logging
 import os
-import random
 import selectors
+import shutil
 import socket
+import tempfile
 import threading
 import time
 import tty
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass
 from typing import Any
 
 from drivers import protocol as p
 from drivers.interfaces import Burst, Housekeeping, Identity, TrackerState
+from sim_instrument.faults import (
+    DEFAULT_LATE_REPLY_S,
+    Damager,
+    FaultEvent,
+    FaultPlan,
+    LineFaults,
+    crossed,
+)
+
+__all__ = ["DeviceEmulator", "LineAssembler", "LineFaults", "PtyEndpoint", "StationServer",
+           "TcpEndpoint"]
+
+EOL = b"\r\n"
 
 log = logging.getLogger(__name__)
 
@@ -35,6 +50,8 @@ log = logging.getLogger(__name__)
 MAX_REQUEST_BYTES = 256
 #: How long a reply may wait for a client that does not read before it is dropped [s].
 WRITE_TIMEOUT_S = 2.0
+#: A vanishing port goes this long after the request that triggers it [s].
+VANISH_SETTLE_S = 0.05
 
 RADIOMETER = "radiometer"
 TRACKER = "tracker"
@@ -121,6 +138,15 @@ class DeviceEmulator:
         self.started = time.monotonic()
         self.requests = 0
         self.errors = 0
+
+    def reboot(self) -> None:
+        """The device restarts: counters from zero; the tracker also stops and forgets."""
+        with self.lock:
+            if self.kind == RADIOMETER:
+                self.station.reset_radiometer()
+            else:
+                self.station.reset_tracker()
+        self._restart_counters()
 
     def handle(self, line: bytes | None) -> tuple[bytes | None, float]:
         """The reply to one request line and how long to hold it back [s].
@@ -258,96 +284,57 @@ def _looks_like_a_reply(line: bytes) -> bool:
     return len(words) >= 2 and words[0].startswith(b"#") and words[1] in (b"OK", b"ERR")
 
 
-# ---------------------------------------------------------------------------- faults
-
-
-@dataclass(frozen=True)
-class LineFaults:
-    """Probabilities of damage to each reply, for reliability tests.
-
-    ``drop``: the reply is not sent. ``garble``: a line of noise goes first.
-    ``truncate``: only the first part of the reply is sent (then CR LF). ``corrupt``:
-    one character is changed, so the checksum fails. ``stale``: the previous reply is
-    sent again first.
-    """
-
-    drop: float = 0.0
-    garble: float = 0.0
-    truncate: float = 0.0
-    corrupt: float = 0.0
-    stale: float = 0.0
-
-    @classmethod
-    def parse(cls, spec: str) -> LineFaults:
-        """From ``"drop=0.05,corrupt=0.02"``; raises ValueError saying what is wrong."""
-        values: dict[str, float] = {}
-        names = list(cls.__dataclass_fields__)
-        for item in filter(None, (s.strip() for s in spec.split(","))):
-            name, sep, value = item.partition("=")
-            if not sep or name not in names:
-                raise ValueError(f"line fault {item!r}: expected NAME=PROBABILITY with NAME "
-                                 f"one of {', '.join(names)}")
-            try:
-                prob = float(value)
-            except ValueError:
-                raise ValueError(f"line fault {item!r}: {value!r} is not a number") from None
-            if not 0.0 <= prob <= 1.0:
-                raise ValueError(f"line fault {item!r}: probability must be 0 to 1")
-            values[name] = prob
-        return cls(**values)
-
-    @property
-    def any(self) -> bool:
-        return any((self.drop, self.garble, self.truncate, self.corrupt, self.stale))
-
-
-class _Damager:
-    def __init__(self, faults: LineFaults | None, seed: int) -> None:
-        self.faults = faults
-        self.rng = random.Random(seed)
-        self.previous: bytes | None = None
-
-    def apply(self, reply: bytes) -> list[bytes]:
-        f, rng = self.faults, self.rng
-        previous, self.previous = self.previous, reply
-        if f is None or not f.any:
-            return [reply]
-        out: list[bytes] = []
-        if previous is not None and rng.random() < f.stale:
-            out.append(previous)
-        if rng.random() < f.garble:
-            noise = bytes(rng.randrange(0x20, 0x7F) for _ in range(rng.randrange(1, 40)))
-            out.append(noise + b"\r\n")
-        if rng.random() < f.drop:
-            return out
-        if rng.random() < f.truncate:
-            reply = reply[: rng.randrange(1, len(reply) - 2)] + b"\r\n"
-        elif rng.random() < f.corrupt:
-            body = bytearray(reply)
-            i = rng.randrange(0, len(reply) - 2)
-            body[i] ^= 0x01
-            reply = bytes(body)
-        out.append(reply)
-        return out
-
-
 # ---------------------------------------------------------------------------- endpoints
 
 
+def _banner(emulator: DeviceEmulator) -> bytes:
+    """What a device prints as it boots: text the host must take for noise."""
+    with emulator.lock:
+        if emulator.kind == RADIOMETER:
+            model, serial, firmware = emulator.station.radiometer_identity()
+        else:
+            model, serial, firmware = emulator.station.tracker_identity()
+    return f"{model} {serial} firmware {firmware} booting... ready".encode("ascii") + EOL
+
+
 class _Endpoint(threading.Thread):
-    """One device's byte stream: read requests, write replies, until stopped."""
+    """One device's byte stream: read requests, write replies, until stopped.
+
+    It also plays the device's faults: line damage per reply (:class:`Damager`) and
+    the scheduled events of :mod:`sim_instrument.faults` (reboot, port vanishing,
+    one-shot line faults), fired when the instrument clock crosses their time.
+    """
 
     url: str
 
-    def __init__(self, emulator: DeviceEmulator, faults: LineFaults | None, seed: int) -> None:
+    def __init__(self, emulator: DeviceEmulator, faults: LineFaults | None, seed: int, *,
+                 events: tuple[FaultEvent, ...] = (), longitude_deg: float = 0.0,
+                 late_reply_s: float = DEFAULT_LATE_REPLY_S, record: bool = False) -> None:
         super().__init__(name=f"sim-{emulator.kind}", daemon=True)
         self.emulator = emulator
-        self.damager = _Damager(faults, seed)
+        self.damager = Damager(faults, seed, late_reply_s)
+        self.events = list(events)
+        self.longitude_deg = longitude_deg
+        self._last_epoch_s: float | None = None
+        self._armed: list[FaultEvent] = []
+        self._silent_until = 0.0  # monotonic time a reboot ends
+        self._banner_due = False
+        self.reboots = 0
+        self.vanishes = 0
+        self.replies = 0
+        #: Every chunk written, when ``record`` is on (for reproducibility tests).
+        self.transcript: list[bytes] | None = [] if record else None
         self._stop_event = threading.Event()
         self._wake_r, self._wake_w = os.pipe()
         self._closed = False
         self.selector = selectors.DefaultSelector()
         self.selector.register(self._wake_r, selectors.EVENT_READ)
+
+    @property
+    def fault_counts(self) -> dict[str, int]:
+        """What this endpoint did to its host so far, by kind."""
+        return dict(self.damager.counts, reboot=self.reboots, port_vanish=self.vanishes,
+                    replies=self.replies)
 
     def stop(self) -> None:
         self._stop_event.set()
@@ -369,6 +356,10 @@ class _Endpoint(threading.Thread):
     def release(self) -> None:
         """Close the endpoint's own descriptors."""
 
+    def vanish(self, duration_s: float) -> None:
+        """Take the port away for ``duration_s`` [s], then bring it back."""
+        raise NotImplementedError
+
     def run(self) -> None:
         try:
             while not self._stop_event.is_set():
@@ -381,16 +372,67 @@ class _Endpoint(threading.Thread):
         finally:
             self.close()
 
+    # -- scheduled events
+
+    def _crossed_events(self) -> list[FaultEvent]:
+        if not self.events:
+            return []
+        with self.emulator.lock:
+            now = self.emulator.station.now().timestamp()
+        last, self._last_epoch_s = self._last_epoch_s, now
+        if last is None:
+            return []
+        fired = [e for e in self.events if crossed(last, now, e.at_solar_h, self.longitude_deg)]
+        for e in fired:
+            self.events.remove(e)
+        return fired
+
+    def _fire(self, event: FaultEvent) -> str | None:
+        """Start one event; returns "vanish" or "reboot" when the request is lost to it."""
+        log.info("%s: fault %s at %.3f h solar time", self.emulator.kind, event.kind,
+                 event.at_solar_h)
+        if event.kind == "port_vanish":
+            self.vanishes += 1
+            self.vanish(event.duration_s)
+            return "vanish"
+        if event.kind == "reboot":
+            self.reboots += 1
+            self._silent_until = time.monotonic() + event.duration_s
+            self._banner_due = True
+            self.emulator.reboot()
+            return "reboot"
+        self.damager.pending.add(event.kind)
+        return None
+
     def answer(self, lines: list[bytes | None], write: Callable[[bytes], None]) -> None:
         for line in lines:
+            fired, self._armed = self._armed + self._crossed_events(), []
+            lost = None
+            for event in fired:
+                lost = self._fire(event) or lost
+            if lost == "vanish":
+                return  # the rest of what was read went with the port
+            if lost == "reboot" or time.monotonic() < self._silent_until:
+                log.debug("%s rebooting: request %r lost", self.emulator.kind, line)
+                continue
             reply, delay_s = self.emulator.handle(line)
             log.debug("%s request %r", self.emulator.kind, line)
+            # A CLK that jumps the clock past an event fires it at the next request.
+            self._armed = self._crossed_events()
             if reply is None:
                 continue
+            self.replies += 1
+            chunks, late_s = self.damager.apply(reply)
+            if self._banner_due:
+                self._banner_due = False
+                chunks.insert(0, _banner(self.emulator))
+            delay_s += late_s
             if delay_s > 0 and self._stop_event.wait(delay_s):
                 return
-            for chunk in self.damager.apply(reply):
+            for chunk in chunks:
                 log.debug("%s reply %r", self.emulator.kind, chunk)
+                if self.transcript is not None:
+                    self.transcript.append(chunk)
                 write(chunk)
 
     def on_readable(self, key: selectors.SelectorKey) -> None:
@@ -416,18 +458,60 @@ def _write_all(fd: int, data: bytes) -> None:
 
 
 class PtyEndpoint(_Endpoint):
-    """A pseudo-terminal; the client opens :attr:`url` (the slave path) as a serial port."""
+    """A pseudo-terminal; the client opens :attr:`url` (the slave path) as a serial port.
 
-    def __init__(self, emulator: DeviceEmulator, faults: LineFaults | None, seed: int) -> None:
-        super().__init__(emulator, faults, seed)
+    With ``link_path`` the url is a symbolic link to the slave, as udev's
+    ``/dev/serial/by-id`` links are to a USB adapter: a port that vanishes and returns
+    comes back as a new pseudo-terminal under the same link.
+    """
+
+    def __init__(self, emulator: DeviceEmulator, faults: LineFaults | None, seed: int, *,
+                 link_path: str | None = None, **kwargs: Any) -> None:
+        super().__init__(emulator, faults, seed, **kwargs)
+        self.link_path = link_path
+        self._open_pty()
+
+    def _open_pty(self) -> None:
         self.master, self._slave = os.openpty()
+        self._pty_open = True
         # Raw at once: a cooked pty would echo our replies back to us before the
         # client opens it and sets its own mode.
         tty.setraw(self._slave)
-        self.url = os.ttyname(self._slave)
+        slave_path = os.ttyname(self._slave)
+        if self.link_path:
+            tmp = f"{self.link_path}.new"
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+            os.symlink(slave_path, tmp)
+            os.replace(tmp, self.link_path)
+            self.url = self.link_path
+        else:
+            self.url = slave_path
         os.set_blocking(self.master, False)
         self.lines = LineAssembler()
         self.selector.register(self.master, selectors.EVENT_READ)
+
+    def _close_pty(self) -> None:
+        if not self._pty_open:
+            return  # never close a descriptor number twice: it may belong to someone else
+        self._pty_open = False
+        with contextlib.suppress(KeyError, ValueError):
+            self.selector.unregister(self.master)
+        for fd in (self.master, self._slave):
+            with contextlib.suppress(OSError):
+                os.close(fd)
+        if self.link_path:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(self.link_path)
+
+    def vanish(self, duration_s: float) -> None:
+        # The port goes a moment after the request that triggers it was read, as a
+        # cable pulled at some instant would, not inside the host's write.
+        self._stop_event.wait(VANISH_SETTLE_S)
+        self._close_pty()
+        if self._stop_event.wait(duration_s):
+            return
+        self._open_pty()
 
     def on_readable(self, key: selectors.SelectorKey) -> None:
         try:
@@ -446,13 +530,13 @@ class PtyEndpoint(_Endpoint):
             _write_all(self.master, data)
         except TimeoutError:
             log.warning("%s: client is not reading; reply dropped", self.emulator.kind)
+        except OSError as exc:
+            log.warning("%s: reply lost (%s)", self.emulator.kind, exc)
 
     def release(self) -> None:
         # Keeping our own slave fd open until here means a client that closes and
         # reopens the port never sees the pty hang up.
-        for fd in (self.master, self._slave):
-            with contextlib.suppress(OSError):
-                os.close(fd)
+        self._close_pty()
 
 
 class TcpEndpoint(_Endpoint):
@@ -463,16 +547,30 @@ class TcpEndpoint(_Endpoint):
     """
 
     def __init__(self, emulator: DeviceEmulator, faults: LineFaults | None, seed: int,
-                 port: int) -> None:
-        super().__init__(emulator, faults, seed)
+                 port: int, **kwargs: Any) -> None:
+        super().__init__(emulator, faults, seed, **kwargs)
+        self.client: socket.socket | None = None
+        self._listen(port)
+        self.port = self.listener.getsockname()[1]
+        self.url = f"socket://127.0.0.1:{self.port}"
+
+    def _listen(self, port: int) -> None:
         # Loopback only: the simulator must never be reachable from the network.
         self.listener = socket.create_server(("127.0.0.1", port))
         self.listener.setblocking(False)
-        self.port = self.listener.getsockname()[1]
-        self.url = f"socket://127.0.0.1:{self.port}"
-        self.client: socket.socket | None = None
         self.lines = LineAssembler()
         self.selector.register(self.listener, selectors.EVENT_READ)
+
+    def vanish(self, duration_s: float) -> None:
+        self._stop_event.wait(VANISH_SETTLE_S)
+        self._drop_client()
+        with contextlib.suppress(KeyError, ValueError):
+            self.selector.unregister(self.listener)
+        self.listener.close()
+        if self._stop_event.wait(duration_s):
+            self.listener = socket.socket()  # a closed stand-in for release()
+            return
+        self._listen(self.port)
 
     def on_readable(self, key: selectors.SelectorKey) -> None:
         if key.fileobj is self.listener:
@@ -486,6 +584,8 @@ class TcpEndpoint(_Endpoint):
             self.lines = LineAssembler()
             self.selector.register(conn, selectors.EVENT_READ)
             log.debug("%s: client connected", self.emulator.kind)
+            return
+        if key.fileobj is not self.client:
             return
         try:
             data = self.client.recv(4096) if self.client else b""
@@ -538,40 +638,71 @@ class StationServer:
     reply_delay_scale
         See :class:`DeviceEmulator`.
     line_faults, seed
-        Optional damage to replies (:class:`LineFaults`), reproducible by seed.
+        Optional damage to replies (:class:`LineFaults`), reproducible by seed; it
+        replaces the line faults of ``fault_plan``.
+    fault_plan
+        Line faults and scheduled events (:class:`~sim_instrument.faults.FaultPlan`),
+        usually the scenario's. Tracker stalls in it are the station's business.
+    longitude_deg
+        The site's longitude [degrees east], to place events in local solar time.
+    record
+        Keep every chunk each endpoint writes (``server.transcripts()``).
+
+    With a ``port_vanish`` event on pseudo-terminals, the urls are symbolic links in a
+    private temporary directory, re-pointed when the port returns.
 
     Use as a context manager, or call :meth:`start` and :meth:`stop`.
     """
 
     def __init__(self, station: Any, endpoint: str = "pty", tcp_port: int = 0, *,
                  reply_delay_scale: float = 0.0, line_faults: LineFaults | None = None,
-                 seed: int = 0) -> None:
+                 seed: int = 0, fault_plan: FaultPlan | None = None,
+                 longitude_deg: float = 0.0, record: bool = False) -> None:
         if endpoint not in ("pty", "tcp"):
             raise ValueError(f"endpoint {endpoint!r} must be 'pty' or 'tcp'")
         if endpoint == "tcp" and tcp_port and not 1 <= tcp_port <= 65534:
             raise ValueError(f"TCP port {tcp_port} must be 1-65534 (the tracker takes the next)")
+        plan = fault_plan or FaultPlan()
+        faults = line_faults if line_faults is not None else plan.line
         self.station = station
         self.lock = threading.Lock()
         self._endpoints: list[_Endpoint] = []
+        self._link_dir: str | None = None
+        if endpoint == "pty" and plan.vanishes:
+            self._link_dir = tempfile.mkdtemp(prefix="heliotrope-sim-")
         emulators = [DeviceEmulator(kind, station, self.lock, reply_delay_scale)
                      for kind in (RADIOMETER, TRACKER)]
         try:
             for i, emulator in enumerate(emulators):
+                common: dict[str, Any] = dict(
+                    events=plan.for_device(emulator.kind), longitude_deg=longitude_deg,
+                    late_reply_s=plan.late_reply_s, record=record)
                 if endpoint == "pty":
-                    ep: _Endpoint = PtyEndpoint(emulator, line_faults, seed + i)
+                    link = os.path.join(self._link_dir, emulator.kind) if self._link_dir else None
+                    ep: _Endpoint = PtyEndpoint(emulator, faults, seed + i, link_path=link,
+                                                **common)
                 else:
-                    ep = TcpEndpoint(emulator, line_faults, seed + i,
-                                     tcp_port + i if tcp_port else 0)
+                    ep = TcpEndpoint(emulator, faults, seed + i,
+                                     tcp_port + i if tcp_port else 0, **common)
                 self._endpoints.append(ep)
         except BaseException:
             for ep in self._endpoints:
                 ep.close()
+            self._remove_link_dir()
             raise
 
     @property
     def urls(self) -> dict[str, str]:
         """``{"radiometer": url, "tracker": url}`` for ``serial.serial_for_url``."""
         return {ep.emulator.kind: ep.url for ep in self._endpoints}
+
+    def transcripts(self) -> dict[str, list[bytes]]:
+        """Every chunk each device wrote, when built with ``record=True``."""
+        return {ep.emulator.kind: list(ep.transcript or []) for ep in self._endpoints}
+
+    def fault_counts(self) -> dict[str, dict[str, int]]:
+        """Per device: replies sent and faults inflicted, by kind."""
+        return {ep.emulator.kind: ep.fault_counts for ep in self._endpoints}
 
     def start(self) -> dict[str, str]:
         for ep in self._endpoints:
@@ -586,6 +717,12 @@ class StationServer:
                 ep.join(timeout=5)
             if not ep.is_alive():
                 ep.close()
+        self._remove_link_dir()
+
+    def _remove_link_dir(self) -> None:
+        if self._link_dir is not None:
+            shutil.rmtree(self._link_dir, ignore_errors=True)
+            self._link_dir = None
 
     def __enter__(self) -> StationServer:
         self.start()

@@ -12,7 +12,10 @@ The direct-sun signal of a channel with top-of-atmosphere constant ``V0`` at 1 A
     V = V0 * (r0/r)^2 * exp(-(tau_R m_R + tau_O3 m_O3 + tau_a m_a))
 
 with the Rayleigh and aerosol air masses from Kasten and Young (1989) on the apparent
-zenith and the ozone air mass for a thin layer at 22 km (Komhyr 1980).
+zenith and the ozone air mass for a thin layer at 22 km (Komhyr 1980). A channel in
+the water-vapour band near 940 nm is further multiplied by its band-mean water-vapour
+transmittance (:func:`water_vapour_band_transmittance`), which is not an exponential
+in air mass; thin cloud adds a grey optical depth on the Kasten-Young air mass.
 """
 
 from __future__ import annotations
@@ -53,6 +56,10 @@ OZONE_BIN_CROSS_SECTION_CM2: dict[int, tuple[float, str]] = {
     670: (1.473e-21, "C"),
     860: (4.0e-23, "M"),
     870: (4.0e-23, "M"),
+    920: (1.5e-23, "M"),
+    930: (1.5e-23, "M"),
+    940: (1.5e-23, "M"),
+    950: (1.5e-23, "M"),
     1010: (3.0e-24, "M"),
     1020: (3.0e-24, "M"),
 }
@@ -426,3 +433,101 @@ def extraterrestrial_irradiance_w_m2_nm(wavelength_nm: float, bandwidth_nm: floa
     x = np.concatenate(([lo], wl[inside], [hi]))
     y = np.concatenate(([np.interp(lo, wl, e0)], e0[inside], [np.interp(hi, wl, e0)]))
     return float(_trapezoid(y, x) / bandwidth_nm)
+
+
+# Water-vapour absorption coefficients [cm^-1] of the Bird and Riordan (1986) simple
+# spectral model (SPECTRL2), on its own wavelength grid [nm], for the 940 nm band only.
+# Source: Bird, R. E. and Riordan, C. (1986), J. Climate Appl. Meteor. 25:87-97,
+# table 1 (as shipped in pvlib.spectrum.spectrl2). Outside 880-993.5 nm the simulator
+# treats the channels as windows (their water-vapour optical depth is set to 0): the
+# 870 and 1020 nm channels are chosen to avoid water vapour (common practice, no
+# source), and the 10-nm grid of this table would smear the band's wings into them.
+WATER_VAPOUR_GRID_NM = np.array([880.0, 905.0, 915.0, 925.0, 930.0, 937.0, 948.0, 965.0,
+                                 980.0, 993.5])
+WATER_VAPOUR_ABSORPTION_PER_CM = np.array([0.0026, 7.0, 5.0, 5.0, 27.0, 55.0, 45.0, 4.0,
+                                           1.48, 0.1])
+
+
+def water_vapour_absorption_coefficient(wavelength_nm: float | np.ndarray) -> np.ndarray:
+    """SPECTRL2 water-vapour absorption coefficient, linearly interpolated [cm^-1].
+
+    Zero outside 880-993.5 nm (see :data:`WATER_VAPOUR_GRID_NM`).
+    """
+    wl = np.asarray(wavelength_nm, dtype=float)
+    a = np.interp(wl, WATER_VAPOUR_GRID_NM, WATER_VAPOUR_ABSORPTION_PER_CM)
+    return np.where((wl < WATER_VAPOUR_GRID_NM[0]) | (wl > WATER_VAPOUR_GRID_NM[-1]), 0.0, a)
+
+
+def water_vapour_transmittance(absorption_per_cm: float | np.ndarray,
+                               precipitable_water_cm: float | np.ndarray,
+                               airmass: float | np.ndarray) -> np.ndarray:
+    """Monochromatic water-vapour transmittance, Bird and Riordan (1986) eq. 2-8.
+
+    ``T = exp(-0.2385 a W m / (1 + 20.07 a W m)^0.45)`` (Leckner 1978's form). The
+    band saturates, so ``-ln T`` grows roughly as ``(W m)^0.55``, not as ``m``.
+
+    Parameters
+    ----------
+    absorption_per_cm : float or array
+        Absorption coefficient ``a`` [cm^-1].
+    precipitable_water_cm : float or array
+        Precipitable water ``W`` [cm].
+    airmass : float or array
+        Relative air mass ``m`` [dimensionless].
+
+    References
+    ----------
+    Bird, R. E. and Riordan, C. (1986), "Simple solar spectral model for direct and
+    diffuse irradiance on horizontal and tilted planes at the earth's surface for
+    cloudless atmospheres", J. Climate Appl. Meteor. 25:87-97 (NREL TR-215-2436).
+    """
+    x = (np.asarray(absorption_per_cm, dtype=float) * np.asarray(precipitable_water_cm, float)
+         * np.asarray(airmass, dtype=float))
+    return np.exp(-0.2385 * x / (1.0 + 20.07 * x) ** 0.45)
+
+
+def water_vapour_band_transmittance(wavelength_nm: float, bandwidth_nm: float,
+                                    precipitable_water_cm: float | np.ndarray,
+                                    airmass: float | np.ndarray) -> np.ndarray:
+    """Mean water-vapour transmittance over a rectangular band.
+
+    The mean is taken over the transmittance, not the optical depth: that is what a
+    filter radiometer sees, and why its Langley plot bends (ln V is not linear in m).
+
+    Parameters
+    ----------
+    wavelength_nm, bandwidth_nm : float
+        Band centre and full width [nm].
+    precipitable_water_cm : float or array
+        Precipitable water [cm].
+    airmass : float or array
+        Relative air mass; the result has its shape (broadcast with the water).
+
+    Returns
+    -------
+    numpy.ndarray
+        Band-mean transmittance [dimensionless]; 1 for a window channel.
+    """
+    steps = np.linspace(wavelength_nm - bandwidth_nm / 2.0, wavelength_nm + bandwidth_nm / 2.0,
+                        41)
+    a = water_vapour_absorption_coefficient(steps)
+    w = np.asarray(precipitable_water_cm, dtype=float)
+    m = np.asarray(airmass, dtype=float)
+    shape = np.broadcast_shapes(w.shape, m.shape)
+    if not a.any():
+        return np.ones(shape)
+    t = water_vapour_transmittance(a.reshape((-1,) + (1,) * len(shape)), w, m)
+    return t.mean(axis=0)
+
+
+def semidiurnal_pressure_hpa(mean_pressure_hpa: float, tide_amplitude_hpa: float,
+                             solar_hour: float | np.ndarray) -> float | np.ndarray:
+    """Station pressure with the semidiurnal (S2) atmospheric tide [hPa].
+
+    ``p = p_mean + A cos(2 pi (h - 10) / 12)``: two maxima a day, near 10 and 22 h
+    local solar time, of amplitude about 1 hPa in the tropics and less at higher
+    latitudes (from memory; Chapman and Lindzen 1970, "Atmospheric Tides").
+    """
+    h = np.asarray(solar_hour, dtype=float)
+    p = mean_pressure_hpa + tide_amplitude_hpa * np.cos(2.0 * np.pi * (h - 10.0) / 12.0)
+    return float(p) if np.ndim(p) == 0 else p

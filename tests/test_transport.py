@@ -205,6 +205,28 @@ def test_reopens_a_port_that_vanished():
     second.assert_done()
 
 
+class DrainFailsPort(ScriptedPort):
+    """A pty or adapter that vanished under flush(): pyserial's tcdrain raises
+    termios.error (EIO), which is not an OSError."""
+
+    def write(self, data):
+        return len(data)
+
+    def flush(self):
+        import termios
+        raise termios.error(errno.EIO, "Input/output error")
+
+
+def test_reopens_a_port_whose_flush_fails_with_a_termios_error():
+    second = ScriptedPort([(req(2), ok(2))])  # rid 1 died with the first port
+    factory = Factory(DrainFailsPort([]), second)
+    t = Transport("/dev/ttyUSB0", retries=2, first_rid=1, serial_factory=factory,
+                  backoff_s=(0.1, 1.0), sleep=lambda s: None)
+    assert t.exchange("HK") == tuple(HK_FIELDS)
+    assert t.counters.reconnects == 1
+    second.assert_done()
+
+
 # ---------------------------------------------------------------------------- real pyserial
 
 
