@@ -200,6 +200,131 @@ def cmd_probe(args: argparse.Namespace) -> int:
     return run(args, _load_config(args.config))
 
 
+def cmd_calibrate(args: argparse.Namespace) -> int:
+    from daemon.campaign import calibrate_command
+    return calibrate_command(args)
+
+
+def cmd_refit(args: argparse.Namespace) -> int:
+    from daemon.refit import refit_command
+    return refit_command(args)
+
+
+# --------------------------------------------------------------------------- operator's view
+# status, results, export, plot, report, ssh-gate: each lives in its own module, imported
+# only when the command runs, so `today` and the others start fast.
+
+def cmd_results(args: argparse.Namespace) -> int:
+    from daemon.storeread import StoreReadError, open_readonly, results_between
+    last = args.to or args.from_
+    if last < args.from_:
+        raise CommandError(f"--to {last} is before --from {args.from_}; swap them", EX_USAGE)
+    try:
+        conn = open_readonly(args.db)
+    except StoreReadError as exc:
+        raise CommandError(str(exc), EX_NOINPUT) from None
+    try:
+        rows = results_between(conn, args.from_, last)
+    finally:
+        conn.close()
+    if args.json:
+        print(dumps({"from": args.from_.isoformat(), "to": last.isoformat(), "results": rows}))
+        return 0
+    if not rows:
+        print(f"no session results from {args.from_} to {last} in {args.db}")
+        return 1
+    for day in sorted({r["date"] for r in rows}):
+        print(f"{day}")
+        print(results_table([r for r in rows if r["date"] == day]))
+    return 0
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    from daemon.status import cmd_status as run
+    return run(args)
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    from daemon.export import cmd_export as run
+    return run(args)
+
+
+def cmd_plot(args: argparse.Namespace) -> int:
+    from daemon.plot import cmd_plot as run
+    return run(args)
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from daemon.report import cmd_report as run
+    return run(args)
+
+
+def cmd_ssh_gate(args: argparse.Namespace) -> int:
+    from daemon.sshgate import cmd_ssh_gate as run
+    return run(args)
+
+
+def _add_operator_view(sub) -> None:
+    db_help = "store path (default: %(default)s, from $HELIOTROPE_DB when set)"
+    cfg_help = ("the service's configuration (default: $HELIOTROPE_CONFIG, else "
+                "/etc/heliotrope/heliotrope.yaml)")
+
+    c = sub.add_parser("status", help="is the service alive and well; exit 0 ok, 1 warning, "
+                       "2 stale or failing")
+    c.add_argument("--warn-minutes", type=float, default=5.0, metavar="MIN",
+                   help="heartbeat age that is a warning (default: %(default)s)")
+    c.add_argument("--crit-minutes", type=float, default=15.0, metavar="MIN",
+                   help="heartbeat age that is stale, critical (default: %(default)s)")
+    c.add_argument("--db", default=_default_db(), help=db_help)
+    c.add_argument("--json", action="store_true", help="print JSON")
+    c.set_defaults(func=cmd_status)
+
+    c = sub.add_parser("results", help="session results of a range of dates")
+    c.add_argument("--from", dest="from_", type=_parse_date, required=True, metavar="D1",
+                   help="first local date, YYYY-MM-DD")
+    c.add_argument("--to", type=_parse_date, metavar="D2",
+                   help="last local date, inclusive (default: D1)")
+    c.add_argument("--db", default=_default_db(), help=db_help)
+    c.add_argument("--json", action="store_true", help="print JSON")
+    c.set_defaults(func=cmd_results)
+
+    c = sub.add_parser("export", help="stored data as CSV or JSON, streamed")
+    c.add_argument("--from", dest="from_", type=_parse_date, required=True, metavar="D1",
+                   help="first local date, YYYY-MM-DD")
+    c.add_argument("--to", type=_parse_date, metavar="D2",
+                   help="last local date, inclusive (default: D1)")
+    c.add_argument("--what", required=True,
+                   choices=("measurements", "samples", "results", "aod", "events"))
+    c.add_argument("--format", default="csv", choices=("csv", "json"),
+                   help="default: %(default)s")
+    c.add_argument("--out", metavar="FILE", help="write here instead of standard output")
+    c.add_argument("--db", default=_default_db(), help=db_help)
+    c.set_defaults(func=cmd_export)
+
+    c = sub.add_parser("plot", help="the Langley plot of one channel in the terminal")
+    c.add_argument("--date", type=_parse_date, required=True, help="local date, YYYY-MM-DD")
+    c.add_argument("--channel", required=True, help="channel name, as in the configuration")
+    c.add_argument("--session", choices=("am", "pm"), help="one session (default: both)")
+    c.add_argument("--png", metavar="FILE", help="also draw a PNG (needs the plot extra)")
+    c.add_argument("--config", metavar="FILE", help=cfg_help)
+    c.add_argument("--db", default=_default_db(), help=db_help)
+    c.add_argument("--json", action="store_true", help="print the points and the fit as JSON")
+    c.set_defaults(func=cmd_plot)
+
+    c = sub.add_parser("report", help="one self-contained HTML page about one day")
+    c.add_argument("--date", type=_parse_date, required=True, help="local date, YYYY-MM-DD")
+    c.add_argument("--out", metavar="FILE", help="write here (default: standard output)")
+    c.add_argument("--config", metavar="FILE", help=cfg_help)
+    c.add_argument("--db", default=_default_db(), help=db_help)
+    c.set_defaults(func=cmd_report)
+
+    c = sub.add_parser("ssh-gate", help="forced command for an SSH key: run only the read "
+                       "commands named in $SSH_ORIGINAL_COMMAND")
+    c.add_argument("--db", default=_default_db(), help=db_help)
+    c.add_argument("--config", metavar="FILE", help=cfg_help)
+    c.set_defaults(func=cmd_ssh_gate)
+
+
 # --------------------------------------------------------------------------- parser
 
 def build_parser() -> argparse.ArgumentParser:
@@ -244,7 +369,9 @@ def build_parser() -> argparse.ArgumentParser:
         "answered, 69 otherwise.")
     c.add_argument("--config", default=os.environ.get("HELIOTROPE_CONFIG",
                                                       "/etc/heliotrope/heliotrope.yaml"),
-                   help="configuration file (default: $HELIOTROPE_CONFIG, else %(default)s)")
+                   metavar="FILE",
+                   help="configuration file (default: %(default)s, from $HELIOTROPE_CONFIG "
+                        "when set)")
     c.add_argument("--radiometer-port", metavar="URL",
                    help="probe this port instead of the configured one "
                         "(e.g. socket://127.0.0.1:7001 for heliotrope-sim --port tcp:7001)")
@@ -252,6 +379,41 @@ def build_parser() -> argparse.ArgumentParser:
                    help="probe this port instead of the configured one")
     c.add_argument("--json", action="store_true", help="print one JSON object")
     c.set_defaults(func=cmd_probe)
+
+    c = sub.add_parser(
+        "calibrate", help="combine a campaign's accepted sessions into a stored calibration "
+        "(writes to the store)",
+        description="Combines the accepted session fits from D1 to D2 per channel: a robust "
+        "mean V0 at 1 AU, its repeatability (percent rms), the number of sessions, the "
+        "sessions that disagree (flagged) and the drift per year. The result is stored as a "
+        "calibration record and the aerosol optical depth of every measurement in the range "
+        "is computed and stored. This command WRITES to the store: it opens it with the "
+        "service's writer (safe while the service runs).")
+    c.add_argument("--from", dest="from_", type=_parse_date, required=True, metavar="D1",
+                   help="first local date, YYYY-MM-DD")
+    c.add_argument("--to", type=_parse_date, required=True, metavar="D2",
+                   help="last local date, inclusive")
+    c.add_argument("--config", default=os.environ.get("HELIOTROPE_CONFIG",
+                                                      "/etc/heliotrope/heliotrope.yaml"),
+                   metavar="FILE", help="configuration (default: %(default)s, from "
+                   "$HELIOTROPE_CONFIG when set)")
+    c.add_argument("--db", help="store path (default: $HELIOTROPE_DB, else the "
+                   "configuration's store.path)")
+    c.add_argument("--json", action="store_true", help="print JSON")
+    c.set_defaults(func=cmd_calibrate)
+
+    c = sub.add_parser(
+        "refit", help="the session fit, offline, on a CSV file of readings",
+        description="Fits readings from a CSV file with the header time_utc,channel,signal "
+        "(optional columns pressure_hpa, detector_temp_c) exactly as the service fits a "
+        "session; air masses come from the configuration's site. Touches no store. A "
+        "malformed file gives its line number and exit code 65.")
+    c.add_argument("--config", required=True, metavar="FILE", help="configuration file")
+    c.add_argument("--csv", required=True, metavar="READINGS", help="readings CSV file")
+    c.add_argument("--json", action="store_true", help="print JSON")
+    c.set_defaults(func=cmd_refit)
+
+    _add_operator_view(sub)
     return p
 
 

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import math
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
@@ -46,6 +46,13 @@ class Channel:
     bandwidth_nm: float
     temp_coeff_per_k: float = 0.0  # relative responsivity change per kelvin
     reference_temp_c: float = 25.0
+    # Band-mean ozone absorption cross-section [cm^2]; None = daemon.ozone's table.
+    ozone_cross_section_cm2: float | None = None
+    # Absolute responsivity [V per W m^-2 nm^-1] from a lamp calibration; None = unknown.
+    responsivity_v_per_w_m2_nm: float | None = None
+    # Fitted with the modified Langley (ln V against m^b); the loader's default is true
+    # for a band inside 925-955 nm.
+    water_vapour: bool = False
 
 
 @dataclass(frozen=True)
@@ -89,8 +96,18 @@ class FitSettings:
     min_fraction_kept: float = 0.6  # never reject more than 1 - this
     min_points: int = 8
     min_airmass_span: float = 2.0
-    max_residual_sd: float = 0.01  # in ln V
+    max_residual_sd: float = 0.003  # in ln V (BSRN Operations Manual, sec. 7.4.2.1)
     max_cv: float = 0.02  # burst coefficient of variation above which a burst is rejected
+    max_abs_residual: float = 0.006  # largest residual of a kept point, in ln V (BSRN)
+    max_residual_trend: float = 0.005  # largest bend of the residuals across m, in ln V
+    min_aerosol_optical_depth: float = -0.01  # fitted tau minus Rayleigh minus ozone
+    normalise_pressure: bool = True  # refer ln V to the session's mean pressure
+    max_pressure_change_hpa: float = 1.0  # without normalising: reject channels < 500 nm
+    water_vapour_exponent: float = 0.6  # b of the modified Langley, ln V against m^b
+    angstrom_channels: tuple[str, str] | None = None  # None: nearest to 440 and 870 nm
+    campaign_min_sessions: int = 3  # accepted sessions a calibration needs per channel
+    campaign_clip_sigma: float = 3.0  # sessions further than this from the mean are flagged
+    tau_drift_per_hour: float = 0.0007  # unseen optical-depth drift allowed for, at 500 nm
 
 
 @dataclass(frozen=True)
@@ -163,6 +180,14 @@ class _Section:
                               f"got {value!r}")
         if not lo <= value <= hi:
             raise ConfigError(f"{self._key(key)}: {value} is out of range; allowed {lo} to {hi}")
+        return value
+
+    def boolean(self, key: str, default: Any = _MISSING) -> bool | None:
+        value = self._raw(key, default)
+        if value is None and default is None:
+            return None
+        if not isinstance(value, bool):
+            raise ConfigError(f"{self._key(key)}: expected true or false, got {value!r}")
         return value
 
     def string(self, key: str, default: Any = _MISSING, pattern: str | None = None,
@@ -240,7 +265,14 @@ def _read_channels(parent: _Section) -> tuple[Channel, ...]:
             bandwidth_nm=s.number("bandwidth_nm", 0.5, 100, default=10.0, unit="nm"),
             temp_coeff_per_k=s.number("temp_coeff_per_k", -0.02, 0.02, default=0.0, unit="per K"),
             reference_temp_c=s.number("reference_temp_c", -40, 60, default=25.0, unit="degC"),
+            ozone_cross_section_cm2=s.number("ozone_cross_section_cm2", 0.0, 1e-18,
+                                             unit="cm^2", optional=True),
+            responsivity_v_per_w_m2_nm=s.number("responsivity_v_per_w_m2_nm", 1e-9, 1e9,
+                                                unit="V per W m^-2 nm^-1", optional=True),
+            water_vapour=s.boolean("water_vapour", default=None),
         ))
+        if channels[-1].water_vapour is None:
+            channels[-1] = replace(channels[-1], water_vapour=_in_water_band(channels[-1]))
         s.finish()
     names = [c.name for c in channels]
     for name in names:
@@ -248,6 +280,16 @@ def _read_channels(parent: _Section) -> tuple[Channel, ...]:
             raise ConfigError(f"{parent._key('channels')}: channel name {name!r} is used twice; "
                               "give every channel its own name")
     return tuple(channels)
+
+
+# The water-vapour absorption band a "940 nm" channel sits in (common practice, no source).
+WATER_BAND_NM = (925.0, 955.0)
+
+
+def _in_water_band(channel: Channel) -> bool:
+    half = channel.bandwidth_nm / 2.0
+    return (channel.wavelength_nm + half > WATER_BAND_NM[0]
+            and channel.wavelength_nm - half < WATER_BAND_NM[1])
 
 
 def _read_port(s: _Section) -> Port:
@@ -316,14 +358,57 @@ def _read_fit(s: _Section | None) -> FitSettings:
         min_fraction_kept=s.number("min_fraction_kept", 0.1, 1.0, default=0.6),
         min_points=s.integer("min_points", 3, 10000, default=8),
         min_airmass_span=s.number("min_airmass_span", 0.1, 39.0, default=2.0),
-        max_residual_sd=s.number("max_residual_sd", 1e-5, 1.0, default=0.01, unit="in ln V"),
+        max_residual_sd=s.number("max_residual_sd", 1e-5, 1.0, default=0.003, unit="in ln V"),
         max_cv=s.number("max_cv", 1e-5, 1.0, default=0.02),
+        max_abs_residual=s.number("max_abs_residual", 1e-4, 1.0, default=0.006, unit="in ln V"),
+        max_residual_trend=s.number("max_residual_trend", 1e-5, 1.0, default=0.005,
+                                    unit="in ln V"),
+        min_aerosol_optical_depth=s.number("min_aerosol_optical_depth", -1.0, 1.0,
+                                           default=-0.01),
+        normalise_pressure=s.boolean("normalise_pressure", default=True),
+        max_pressure_change_hpa=s.number("max_pressure_change_hpa", 0.01, 200.0, default=1.0,
+                                         unit="hPa"),
+        water_vapour_exponent=s.number("water_vapour_exponent", 0.3, 1.0, default=0.6),
+        angstrom_channels=_angstrom_channels(s),
+        campaign_min_sessions=s.integer("campaign_min_sessions", 1, 10000, default=3),
+        campaign_clip_sigma=s.number("campaign_clip_sigma", 1.0, 10.0, default=3.0),
+        tau_drift_per_hour=s.number("tau_drift_per_hour", 0.0, 0.1, default=0.0007,
+                                    unit="per hour"),
     )
     if fit.airmass_max <= fit.airmass_min:
         raise ConfigError(f"{s._key('airmass_max')}: {fit.airmass_max:g} must be above "
                           f"airmass_min {fit.airmass_min:g}; allowed airmass_min to 40")
     s.finish()
     return fit
+
+
+def _angstrom_channels(s: _Section) -> tuple[str, str] | None:
+    value = s._raw("angstrom_channels", None)
+    if value is None:
+        return None
+    if (not isinstance(value, list) or len(value) != 2
+            or not all(isinstance(v, str) and v for v in value) or value[0] == value[1]):
+        raise ConfigError(f"{s._key('angstrom_channels')}: expected two different channel "
+                          f"names, for example ['440', '870'], got {value!r}")
+    return (value[0], value[1])
+
+
+def _check_fit_channels(fit: FitSettings, channels: tuple[Channel, ...], path: str) -> None:
+    if fit.angstrom_channels is None:
+        return
+    names = [c.name for c in channels]
+    for name in fit.angstrom_channels:
+        if name not in names:
+            raise ConfigError(f"{path}.angstrom_channels: no channel named {name!r}; "
+                              f"configured channels: {', '.join(names)}")
+    for c in channels:
+        if c.name in fit.angstrom_channels and c.water_vapour:
+            raise ConfigError(f"{path}.angstrom_channels: channel {c.name!r} is a water-vapour "
+                              "channel; name two aerosol (window) channels")
+    a, b = (next(c for c in channels if c.name == n) for n in fit.angstrom_channels)
+    if a.wavelength_nm == b.wavelength_nm:
+        raise ConfigError(f"{path}.angstrom_channels: {a.name!r} and {b.name!r} have the same "
+                          "wavelength; an Angstrom exponent needs two wavelengths")
 
 
 def parse_config(data: Any, source: str = "<memory>") -> Config:
@@ -338,6 +423,7 @@ def parse_config(data: Any, source: str = "<memory>") -> Config:
     plan = _read_plan(top.section("plan", required=False))
     acquisition = _read_acquisition(top.section("acquisition", required=False))
     fit = _read_fit(top.section("fit", required=False))
+    _check_fit_channels(fit, channels, "fit")
     store = top.section("store", required=False)
     store_path = "/var/lib/heliotrope/heliotrope.db"
     if store is not None:

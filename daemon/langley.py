@@ -84,6 +84,16 @@ class FitResult:
         empty when accepted.
     notes : tuple of str
         What was dropped or adjusted and why, whether accepted or not.
+    max_abs_residual : float
+        Largest absolute residual of a point in the final fit [ln V].
+    residual_trend : float
+        Peak-to-peak bend of the residuals across the fitted air masses [ln V]: the
+        quadratic part of a parabola fitted to them (see :func:`residual_trend`).
+    residual_trend_t : float
+        t statistic of that quadratic term.
+    v0_drift_unc : float
+        The part of ``v0_rel_unc`` that allows for an unseen linear drift of the
+        optical depth during the session (see :func:`drift_sensitivity`) [fraction].
     """
 
     v0: float
@@ -101,6 +111,10 @@ class FitResult:
     accepted: bool
     reasons: tuple[str, ...]
     notes: tuple[str, ...] = ()
+    max_abs_residual: float = math.nan
+    residual_trend: float = math.nan
+    residual_trend_t: float = math.nan
+    v0_drift_unc: float = 0.0
 
 
 def fit_line(x: ArrayLike, y: ArrayLike) -> LineFit:
@@ -222,15 +236,23 @@ def residual_correlation(x: ArrayLike, residuals: ArrayLike) -> Correlation:
     lag[i, i + 1] = lag[i + 1, i] = 0.5
     mam = resid_maker @ lag @ resid_maker
     distance = np.abs(np.arange(n)[:, None] - np.arange(n)[None, :])
+    # sum(A * phi^|i-j|) is a polynomial in phi whose coefficients are A's diagonal
+    # sums: computed once, each step of the bisection is then two polynomial values.
+    num = np.bincount(distance.ravel(), weights=mam.ravel(), minlength=n)[::-1].tolist()
+    den = np.bincount(distance.ravel(), weights=resid_maker.ravel(),
+                      minlength=n)[::-1].tolist()
 
     def expected_r1(phi: float) -> float:
-        corr = phi ** distance
-        return float(np.sum(mam * corr) / np.sum(resid_maker * corr))
+        a = b = 0.0
+        for cn, cd in zip(num, den, strict=True):  # Horner, on plain floats
+            a = a * phi + cn
+            b = b * phi + cd
+        return a / b
 
-    if r1 <= expected_r1(0.0):
-        return Correlation(r1=r1, phi=0.0, inflation=1.0, n_eff=float(n))
     lo, hi = 0.0, MAX_AR1_PHI
-    if r1 >= expected_r1(hi):
+    if r1 <= expected_r1(0.0):
+        phi = 0.0
+    elif r1 >= expected_r1(hi):
         phi = hi
     else:
         for _ in range(40):
@@ -260,7 +282,105 @@ def _plural(n: int, word: str) -> str:
     return f"{n} {word}" if n == 1 else f"{n} {word}s"
 
 
-def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) -> FitResult:
+# A bend in the residuals counts as a trend only when the quadratic term is this many
+# standard errors from zero: a noisy but straight session is not a drifting one.
+TREND_MIN_T = 3.0
+
+
+def residual_trend(x: ArrayLike, residuals: ArrayLike) -> tuple[float, float]:
+    """Systematic bend left in the residuals of a straight-line fit.
+
+    A parabola is fitted to the residuals against ``x``; since they are already
+    free of any straight line, its quadratic part is what the line missed.
+
+    Parameters
+    ----------
+    x : array_like
+        Regressor of the fitted points (air mass).
+    residuals : array_like
+        Residuals of the line fit [ln V], same order.
+
+    Returns
+    -------
+    bend : float
+        Peak-to-peak of the fitted parabola over the range of ``x`` [ln V]
+        (0 with fewer than four points).
+    t : float
+        Quadratic coefficient over its standard error (0 when it cannot be judged).
+
+    Notes
+    -----
+    An optical depth that drifts through a half-day (haze building up, a thin cirrus
+    band moving in) bends the Langley plot, because the extinction is then the
+    product of a changing optical depth and a changing air mass; a straight fit
+    through a bent plot biases V0 (Shaw 1983, Bull. AMS 64:4-10; from memory). The
+    BSRN Operations Manual (McArthur 2005, WMO/TD-No. 1274, sec. 7.4.2.1) rejects a
+    Langley plot whose residuals show a trend.
+    """
+    xs = np.asarray(x, dtype=float).ravel()
+    e = np.asarray(residuals, dtype=float).ravel()
+    n = xs.size
+    if n < 4 or np.ptp(xs) == 0.0:
+        return 0.0, 0.0
+    u = (xs - xs.mean()) / np.ptp(xs)  # scaled for a well-conditioned design
+    design = np.column_stack([np.ones(n), u, u * u])
+    coef, _, rank, _ = np.linalg.lstsq(design, e, rcond=None)
+    if rank < 3:
+        return 0.0, 0.0
+    grid = np.linspace(u.min(), u.max(), 64)
+    curve = coef[0] + coef[1] * grid + coef[2] * grid * grid
+    bend = float(np.ptp(curve))
+    dof = n - 3
+    if dof <= 0:
+        return bend, 0.0
+    ssr = float(np.sum((e - design @ coef) ** 2))
+    cov = np.linalg.inv(design.T @ design) * (ssr / dof)
+    se = math.sqrt(max(float(cov[2, 2]), 0.0))
+    if se == 0.0:
+        return bend, math.inf if coef[2] != 0.0 else 0.0
+    return bend, float(coef[2] / se)
+
+
+def drift_sensitivity(x: ArrayLike, airmass: ArrayLike, hours: ArrayLike) -> float:
+    """How much a linear drift of the optical depth moves the fitted ln V0.
+
+    Parameters
+    ----------
+    x : array_like
+        Regressor of the fitted points (air mass, or ``m^b``).
+    airmass : array_like
+        Air mass of the same points (the path the drifting optical depth acts on).
+    hours : array_like
+        Time of each point [h], any origin.
+
+    Returns
+    -------
+    float
+        ``d ln V0 / d r`` [h]: the change of the fitted intercept per unit drift rate
+        ``r`` [per hour] of the optical depth, ``tau(t) = tau + r (t - t_mean)``.
+
+    Notes
+    -----
+    The drift adds ``-r (t_i - t_mean) m_i`` to ln V. Through a half-day the time is
+    close to a straight function of ``1/m``, so the product is close to a constant
+    plus a multiple of ``m``: the Langley plot stays straight and the drift goes
+    almost wholly into the intercept, where no residual test can see it (Shaw 1983,
+    Bull. AMS 64:4-10; from memory). The sensitivity is the OLS intercept of that
+    pattern, computed for the session's own times and air masses.
+    """
+    xs = np.asarray(x, dtype=float).ravel()
+    m = np.asarray(airmass, dtype=float).ravel()
+    h = np.asarray(hours, dtype=float).ravel()
+    if xs.size < 2 or np.ptp(xs) == 0.0 or not np.all(np.isfinite(h)):
+        return 0.0
+    pattern = -(h - h.mean()) * m
+    return float(fit_line(xs, pattern).intercept)
+
+
+def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings, *,
+                ln_correction: ArrayLike | None = None, tau_floor: float | None = None,
+                regressor_exponent: float = 1.0, hours: ArrayLike | None = None,
+                drift_per_hour: float = 0.0) -> FitResult:
     """Fit one channel's session: ln V against air mass with outlier rejection.
 
     Parameters
@@ -271,6 +391,24 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
         Dark-corrected direct-sun signal of each point [V], same length.
     settings : FitSettings
         Air-mass window, clipping, and acceptance criteria.
+    ln_correction : array_like, optional
+        Added to ln V before the fit, one value per point [ln V]: the ozone air-mass
+        correction ``tau_O3 (m_O3 - m)``, the pressure normalisation, or (for a
+        water-vapour channel) the known extinctions. A non-finite value drops the point.
+    tau_floor : float, optional
+        Smallest physical optical depth: Rayleigh plus ozone [dimensionless]. The fit
+        fails when the fitted ``tau`` lies below ``tau_floor +
+        settings.min_aerosol_optical_depth``. Without it, only ``tau > 0`` is checked.
+    regressor_exponent : float, default 1
+        Fit against ``m ** regressor_exponent`` (the modified Langley of a
+        water-vapour channel uses about 0.5-0.6); the window and the span still
+        apply to ``m``, and ``tau`` is then minus the slope against ``m^b``.
+    hours : array_like, optional
+        Time of each point [h], any origin; with ``drift_per_hour`` it adds the
+        drift term to the uncertainty.
+    drift_per_hour : float, default 0
+        Standard uncertainty of an unseen linear drift of the optical depth during
+        the session [per hour] (``fit.tau_drift_per_hour`` scaled to the channel).
 
     Returns
     -------
@@ -288,17 +426,42 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
     at a time, while at least ``settings.min_fraction_kept`` of the usable points in
     the window (and never fewer than three) stay in the fit.
 
+    Acceptance criteria, each a reason in words when it fails: at least
+    ``min_points`` points kept, an air-mass span of at least ``min_airmass_span``,
+    a residual SD of at most ``max_residual_sd`` and no residual beyond
+    ``max_abs_residual`` [ln V], no significant bend of the residuals larger than
+    ``max_residual_trend`` [ln V] (:func:`residual_trend`), and an optical depth that
+    is physical (not below Rayleigh plus ozone, see ``tau_floor``).
+
     The relative uncertainty of V0 is the standard error of the intercept of
     ln V, which is exactly the relative error of V0 to first order. Residuals that
     drift together along the air mass (changing haze, a thin cirrus band) are not
     independent, so the standard error is widened for their lag-1 autocorrelation
-    (see :func:`residual_correlation`).
+    (see :func:`residual_correlation`). A slow drift of the optical depth leaves
+    the plot straight and moves the intercept unseen, so the stated uncertainty adds
+    in quadrature ``|drift_sensitivity| * drift_per_hour`` (a prior on the drift
+    rate; :func:`drift_sensitivity`).
     """
     m = np.asarray(airmass, dtype=float).ravel()
     v = np.asarray(signal, dtype=float).ravel()
     if m.shape != v.shape:
         raise ValueError(f"fit_session: {m.size} air masses but {v.size} signals; "
                          "pass one signal per air mass")
+    if ln_correction is None:
+        corr_ln = np.zeros_like(m)
+    else:
+        corr_ln = np.asarray(ln_correction, dtype=float).ravel()
+        if corr_ln.shape != m.shape:
+            raise ValueError(f"fit_session: {corr_ln.size} ln V corrections for {m.size} "
+                             "points; pass one correction per point")
+    h_all = (np.full(m.shape, math.nan) if hours is None
+             else np.asarray(hours, dtype=float).ravel())
+    if h_all.shape != m.shape:
+        raise ValueError(f"fit_session: {h_all.size} times for {m.size} points; pass one "
+                         "time per point")
+    b = float(regressor_exponent)
+    if not (math.isfinite(b) and b > 0.0):
+        raise ValueError(f"regressor_exponent must be a positive number, got {b!r}")
     n_total = m.size
     used = np.zeros(n_total, dtype=bool)
     notes: list[str] = []
@@ -311,6 +474,7 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
         finite_m = np.isfinite(m)
         in_window = (finite_m & (m >= lo * (1 - WINDOW_EDGE_TOLERANCE))
                      & (m <= hi * (1 + WINDOW_EDGE_TOLERANCE)))
+    bad_corr = ~np.isfinite(corr_ln) & ~bad_sig & finite_m
     if nonfinite_sig.any():
         notes.append(f"{_plural(int(nonfinite_sig.sum()), 'point')} dropped: signal not finite")
     if nonpositive_sig.any():
@@ -319,23 +483,27 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
     n_bad_m = int((~finite_m & ~bad_sig).sum())
     if n_bad_m:
         notes.append(f"{_plural(n_bad_m, 'point')} dropped: air mass not finite")
-    n_outside = int((finite_m & ~in_window & ~bad_sig).sum())
+    if bad_corr.any():
+        notes.append(f"{_plural(int(bad_corr.sum()), 'point')} dropped: no extinction "
+                     "correction (ozone air mass or pressure missing)")
+    n_outside = int((finite_m & ~in_window & ~bad_sig & ~bad_corr).sum())
     if n_outside:
         notes.append(f"{_plural(n_outside, 'point')} outside the air-mass window "
                      f"{lo:g} to {hi:g}")
 
-    candidates = np.flatnonzero(in_window & ~bad_sig)
+    candidates = np.flatnonzero(in_window & ~bad_sig & ~bad_corr)
     n_window = candidates.size
     if n_window < MIN_FIT_POINTS:
         what = "no usable points" if n_window == 0 else f"only {_plural(n_window, 'usable point')}"
         return _no_fit(n_total, used, [
             f"{what} of {n_total} in the air-mass window {lo:g} to {hi:g}; "
             f"a Langley fit needs at least {MIN_FIT_POINTS}"], notes)
-    x = m[candidates]
-    y = np.log(v[candidates])
+    am = m[candidates]
+    x = am if b == 1.0 else am ** b
+    y = np.log(v[candidates]) + corr_ln[candidates]
     if np.ptp(x) == 0.0:
         return _no_fit(n_total, used, [
-            f"all {n_window} usable points are at air mass {x[0]:g}; "
+            f"all {n_window} usable points are at air mass {am[0]:g}; "
             "a Langley fit needs a spread in air mass"], notes)
 
     keep = np.ones(n_window, dtype=bool)
@@ -366,7 +534,7 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
                          f"{settings.clip_sigma:g} residual SDs kept: no more than "
                          f"{n_window - min_keep} of {n_window} may be rejected")
 
-    xu, yu = x[keep], y[keep]
+    xu, yu, mu = x[keep], y[keep], am[keep]
     n_used = xu.size
     order = np.argsort(xu, kind="stable")
     resid_sorted = (yu - (fit.intercept + fit.slope * xu))[order]
@@ -377,9 +545,20 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
                      f"about {corr.n_eff:.1f} independent points): "
                      f"uncertainty widened {inflation:.2f} times")
     used[candidates[keep]] = True
+    max_abs = float(np.max(np.abs(resid_sorted))) if n_used else math.nan
+    drift_unc = 0.0
+    if drift_per_hour > 0.0:
+        hu = h_all[candidates][keep]
+        drift_unc = abs(drift_sensitivity(xu, mu, hu)) * drift_per_hour
+    stat_unc = fit.se_intercept * inflation
+    v0_unc = math.hypot(stat_unc, drift_unc)
+    if drift_unc > 0.0:
+        notes.append(f"uncertainty includes {100 * drift_unc:.3f} % for an unseen drift of "
+                     f"the optical depth of {drift_per_hour:.5f} per hour")
+    bend, bend_t = residual_trend(xu[order], resid_sorted)
 
     tau = -fit.slope
-    span = float(xu.max() - xu.min())
+    span = float(mu.max() - mu.min())
     reasons: list[str] = []
     if n_used < settings.min_points:
         reasons.append(f"only {n_used} points used, fewer than the required "
@@ -390,17 +569,36 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings) ->
     if not fit.residual_sd <= settings.max_residual_sd:
         reasons.append(f"residual SD {fit.residual_sd:.4f} in ln V above the limit "
                        f"{settings.max_residual_sd:.4f}")
-    if not tau > 0.0:
-        reasons.append(f"fitted optical depth {tau:.4f} is not positive")
+    if not max_abs <= settings.max_abs_residual:
+        reasons.append(f"largest residual {max_abs:.4f} in ln V above the limit "
+                       f"{settings.max_abs_residual:.4f}")
+    if bend > settings.max_residual_trend and abs(bend_t) >= TREND_MIN_T:
+        reasons.append(f"residuals bend by {bend:.4f} in ln V across air mass "
+                       f"{mu.min():.2f} to {mu.max():.2f} (limit "
+                       f"{settings.max_residual_trend:.4f}): the optical depth changed "
+                       "during the session")
+    if b != 1.0:
+        if not tau > 0.0:
+            reasons.append(f"fitted water-vapour absorption {tau:.4f} (against m^{b:g}) "
+                           "is not positive")
+    elif tau_floor is None:
+        if not tau > 0.0:
+            reasons.append(f"fitted optical depth {tau:.4f} is not positive")
+    elif not tau >= tau_floor + settings.min_aerosol_optical_depth:
+        reasons.append(f"fitted optical depth {tau:.4f} is below Rayleigh plus ozone "
+                       f"{tau_floor:.4f} (aerosol {tau - tau_floor:+.4f}, lowest allowed "
+                       f"{settings.min_aerosol_optical_depth:+.4f}): not physical")
     accepted = not reasons
     return FitResult(
         v0=math.exp(fit.intercept), ln_v0=fit.intercept, tau=tau,
-        v0_rel_unc=fit.se_intercept * inflation, tau_unc=fit.se_slope * inflation,
+        v0_rel_unc=v0_unc, tau_unc=fit.se_slope * inflation,
         n_used=n_used, n_total=n_total,
-        airmass_min=float(xu.min()), airmass_max=float(xu.max()),
+        airmass_min=float(mu.min()), airmass_max=float(mu.max()),
         residual_sd=fit.residual_sd, lag1_autocorr=corr.r1,
         used=tuple(bool(u) for u in used), accepted=accepted,
-        reasons=() if accepted else tuple(reasons + notes), notes=tuple(notes))
+        reasons=() if accepted else tuple(reasons + notes), notes=tuple(notes),
+        max_abs_residual=max_abs, residual_trend=bend, residual_trend_t=bend_t,
+        v0_drift_unc=drift_unc)
 
 
 def v0_at_1au(v0_day: float, earth_sun_factor: float) -> float:

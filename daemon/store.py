@@ -99,6 +99,41 @@ def m001_initial(db: Database) -> None:
     db["meta"].create({"key": str, "value": str, "updated_utc": str}, pk="key")
 
 
+@migrations()
+def m002_calibrations_aod(db: Database) -> None:
+    # A calibration is one campaign (first_date to last_date) combined per channel;
+    # its session list is kept as JSON so a flagged session can be traced back.
+    db["calibrations"].create({
+        "id": int, "created_utc": str, "first_date": str, "last_date": str,
+        "site_name": str, "settings": str, "notes": str,
+    }, pk="id", not_null=["created_utc", "first_date", "last_date"])
+    db["calibration_channels"].create({
+        "calibration_id": int, "channel": str, "wavelength_nm": float, "v0_1au": float,
+        "v0_1au_unc": float, "repeatability_pct": float, "n_sessions": int,
+        "n_flagged": int, "drift_pct_per_year": float, "drift_unc_pct_per_year": float,
+        "e0_1au_w_m2_nm": float, "astm_ratio": float, "usable": int, "sessions": str,
+        "reasons": str,
+    }, pk=("calibration_id", "channel"), not_null=["usable"],
+        foreign_keys=[("calibration_id", "calibrations", "id")])
+    # One aerosol optical depth per measurement and channel, from the calibration
+    # named in the row; a newer calibration replaces it.
+    db["aod"].create({
+        "measurement_id": int, "channel": str, "calibration_id": int, "wavelength_nm": float,
+        "aod": float, "aod_unc": float, "tau_total": float, "tau_rayleigh": float,
+        "tau_ozone": float, "airmass": float, "ozone_airmass": float, "pressure_hpa": float,
+        "flag": str,
+    }, pk=("measurement_id", "channel"),
+        foreign_keys=[("measurement_id", "measurements", "id"),
+                      ("calibration_id", "calibrations", "id")])
+    db["aod"].create_index(["calibration_id"])
+    db["aod_angstrom"].create({
+        "measurement_id": int, "calibration_id": int, "angstrom_alpha": float,
+        "channel_short": str, "channel_long": str,
+    }, pk="measurement_id",
+        foreign_keys=[("measurement_id", "measurements", "id"),
+                      ("calibration_id", "calibrations", "id")])
+
+
 # Every migration is pending on an empty database: that lists the names this version knows.
 KNOWN_MIGRATIONS = frozenset(m.name for m in migrations.pending(
     Database(memory=True, execute_plugins=False)))
@@ -431,6 +466,63 @@ class Store:
             })
         with self._lock, self.db.atomic():
             self.db["session_results"].insert_all(records, replace=True)
+
+    def save_calibration(self, created_utc: _dt.datetime, first_date: str, last_date: str,
+                         site_name: str, settings: Mapping[str, Any], notes: Sequence[str],
+                         channels: Iterable[Mapping[str, Any]]) -> int:
+        """Store one calibration record with its per-channel rows; return its id.
+
+        Each channel row carries the columns of ``calibration_channels`` (see
+        :func:`daemon.storeread.stored_calibration`); ``sessions`` and ``reasons``
+        are stored as JSON, NaN as NULL.
+        """
+        cal = {"created_utc": utc_iso(created_utc), "first_date": check_plan_date(first_date),
+               "last_date": check_plan_date(last_date), "site_name": site_name,
+               "settings": _dumps(settings), "notes": _dumps(list(notes))}
+        text = ("channel", "sessions", "reasons", "usable")
+        with self._lock, self.db.atomic():
+            cid = int(self.db["calibrations"].insert(cal).last_pk)
+            rows = []
+            for ch in channels:
+                row = {k: _num(v) for k, v in ch.items() if k not in text}
+                row.update(calibration_id=cid, channel=str(ch["channel"]),
+                           usable=int(bool(ch["usable"])),
+                           sessions=_dumps(list(ch.get("sessions", ()))),
+                           reasons=_dumps(list(ch.get("reasons", ()))))
+                for key in ("n_sessions", "n_flagged"):
+                    if row.get(key) is not None:
+                        row[key] = int(row[key])
+                rows.append(row)
+            self.db["calibration_channels"].insert_all(rows)
+        return cid
+
+    def save_aod(self, rows: Iterable[Mapping[str, Any]],
+                 angstrom: Iterable[Mapping[str, Any]] = ()) -> int:
+        """Store aerosol optical depths, replacing those of the same measurement and channel.
+
+        ``rows`` carry the columns of the ``aod`` table, ``angstrom`` those of
+        ``aod_angstrom`` (one per measurement); NaN is stored as NULL. A measurement's
+        old Angstrom row goes when its AOD rows are replaced. Returns the AOD rows stored.
+        """
+        text = ("channel", "flag", "channel_short", "channel_long")
+        ints = ("measurement_id", "calibration_id")
+
+        def clean(r: Mapping[str, Any]) -> dict[str, Any]:
+            return {k: (v if k in text else int(v) if k in ints else _num(v))
+                    for k, v in r.items()}
+
+        aod_rows = [clean(r) for r in rows]
+        alpha_rows = [clean(r) for r in angstrom]
+        ids = sorted({r["measurement_id"] for r in aod_rows})
+        with self._lock, self.db.atomic():
+            for i in range(0, len(ids), 500):
+                chunk = ids[i:i + 500]
+                marks = ",".join("?" * len(chunk))
+                self.db.execute(f"DELETE FROM aod_angstrom WHERE measurement_id IN ({marks})",
+                                chunk)
+            self.db["aod"].insert_all(aod_rows, replace=True)
+            self.db["aod_angstrom"].insert_all(alpha_rows, replace=True)
+        return len(aod_rows)
 
     def heartbeat(self, now: _dt.datetime) -> None:
         """Record that the service is alive at ``now`` (aware UTC)."""

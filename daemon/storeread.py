@@ -22,7 +22,7 @@ import datetime as _dt
 import json
 import re
 import sqlite3
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
@@ -193,3 +193,307 @@ def day_measurements(conn: sqlite3.Connection, plan_date: str | _dt.date) -> lis
     for r in rows:
         r["locked"] = None if r["locked"] is None else bool(r["locked"])
     return rows
+
+
+# --------------------------------------------------------------------------- operator's view
+# Readers for status, plot, report and export (daemon/status.py and friends).
+
+HOUSEKEEPING_KEYS = ("detector_temp_c", "case_temp_c", "ambient_temp_c", "supply_v",
+                     "humidity_pct", "pressure_hpa")
+
+
+def last_measurement(conn: sqlite3.Connection) -> dict[str, Any] | None:
+    """The newest measurement of any status, with its housekeeping; None if there is none.
+
+    Keys: ``id``, ``time_utc``, ``plan_date``, ``session``, ``target_airmass``,
+    ``status``, ``failure``, ``airmass``, ``pointing_error_deg`` [deg], ``locked``
+    (bool), and ``housekeeping`` (a dict of :data:`HOUSEKEEPING_KEYS` or None).
+    """
+    cur = conn.execute(
+        "SELECT m.id, m.time_utc, m.plan_date, m.session, m.target_airmass, m.status, "
+        "m.failure, m.airmass, m.pointing_error_deg, m.locked, "
+        "h.measurement_id IS NOT NULL AS has_hk, h.detector_temp_c, h.case_temp_c, "
+        "h.ambient_temp_c, h.supply_v, h.humidity_pct, h.pressure_hpa "
+        "FROM measurements m LEFT JOIN housekeeping h ON h.measurement_id = m.id "
+        "ORDER BY m.time_utc DESC, m.id DESC LIMIT 1")
+    row = cur.fetchone()
+    if row is None:
+        return None
+    r = tuple(row)
+    out = dict(zip(("id", "time_utc", "plan_date", "session", "target_airmass", "status",
+                    "failure", "airmass", "pointing_error_deg"), r[:9], strict=True))
+    out["locked"] = None if r[9] is None else bool(r[9])
+    out["housekeeping"] = dict(zip(HOUSEKEEPING_KEYS, r[11:], strict=True)) if r[10] else None
+    return out
+
+
+def recent_outcomes(conn: sqlite3.Connection, since_utc: str, limit: int = 10) -> list[str]:
+    """Statuses ('ok' or 'failed') of the newest measurements since ``since_utc``, newest
+    first."""
+    cur = conn.execute("SELECT status FROM measurements WHERE time_utc >= ? "
+                       "ORDER BY time_utc DESC, id DESC LIMIT ?", (since_utc, int(limit)))
+    return [r[0] for r in cur.fetchall()]
+
+
+def latest_housekeeping(conn: sqlite3.Connection) -> dict[str, Any] | None:
+    """The newest housekeeping reading with its measurement time, or None."""
+    row = conn.execute(
+        "SELECT m.time_utc, h.detector_temp_c, h.case_temp_c, h.ambient_temp_c, h.supply_v, "
+        "h.humidity_pct, h.pressure_hpa FROM housekeeping h "
+        "JOIN measurements m ON m.id = h.measurement_id "
+        "ORDER BY m.time_utc DESC, m.id DESC LIMIT 1").fetchone()
+    if row is None:
+        return None
+    return dict(zip(("time_utc",) + HOUSEKEEPING_KEYS, tuple(row), strict=True))
+
+
+def day_housekeeping(conn: sqlite3.Connection, plan_date: str | _dt.date) -> list[dict[str, Any]]:
+    """Housekeeping of every measurement of one local date, in time order."""
+    cur = conn.execute(
+        "SELECT m.time_utc, m.session, h.detector_temp_c, h.case_temp_c, h.ambient_temp_c, "
+        "h.supply_v, h.humidity_pct, h.pressure_hpa FROM housekeeping h "
+        "JOIN measurements m ON m.id = h.measurement_id WHERE m.plan_date = ? "
+        "ORDER BY m.time_utc, m.id", (check_plan_date(plan_date),))
+    keys = ("time_utc", "session") + HOUSEKEEPING_KEYS
+    return [dict(zip(keys, tuple(r), strict=True)) for r in cur.fetchall()]
+
+
+def events_between(conn: sqlite3.Connection, start_utc: str, end_utc: str,
+                   levels: tuple[str, ...] | None = None) -> list[dict[str, Any]]:
+    """Events with ``start_utc <= time_utc < end_utc`` (ISO 8601 UTC text), oldest first.
+
+    ``levels`` keeps only those levels (for example the faults: warning, error,
+    critical). ``detail`` is decoded from JSON.
+    """
+    sql = ("SELECT id, time_utc, level, kind, message, detail FROM events "
+           "WHERE time_utc >= ? AND time_utc < ?")
+    params: list[Any] = [start_utc, end_utc]
+    if levels:
+        sql += f" AND level IN ({', '.join('?' * len(levels))})"
+        params += list(levels)
+    cur = conn.execute(sql + " ORDER BY time_utc, id", params)
+    return [{"id": r[0], "time_utc": r[1], "level": r[2], "kind": r[3], "message": r[4],
+             "detail": json.loads(r[5]) if r[5] else None} for r in cur.fetchall()]
+
+
+def plans_from(conn: sqlite3.Connection, first_date: str | _dt.date) -> list[dict[str, Any]]:
+    """Every stored plan with ``plan_date >= first_date``, oldest first."""
+    cur = conn.execute("SELECT plan_json FROM plans WHERE plan_date >= ? ORDER BY plan_date",
+                       (check_plan_date(first_date),))
+    return [json.loads(r[0]) for r in cur.fetchall()]
+
+
+def store_files_size(path: str | Path) -> int:
+    """Bytes on disk of the store with its WAL and shared-memory files [bytes]."""
+    p = Path(path).expanduser()
+    total = 0
+    for suffix in ("", "-wal", "-shm"):
+        part = Path(str(p) + suffix)
+        if part.is_file():
+            total += part.stat().st_size
+    return total
+
+
+# The same aggregates as daemon.store.Store.session_points (two-pass sample SD), for the
+# read-only plot and report; tests/test_plot.py checks that both agree.
+_RO_POINTS_SQL = """
+SELECT m.id, m.time_utc, m.airmass, m.earth_sun_factor, m.pressure_hpa,
+       m.pointing_error_deg, m.locked, h.measurement_id IS NOT NULL, h.detector_temp_c
+FROM measurements m LEFT JOIN housekeeping h ON h.measurement_id = m.id
+WHERE m.plan_date = ? AND m.session = ? AND m.status = 'ok'
+ORDER BY m.time_utc, m.id
+"""
+
+_RO_STATS_SQL = """
+WITH sel AS (
+    SELECT id FROM measurements WHERE plan_date = ?1 AND session = ?2 AND status = 'ok'
+), mean AS (
+    SELECT s.measurement_id, s.channel, s.kind, AVG(s.value_v) AS mean_v,
+           COUNT(s.value_v) AS n
+    FROM samples s JOIN sel ON sel.id = s.measurement_id
+    GROUP BY s.measurement_id, s.channel, s.kind
+), spread AS (
+    SELECT s.measurement_id, s.channel,
+           SUM((s.value_v - mean.mean_v) * (s.value_v - mean.mean_v)) AS ss
+    FROM samples s JOIN mean ON mean.measurement_id = s.measurement_id
+         AND mean.channel = s.channel AND mean.kind = s.kind
+    WHERE s.kind = 'sun'
+    GROUP BY s.measurement_id, s.channel
+)
+SELECT mc.measurement_id, mc.channel, mc.saturated, sun.mean_v, sun.n, spread.ss,
+       dark.mean_v, dark.n
+FROM measurement_channels mc JOIN sel ON sel.id = mc.measurement_id
+LEFT JOIN mean sun ON sun.measurement_id = mc.measurement_id AND sun.channel = mc.channel
+     AND sun.kind = 'sun'
+LEFT JOIN mean dark ON dark.measurement_id = mc.measurement_id AND dark.channel = mc.channel
+     AND dark.kind = 'dark'
+LEFT JOIN spread ON spread.measurement_id = mc.measurement_id AND spread.channel = mc.channel
+ORDER BY mc.measurement_id, mc.channel_index
+"""
+
+
+def session_points_readonly(conn: sqlite3.Connection, plan_date: str | _dt.date,
+                            session: str) -> list[dict[str, Any]]:
+    """The 'ok' measurements of one session with per-channel sample aggregates.
+
+    One dict per measurement in time order: ``measurement_id``, ``time_utc``,
+    ``airmass``, ``earth_sun_factor``, ``pressure_hpa`` [hPa], ``pointing_error_deg``
+    [deg], ``locked`` (bool), ``detector_temp_c`` [degC] (None without housekeeping),
+    ``has_housekeeping`` and ``channels``: channel name -> ``sun_mean_v`` [V],
+    ``sun_sd_v`` [V] (sample SD, None below 2 samples), ``n_sun``, ``dark_mean_v`` [V]
+    (None without dark samples), ``n_dark``, ``saturated`` (bool).
+    """
+    date = check_plan_date(plan_date)
+    stats: dict[int, dict[str, dict[str, Any]]] = {}
+    for mid, channel, saturated, sun_mean, n_sun, sun_ss, dark_mean, n_dark in conn.execute(
+            _RO_STATS_SQL, (date, session)).fetchall():
+        n_sun = int(n_sun or 0)
+        sd = (sun_ss / (n_sun - 1)) ** 0.5 if n_sun >= 2 and sun_ss is not None else None
+        stats.setdefault(mid, {})[channel] = {
+            "sun_mean_v": sun_mean, "sun_sd_v": sd, "n_sun": n_sun,
+            "dark_mean_v": dark_mean if n_dark else None, "n_dark": int(n_dark or 0),
+            "saturated": bool(saturated)}
+    points = []
+    for r in conn.execute(_RO_POINTS_SQL, (date, session)).fetchall():
+        points.append({"measurement_id": r[0], "time_utc": r[1], "airmass": r[2],
+                       "earth_sun_factor": r[3], "pressure_hpa": r[4],
+                       "pointing_error_deg": r[5], "locked": bool(r[6]),
+                       "has_housekeeping": bool(r[7]), "detector_temp_c": r[8],
+                       "channels": stats.get(r[0], {})})
+    return points
+
+
+# --------------------------------------------------------------------------- calibration, AOD
+
+AOD_KEYS = ("time_utc", "plan_date", "session", "measurement_id", "channel", "wavelength_nm",
+            "aod", "aod_unc", "tau_total", "tau_rayleigh", "tau_ozone", "airmass",
+            "ozone_airmass", "pressure_hpa", "flag", "calibration_id", "angstrom_alpha",
+            "angstrom_channels")
+
+_AOD_SQL = """
+SELECT m.time_utc, m.plan_date, m.session, a.measurement_id, a.channel, a.wavelength_nm,
+       a.aod, a.aod_unc, a.tau_total, a.tau_rayleigh, a.tau_ozone, a.airmass,
+       a.ozone_airmass, a.pressure_hpa, a.flag, a.calibration_id, g.angstrom_alpha,
+       g.channel_short, g.channel_long
+FROM aod a JOIN measurements m ON m.id = a.measurement_id
+LEFT JOIN aod_angstrom g ON g.measurement_id = a.measurement_id
+WHERE m.plan_date BETWEEN ? AND ?
+ORDER BY m.time_utc, a.measurement_id, a.wavelength_nm, a.channel
+"""
+
+
+def _has_table(conn: sqlite3.Connection, name: str) -> bool:
+    row = conn.execute("SELECT count(*) FROM sqlite_master WHERE type = 'table' AND name = ?",
+                       (name,)).fetchone()
+    return bool(row[0])
+
+
+def aod_between(conn: sqlite3.Connection, first: str | _dt.date,
+                last: str | _dt.date) -> Iterator[dict[str, Any]]:
+    """Stored aerosol optical depths of the measurements with ``first <= plan_date <= last``.
+
+    One dict per measurement and channel, in time order (then wavelength). AOD is
+    computed and stored by the service (:mod:`daemon.aod`) once a calibration exists:
+    for every measurement of the calibration's date range when the calibration is
+    stored, and for each new session after its fit. Stores written before AOD existed,
+    and dates without a calibration, give nothing.
+
+    Keys
+    ----
+    time_utc : str
+        Burst mean time, ISO 8601 UTC.
+    plan_date : str
+        Local date of the plan (YYYY-MM-DD).
+    session : str
+        'am', 'pm' or 'routine'.
+    measurement_id : int
+        The measurement's row id.
+    channel : str
+        Channel name.
+    wavelength_nm : float
+        Nominal centre wavelength [nm].
+    aod : float
+        Aerosol optical depth [dimensionless]: total optical depth from the
+        calibrated V0 minus Rayleigh (at the measured pressure) minus ozone (nominal
+        column), each with its own air mass.
+    aod_unc : float or None
+        Standard uncertainty of ``aod`` from the calibration's V0 uncertainty alone
+        (``e / m`` for a relative V0 error ``e``).
+    tau_total, tau_rayleigh, tau_ozone : float or None
+        Total (``ln(V0 f / V) / m``), Rayleigh and ozone vertical optical depths
+        [dimensionless]; ``tau_total`` is on the Kasten-Young air mass.
+    airmass, ozone_airmass : float
+        Kasten-Young relative air mass and ozone (22 km layer) air mass.
+    pressure_hpa : float or None
+        Station pressure used for the Rayleigh part [hPa].
+    flag : str or None
+        Why the value is doubtful (for example a burst too variable to be clear
+        sky); None for a clean value. Filter on it for cloud-screened series.
+    calibration_id : int
+        The calibration whose V0 was used.
+    angstrom_alpha : float or None
+        Angstrom exponent of this measurement, ``-ln(aod_1 / aod_2) / ln(l_1 / l_2)``
+        from the pair in ``angstrom_channels``; the same on every channel's row of a
+        measurement; None when either AOD is missing, flagged or not positive.
+    angstrom_channels : list of str or None
+        The two channel names (shorter wavelength first) behind ``angstrom_alpha``.
+    """
+    d1, d2 = check_plan_date(first), check_plan_date(last)
+    if d2 < d1:
+        raise ValueError(f"the end date {d2} is before the start date {d1}; swap them")
+    if not (_has_table(conn, "aod") and _has_table(conn, "aod_angstrom")):
+        return
+    cur = conn.execute(_AOD_SQL, (d1, d2))
+    while True:
+        batch = cur.fetchmany(500)
+        if not batch:
+            return
+        for r in batch:
+            r = tuple(r)
+            pair = [r[17], r[18]] if r[17] is not None and r[18] is not None else None
+            yield dict(zip(AOD_KEYS, r[:17] + (pair,), strict=True))
+
+
+def _calibration_row(conn: sqlite3.Connection, cal: Mapping[str, Any]) -> dict[str, Any]:
+    cur = conn.execute(
+        "SELECT channel, wavelength_nm, v0_1au, v0_1au_unc, repeatability_pct, n_sessions, "
+        "n_flagged, drift_pct_per_year, drift_unc_pct_per_year, e0_1au_w_m2_nm, astm_ratio, "
+        "usable, sessions, reasons FROM calibration_channels WHERE calibration_id = ? "
+        "ORDER BY wavelength_nm, channel", (cal["id"],))
+    names = [d[0] for d in cur.description]
+    channels = []
+    for r in cur.fetchall():
+        row = dict(zip(names, tuple(r), strict=True))
+        row["usable"] = bool(row["usable"])
+        row["sessions"] = json.loads(row["sessions"]) if row["sessions"] else []
+        row["reasons"] = json.loads(row["reasons"]) if row["reasons"] else []
+        channels.append(row)
+    return {"id": cal["id"], "created_utc": cal["created_utc"], "from": cal["first_date"],
+            "to": cal["last_date"], "site_name": cal["site_name"],
+            "settings": json.loads(cal["settings"]) if cal["settings"] else {},
+            "notes": json.loads(cal["notes"]) if cal["notes"] else [], "channels": channels}
+
+
+def stored_calibration(conn: sqlite3.Connection,
+                       calibration_id: int | None = None) -> dict[str, Any] | None:
+    """One stored calibration record (the newest when ``calibration_id`` is None).
+
+    Returns None when there is none. Keys: ``id``, ``created_utc``, ``from``, ``to``
+    (campaign dates), ``site_name``, ``settings``, ``notes`` and ``channels``, a list
+    of per-channel dicts (``channel``, ``wavelength_nm``, ``v0_1au`` [V],
+    ``v0_1au_unc`` [V], ``repeatability_pct``, ``n_sessions``, ``n_flagged``,
+    ``drift_pct_per_year``, ``drift_unc_pct_per_year``, ``e0_1au_w_m2_nm``,
+    ``astm_ratio``, ``usable``, ``sessions``, ``reasons``); see :mod:`daemon.campaign`.
+    """
+    if not _has_table(conn, "calibrations"):
+        return None
+    cols = "id, created_utc, first_date, last_date, site_name, settings, notes"
+    if calibration_id is None:
+        cur = conn.execute(f"SELECT {cols} FROM calibrations ORDER BY id DESC LIMIT 1")
+    else:
+        cur = conn.execute(f"SELECT {cols} FROM calibrations WHERE id = ?", (int(calibration_id),))
+    row = cur.fetchone()
+    if row is None:
+        return None
+    names = [d[0] for d in cur.description]
+    return _calibration_row(conn, dict(zip(names, tuple(row), strict=True)))

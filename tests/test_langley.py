@@ -8,17 +8,23 @@ from dataclasses import replace
 import numpy as np
 import pytest
 import scipy.stats
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from daemon.config import FitSettings
 from daemon.langley import (
+    drift_sensitivity,
     fit_line,
     fit_session,
     lag1_autocorrelation,
     residual_correlation,
+    residual_trend,
     v0_at_1au,
 )
 
 SETTINGS = FitSettings()  # air mass 2-6, clip 2.5 SD, keep >= 60 %, >= 8 points, span >= 2
+# Looser residual limits for tests that add large synthetic noise on purpose.
+NOISY = replace(SETTINGS, max_residual_sd=0.01, max_abs_residual=0.05)
 AIRMASS = np.arange(2.0, 6.0001, 0.25)  # the default plan's targets: 17 points
 
 
@@ -100,7 +106,7 @@ def test_cloud_points_are_rejected_and_v0_stays_close():
     ln_v = math.log(v0) - tau * AIRMASS + rng.normal(0.0, 0.002, AIRMASS.size)
     cloud = [5, 11]  # two bursts attenuated by passing cloud
     ln_v[cloud] += [-0.06, -0.09]
-    r = fit_session(AIRMASS, np.exp(ln_v), SETTINGS)
+    r = fit_session(AIRMASS, np.exp(ln_v), NOISY)
     assert not r.used[5] and not r.used[11]
     assert sum(r.used) == AIRMASS.size - 2
     # A high site recovers V0 to a few tenths of a percent (Schmid and Wehrli 1995,
@@ -109,7 +115,7 @@ def test_cloud_points_are_rejected_and_v0_stays_close():
     assert r.accepted
     assert any("2 points rejected as outliers" in n for n in r.notes)
     # Without clipping the same data miss by more: the test can fail.
-    no_clip = fit_session(AIRMASS, np.exp(ln_v), replace(SETTINGS, clip_sigma=10.0))
+    no_clip = fit_session(AIRMASS, np.exp(ln_v), replace(NOISY, clip_sigma=10.0))
     assert abs(no_clip.v0 / v0 - 1) > 2 * abs(r.v0 / v0 - 1)
 
 
@@ -163,7 +169,8 @@ def test_each_failed_criterion_is_a_reason_with_its_numbers():
     text = " | ".join(r.reasons)
     assert "only 6 points used, fewer than the required 8" in text
     assert "air-mass span 1.00 below the required 2.00" in text
-    assert "in ln V above the limit 0.0100" in text
+    assert "residual SD 0.0351 in ln V above the limit 0.0030" in text
+    assert "largest residual 0.0377 in ln V above the limit 0.0060" in text
     assert "is not positive" in text
 
 
@@ -250,3 +257,156 @@ def test_v0_at_1au_makes_january_and_july_agree():
 def test_v0_at_1au_rejects_a_bad_factor(factor):
     with pytest.raises(ValueError, match="earth_sun_factor"):
         v0_at_1au(1.0, factor)
+
+
+# --------------------------------------------------------------------------- extinction
+
+# Geometry of a morning at Pico Sereno (3650 m): apparent zeniths for the default
+# targets, Kasten-Young air mass and Komhyr ozone air mass from daemon.solar.
+ZENITH = np.degrees(np.arccos(1.0 / AIRMASS))  # close enough to span m = 2 to 6
+
+
+def _airmasses():
+    from daemon import solar
+    m = np.asarray(solar.relative_airmass(ZENITH), dtype=float)
+    m_o3 = np.asarray(solar.ozone_airmass(ZENITH, 3650.0), dtype=float)
+    return m, m_o3
+
+
+def test_ozone_correction_makes_noise_free_data_exact():
+    # Beer-Lambert with the ozone on its own air mass (Komhyr 1980 layer at 22 km,
+    # REFERENCES.md); tau_O3 = 500 nm band at 260 DU from Serdyuchenko et al. (2014)
+    # bin means (REFERENCES.md: 9.02e-22 and 1.48e-21 cm^2, 2.687e16 cm^-2 per DU).
+    m, m_o3 = _airmasses()
+    tau_o3 = 0.5 * (9.02e-22 + 1.48e-21) * 260 * 2.687e16
+    tau_rest = 0.0990 + 0.02  # Bodhaine Rayleigh at 700 hPa (REFERENCES.md) plus aerosol
+    v0 = 1.9
+    v = v0 * np.exp(-tau_rest * m - tau_o3 * m_o3)
+    plain = fit_session(m, v, SETTINGS)
+    fixed = fit_session(m, v, SETTINGS, ln_correction=tau_o3 * (m_o3 - m),
+                        tau_floor=0.0990 + tau_o3)
+    # Without the correction ln V bends: the ozone air mass grows slower than m, and the
+    # intercept is biased low by a fraction of a percent.
+    assert -0.004 < plain.v0 / v0 - 1 < -0.0005
+    assert fixed.v0 == pytest.approx(v0, rel=1e-9)
+    # The slope is the total optical depth (ozone counted on the Kasten-Young air mass).
+    assert fixed.tau == pytest.approx(tau_rest + tau_o3, rel=1e-9)
+    assert fixed.accepted and fixed.max_abs_residual < 1e-12
+
+
+def test_optical_depth_below_rayleigh_plus_ozone_is_not_physical():
+    m, _ = _airmasses()
+    v = 1.5 * np.exp(-0.05 * m)
+    r = fit_session(m, v, SETTINGS, tau_floor=0.0990)  # Bodhaine at 700 hPa, 500 nm
+    assert not r.accepted
+    assert ("fitted optical depth 0.0500 is below Rayleigh plus ozone 0.0990 (aerosol "
+            "-0.0490, lowest allowed -0.0100): not physical") in r.reasons
+    ok = fit_session(m, 1.5 * np.exp(-0.095 * m), SETTINGS, tau_floor=0.0990)
+    assert ok.accepted  # -0.004 aerosol is within the allowed noise margin
+
+
+def test_a_single_large_residual_fails_the_largest_residual_criterion():
+    m, _ = _airmasses()
+    ln_v = 0.5 - 0.1 * m + np.random.default_rng(8).normal(0.0, 0.0005, m.size)
+    ln_v[8] += 0.009  # a kept point: 9e-3 is within 2.5 SD of the loosened fit below
+    settings = replace(SETTINGS, clip_sigma=10.0, max_residual_sd=0.01)
+    r = fit_session(m, np.exp(ln_v), settings)
+    assert not r.accepted
+    assert any(x.startswith("largest residual 0.00") and x.endswith("above the limit 0.0060")
+               for x in r.reasons), r.reasons
+
+
+def test_a_drifting_session_is_rejected_for_its_bent_residuals():
+    # An optical depth that changes during the half-day bends the Langley plot
+    # (BSRN Operations Manual, McArthur 2005, sec. 7.4.2.1: reject a trend in the
+    # residuals). The curvature here is 0.004 m^2 over m = 2 to 6.
+    m, _ = _airmasses()
+    rng = np.random.default_rng(5)
+    bent = 0.4 - 0.1 * m + 0.004 * (m - 4.0) ** 2 + rng.normal(0.0, 0.0004, m.size)
+    r = fit_session(m, np.exp(bent), SETTINGS)
+    assert not r.accepted
+    assert any("residuals bend by" in x and "the optical depth changed" in x
+               for x in r.reasons), r.reasons
+    assert r.residual_trend == pytest.approx(0.004 * 4.0, rel=0.2)  # ptp of 0.004 (m-4)^2
+    straight = 0.4 - 0.1 * m + rng.normal(0.0, 0.0004, m.size)
+    s = fit_session(m, np.exp(straight), SETTINGS)
+    assert s.accepted and abs(s.residual_trend_t) < 3.0
+
+
+def test_residual_trend_of_an_exact_parabola():
+    x = np.linspace(2.0, 6.0, 17)
+    bend, t = residual_trend(x, (x - 4.0) ** 2 - np.mean((x - 4.0) ** 2))
+    assert bend == pytest.approx(4.0, rel=1e-3)  # (m-4)^2 spans 0 to 4 on [2, 6]
+    assert t == math.inf or t > 1e6
+    assert residual_trend([1.0, 2.0, 3.0], [0.0, 0.1, 0.0]) == (0.0, 0.0)
+
+
+# --------------------------------------------------------------------------- drift
+
+def test_drift_sensitivity_of_a_time_proportional_to_one_over_airmass():
+    # If t = c / m + d exactly, the drift pattern -(t - t_mean) m is the constant -c
+    # plus a multiple of m, so it moves the intercept by exactly -c and leaves the
+    # plot straight (Shaw 1983, Bull. AMS 64:4-10; from memory).
+    m = AIRMASS
+    hours = 1.5 / m + 7.0
+    assert drift_sensitivity(m, m, hours) == pytest.approx(-1.5, rel=1e-12)
+
+
+def test_an_unseen_drift_moves_v0_by_its_sensitivity_and_the_uncertainty_covers_it():
+    m, _ = _airmasses()
+    hours = 2.0 / m  # a morning: time runs as the air mass falls
+    rate = 0.002  # optical depth per hour
+    tau = 0.12 + rate * (hours - hours.mean())
+    v = 1.4 * np.exp(-tau * m)
+    r = fit_session(m, v, SETTINGS, hours=hours, drift_per_hour=rate)
+    expected = drift_sensitivity(m, m, hours) * rate
+    assert r.ln_v0 - math.log(1.4) == pytest.approx(expected, rel=1e-9)
+    assert r.accepted  # nothing in the residuals gives the drift away ...
+    assert r.v0_drift_unc == pytest.approx(abs(expected), rel=1e-12)  # ... but the error bar does
+    assert any("unseen drift" in n for n in r.notes)
+    no_prior = fit_session(m, v, SETTINGS, hours=hours)
+    assert no_prior.v0_rel_unc < 0.01 * r.v0_rel_unc
+
+
+# --------------------------------------------------------------------------- water vapour
+
+def test_modified_langley_recovers_v0_of_a_water_vapour_band():
+    # Water-vapour transmission as exp(-a (u m)^b), b about 0.5-0.6 (REFERENCES.md,
+    # from memory): ln V plus the known extinctions is a line in m^b.
+    m, _ = _airmasses()
+    b, a_u_b, tau_known = 0.6, 0.25, 0.03
+    v = 0.9 * np.exp(-tau_known * m - a_u_b * m ** b)
+    r = fit_session(m, v, SETTINGS, ln_correction=tau_known * m, regressor_exponent=b)
+    assert r.v0 == pytest.approx(0.9, rel=1e-9)
+    assert r.tau == pytest.approx(a_u_b, rel=1e-9)
+    assert r.accepted and (r.airmass_min, r.airmass_max) == (pytest.approx(m.min()),
+                                                               pytest.approx(m.max()))
+    straight = fit_session(m, v, SETTINGS)  # the plain Langley is curved and misses
+    assert abs(straight.v0 / 0.9 - 1) > 0.05 and not straight.accepted
+
+
+# --------------------------------------------------------------------------- bad input
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.tuples(
+    st.floats(allow_nan=True, allow_infinity=True, width=64),
+    st.floats(allow_nan=True, allow_infinity=True, width=64)), max_size=40))
+def test_fit_session_never_raises_on_any_numbers(pairs):
+    m = np.array([p[0] for p in pairs], dtype=float)
+    v = np.array([p[1] for p in pairs], dtype=float)
+    with np.errstate(all="ignore"):
+        r = fit_session(m, v, SETTINGS, hours=np.arange(m.size, dtype=float),
+                        drift_per_hour=0.001)
+    assert r.n_total == m.size and len(r.used) == m.size
+    if r.accepted:
+        assert math.isfinite(r.v0) and r.v0 > 0 and math.isfinite(r.v0_rel_unc)
+    else:
+        assert r.reasons
+
+
+def test_duplicate_air_masses_and_a_single_point_are_judged_not_crashed():
+    one = fit_session([3.0], [1.0], SETTINGS)
+    assert not one.accepted and "only 1 usable point of 1" in one.reasons[0]
+    m = np.array([2.0, 2.0, 4.0, 4.0, 6.0, 6.0])
+    dup = fit_session(m, np.exp(-0.1 * m), replace(SETTINGS, min_points=3))
+    assert dup.accepted and dup.n_used == 6

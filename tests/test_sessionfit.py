@@ -118,7 +118,9 @@ def test_clear_afternoon_recovers_v0_at_1au(filled_store):
         assert r["v0_1au"] == pytest.approx(v0, rel=5e-4)
         assert r["v0"] == pytest.approx(v0 * ES_FACTOR, rel=5e-4)
         assert r["tau"] == pytest.approx(tau, abs=2e-4)
-        assert 0 < r["v0_rel_unc"] < 5e-4
+        # The stated uncertainty allows for an unseen drift of the optical depth
+        # (fit.tau_drift_per_hour): a few tenths of a percent over 96 minutes.
+        assert 5e-4 < r["v0_rel_unc"] < 0.01
         assert r["n_total"] == AIRMASS.size  # the failed burst is not a point
         assert r["n_used"] == AIRMASS.size - (3 if r["channel"] == "500" else 2)
         assert (r["airmass_min"], r["airmass_max"]) == (2.0, 6.0)
@@ -223,3 +225,117 @@ def test_dark_signal_is_subtracted(tmp_path):
 def test_only_am_and_pm_are_fitted(filled_store):
     with pytest.raises(ValueError, match="'am' and 'pm'"):
         fit_stored_session(filled_store, make_config(), DAY, "routine", T_PM)
+
+
+# --------------------------------------------------------------------------- extinction
+
+def _store_session(store, session) -> None:
+    for rec in session.records():
+        store.record_measurement(rec)
+
+
+def test_ozone_air_mass_correction_removes_the_500_and_675_nm_bias(tmp_path):
+    # Noise-free simulated morning at Pico Sereno (simulator physics: Komhyr ozone air
+    # mass, Serdyuchenko cross-sections, 260 DU as the nominal column). Before the
+    # correction the Chappuis-band channels came out about 0.2 % low.
+    from tests.langley_sessions import pico_config, simulate_session
+    s = simulate_session(dt.date(2027, 2, 15), "am", "clear", 0, wander_sd_500=0.0,
+                         noise=False, ozone_du=260.0, pressure_hpa=645.0)
+    config = pico_config()
+    no_ozone = replace(config, channels=tuple(replace(c, ozone_cross_section_cm2=0.0)
+                                              for c in config.channels))
+    store = Store.open(tmp_path / "h.db")
+    try:
+        _store_session(store, s)
+        fixed = fit_stored_session(store, config, s.date, "am", T_AM)
+        plain = fit_stored_session(store, no_ozone, s.date, "am", T_AM)
+    finally:
+        store.close()
+    for good, bad in zip(fixed, plain, strict=True):
+        truth = s.v0_1au_true[good["channel"]]
+        assert good["accepted"], good["reasons"]
+        # What is left is the geometry the daemon computes itself (delta T, burst mean
+        # time): a few thousandths of a percent.
+        assert abs(good["v0_1au"] / truth - 1) < 1e-4
+        if good["channel"] in ("500", "675"):
+            assert -0.003 < bad["v0_1au"] / truth - 1 < -0.001
+
+
+def test_pressure_change_is_normalised_or_fails_the_blue_channels(tmp_path):
+    # Rayleigh optical depth scales with pressure (Bodhaine et al. 1999, eq. 30 and the
+    # p/1013.25 scaling, REFERENCES.md). A 6 hPa fall through the afternoon tilts the
+    # 380 nm Langley plot; the BSRN manual (McArthur 2005, sec. 7.4.2.1) asks for
+    # normalisation or dropping channels below 500 nm when p moves more than 1 hPa.
+    from daemon import solar
+    config = make_config()
+    store = Store.open(tmp_path / "h.db")
+    pressures = np.linspace(652.0, 646.0, AIRMASS.size)
+    rng = np.random.default_rng(11)
+    try:
+        for i, m in enumerate(AIRMASS):
+            rec = synthetic_record(i, m, T_PM, "pm", rng, burst_cv=1e-5)
+            p = float(pressures[i])
+            extra = np.array([float(solar.rayleigh_optical_depth(WAVELENGTH[n], p))
+                              - float(solar.rayleigh_optical_depth(WAVELENGTH[n], 649.0))
+                              for n in TRUTH])
+            scale = np.exp(-extra * m)
+            sun = tuple(tuple(float((v - DARK_V) * k + DARK_V) for v, k in zip(row, scale,
+                                                                              strict=True))
+                        for row in rec.sun)
+            hk = replace(rec.housekeeping, pressure_hpa=p)
+            store.record_measurement(replace(rec, sun=sun, pressure_hpa=p, housekeeping=hk))
+        norm = fit_stored_session(store, config, DAY, "pm", T_PM)
+        raw = fit_stored_session(store, replace(config, fit=replace(
+            config.fit, normalise_pressure=False)), DAY, "pm", T_PM)
+    finally:
+        store.close()
+    by = {r["channel"]: r for r in norm}
+    assert by["380"]["accepted"]
+    assert by["380"]["v0_1au"] == pytest.approx(TRUTH["380"][0], rel=3e-4)
+    raw_by = {r["channel"]: r for r in raw}
+    for name in ("380", "440"):
+        assert not raw_by[name]["accepted"]
+        assert any("pressure changed by 6.0 hPa during the session (limit 1 hPa without "
+                   "normalisation)" in x for x in raw_by[name]["reasons"])
+    assert raw_by["675"]["accepted"]
+
+
+def _water_config():
+    config = make_config()
+    wv = Channel(name="940", wavelength_nm=940, bandwidth_nm=10)
+    return replace(config, channels=config.channels + (replace(wv, water_vapour=True),))
+
+
+def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
+    # Water-vapour transmission exp(-a (u m)^b), b = 0.6 (REFERENCES.md, from memory);
+    # the aerosol at 940 nm follows the Angstrom law between 870 and 1020 nm. Schmid
+    # and Wehrli (1995) repeat the 0.94 um V0 to 1.0 % with a modified Langley.
+    from daemon import solar
+    config = _water_config()
+    v0_wv, a_ub = 1.05, 0.35
+    aer = {n: TRUTH[n][1] - float(solar.rayleigh_optical_depth(WAVELENGTH[n], 650.0))
+           for n in ("870", "1020")}
+    alpha = -math.log(aer["1020"] / aer["870"]) / math.log(1020 / 870)
+    tau_a940 = aer["870"] * (940 / 870) ** (-alpha)
+    tau_r940 = float(solar.rayleigh_optical_depth(940, 650.0))
+    rng = np.random.default_rng(12)
+    store = Store.open(tmp_path / "h.db")
+    try:
+        for i, m in enumerate(AIRMASS):
+            rec = synthetic_record(i, m, T_AM, "am", rng, burst_cv=1e-5)
+            wv = v0_wv * ES_FACTOR * math.exp(-(tau_r940 + tau_a940) * m - a_ub * m ** 0.6)
+            sun = tuple(row + (wv + DARK_V,) for row in rec.sun)
+            dark = tuple(row + (DARK_V,) for row in rec.dark)
+            store.record_measurement(replace(rec, channels=rec.channels + ("940",), sun=sun,
+                                             dark=dark, saturated=rec.saturated + (False,)))
+        rows = fit_stored_session(store, config, DAY, "am", T_AM)
+        strict = replace(config, fit=replace(config.fit, min_airmass_span=5.0))
+        refused = fit_stored_session(store, strict, DAY, "am", T_AM)
+    finally:
+        store.close()
+    water = rows[-1]
+    assert water["channel"] == "940" and water["accepted"], water["reasons"]
+    assert water["v0_1au"] == pytest.approx(v0_wv, rel=0.002)
+    assert water["tau"] is None  # the slope against m^b is not an optical depth
+    assert refused[-1]["accepted"] is False
+    assert refused[-1]["reasons"][0].startswith("not fitted: water-vapour channel")

@@ -1,0 +1,333 @@
+"""Calibration campaigns: the accepted sessions of a date range combined per channel.
+
+A single half-day's V0 carries the sky of that half-day; a calibration is the robust
+mean of many accepted sessions, with their repeatability (the percent rms spread,
+0.25 % at a good high-mountain station: Schmid, B. and Wehrli, C. 1995, Applied
+Optics 34(21):4500-4512), the sessions that disagree flagged, and the drift of V0
+over the campaign. :func:`combine_sessions` is the pure part; :func:`calibrate`
+reads the session results, stores the calibration record and computes the aerosol
+optical depth of the campaign's measurements (:mod:`daemon.aod`).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import numpy as np
+
+from daemon.config import Config
+from daemon.lamp import lamp_check
+from daemon.langley import fit_line
+from daemon.store import Store
+from daemon.storeread import check_plan_date, results_between
+
+#: Normal-consistent scale of the median absolute deviation (common practice, no source).
+MAD_TO_SD = 1.4826
+DAYS_PER_YEAR = 365.25
+# At most this share of a campaign's sessions may be flagged: beyond it the spread
+# is the campaign's, not a few bad days'.
+MAX_FLAGGED_FRACTION = 0.5
+
+
+class CalibrationError(Exception):
+    """No calibration can be made; the message says why and what to do."""
+
+
+@dataclass(frozen=True)
+class SessionV0:
+    """One accepted session's V0 at 1 AU [V] and its relative standard uncertainty."""
+
+    date: str
+    session: str
+    v0_1au: float
+    v0_rel_unc: float | None = None
+
+
+@dataclass
+class ChannelCalibration:
+    """One channel's combined campaign result.
+
+    ``v0_1au`` [V] is the mean of the sessions kept, ``v0_1au_unc`` [V] its standard
+    error, ``repeatability_pct`` the rms spread of the kept sessions about it
+    [percent], ``drift_pct_per_year`` the slope of V0 against time relative to the
+    mean [percent per year] (None with fewer than three kept sessions on two or more
+    dates). ``sessions`` lists every session with its deviation and whether it was
+    flagged; ``usable`` is False when fewer than the required sessions are kept, and
+    ``reasons`` says why.
+    """
+
+    channel: str
+    wavelength_nm: float
+    v0_1au: float | None
+    v0_1au_unc: float | None
+    repeatability_pct: float | None
+    n_sessions: int
+    n_flagged: int
+    drift_pct_per_year: float | None
+    drift_unc_pct_per_year: float | None
+    usable: bool
+    sessions: list[dict[str, Any]] = field(default_factory=list)
+    reasons: list[str] = field(default_factory=list)
+    e0_1au_w_m2_nm: float | None = None
+    astm_ratio: float | None = None
+
+
+def _years(date: str, session: str) -> float:
+    d = _dt.date.fromisoformat(date)
+    # Mid-morning or mid-afternoon: only the order within a day matters.
+    return (d.toordinal() + (0.375 if session == "am" else 0.625)) / DAYS_PER_YEAR
+
+
+def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[SessionV0],
+                     clip_sigma: float = 3.0, min_sessions: int = 3) -> ChannelCalibration:
+    """Robust mean of one channel's session V0 values, with flags and drift.
+
+    Parameters
+    ----------
+    channel : str
+        Channel name.
+    wavelength_nm : float
+        Its wavelength [nm].
+    values : sequence of SessionV0
+        The accepted sessions of the campaign.
+    clip_sigma : float
+        A session further than this many standard deviations from the mean of the
+        others is flagged and left out.
+    min_sessions : int
+        Kept sessions the channel needs to be usable.
+
+    Returns
+    -------
+    ChannelCalibration
+
+    Notes
+    -----
+    Start from the median and the normal-consistent median absolute deviation, then
+    iterate: flag the sessions beyond ``clip_sigma`` spreads of the mean of the kept
+    ones, recompute the mean and the sample standard deviation, until nothing
+    changes (sigma clipping; common practice, no source). The spread is never taken
+    below the median stated uncertainty of the sessions, so a campaign that happens
+    to agree too well does not flag an honest session. No more than half of the
+    sessions are ever flagged.
+    """
+    vals = [s for s in values if s.v0_1au is not None and math.isfinite(s.v0_1au)
+            and s.v0_1au > 0]
+    n = len(vals)
+    if n == 0:
+        return ChannelCalibration(channel, wavelength_nm, None, None, None, 0, 0, None, None,
+                                  False, [], ["no accepted session in the campaign"])
+    x = np.array([s.v0_1au for s in vals])
+    stated = np.array([s.v0_rel_unc if s.v0_rel_unc is not None and math.isfinite(
+        s.v0_rel_unc) else math.nan for s in vals])
+    floor = float(np.nanmedian(stated)) * float(np.median(x)) if np.isfinite(stated).any() \
+        else 0.0
+    center = float(np.median(x))
+    spread = max(MAD_TO_SD * float(np.median(np.abs(x - center))), floor)
+    keep = np.ones(n, dtype=bool)
+    max_flag = int(math.floor(MAX_FLAGGED_FRACTION * n))
+    for _ in range(20):
+        dev = np.abs(x - center)
+        new = dev <= clip_sigma * spread if spread > 0 else np.ones(n, dtype=bool)
+        if int((~new).sum()) > max_flag:
+            order = np.argsort(-dev, kind="stable")
+            new = np.ones(n, dtype=bool)
+            new[order[:max_flag]] = False
+        if np.array_equal(new, keep):
+            break
+        keep = new
+        center = float(x[keep].mean())
+        sd = float(x[keep].std(ddof=1)) if keep.sum() >= 2 else 0.0
+        spread = max(sd, floor)
+    kept = x[keep]
+    mean = float(kept.mean())
+    n_kept = int(keep.sum())
+    sd = float(kept.std(ddof=1)) if n_kept >= 2 else math.nan
+    if n_kept >= 2:
+        unc = sd / math.sqrt(n_kept)
+    else:
+        unc = float(stated[keep][0]) * mean if math.isfinite(stated[keep][0]) else math.nan
+    sessions = []
+    for s, k in zip(vals, keep, strict=True):
+        dev_pct = 100.0 * (s.v0_1au / mean - 1.0)
+        entry = {"date": s.date, "session": s.session, "v0_1au": s.v0_1au,
+                 "v0_rel_unc": s.v0_rel_unc, "deviation_pct": dev_pct, "flagged": not k}
+        if not k:
+            entry["why"] = (f"V0 at 1 AU {s.v0_1au:.5f} V is {dev_pct:+.2f} % from the "
+                            f"campaign mean, beyond {clip_sigma:g} times the spread of the "
+                            f"others ({100 * spread / mean:.2f} %)")
+        sessions.append(entry)
+    drift = drift_unc = None
+    t = np.array([_years(s.date, s.session) for s, k in zip(vals, keep, strict=True) if k])
+    if n_kept >= 3 and len({s.date for s, k in zip(vals, keep, strict=True) if k}) >= 2:
+        line = fit_line(t - t.mean(), kept)
+        drift = 100.0 * line.slope / mean
+        drift_unc = 100.0 * line.se_slope / mean
+    reasons = []
+    if n_kept < min_sessions:
+        reasons.append(f"only {n_kept} accepted session{'s' if n_kept != 1 else ''} kept, "
+                       f"fewer than the required {min_sessions} (fit.campaign_min_sessions)")
+    return ChannelCalibration(
+        channel=channel, wavelength_nm=wavelength_nm, v0_1au=mean,
+        v0_1au_unc=unc if math.isfinite(unc) else None,
+        repeatability_pct=100.0 * sd / mean if math.isfinite(sd) else None,
+        n_sessions=n_kept, n_flagged=n - n_kept, drift_pct_per_year=drift,
+        drift_unc_pct_per_year=drift_unc, usable=not reasons, sessions=sessions,
+        reasons=reasons)
+
+
+def campaign(results: Sequence[Mapping[str, Any]], config: Config,
+             notes: list[str] | None = None) -> list[ChannelCalibration]:
+    """Combine session result rows (the JSON contract) per configured channel.
+
+    Rows that the session fit did not accept are left out; how many is appended to
+    ``notes`` when a list is given.
+    """
+    fit = config.fit
+    out = []
+    for ch in config.channels:
+        rows = [r for r in results if r["channel"] == ch.name]
+        accepted = [SessionV0(r["date"], r["session"], r["v0_1au"], r["v0_rel_unc"])
+                    for r in rows if r["accepted"] and r["v0_1au"] is not None]
+        cal = combine_sessions(ch.name, ch.wavelength_nm, accepted, fit.campaign_clip_sigma,
+                               fit.campaign_min_sessions)
+        n_rejected = len(rows) - len(accepted)
+        if n_rejected and notes is not None:
+            notes.append(f"{ch.name}: {n_rejected} session{'s' if n_rejected != 1 else ''} "
+                         "not accepted by the session fit left out")
+        check = lamp_check(cal.v0_1au, ch) if cal.v0_1au is not None else None
+        if check is not None:
+            cal.e0_1au_w_m2_nm, cal.astm_ratio = check[0], check[2]
+        out.append(cal)
+    return out
+
+
+def calibrate(store: Store, config: Config, first: str | _dt.date, last: str | _dt.date,
+              created_utc: _dt.datetime) -> dict[str, Any]:
+    """Combine a campaign's accepted sessions, store the calibration, compute its AOD.
+
+    Parameters
+    ----------
+    store : Store
+        The service's store, opened with the writer.
+    config : Config
+        Channels and campaign settings (``fit.campaign_clip_sigma``,
+        ``fit.campaign_min_sessions``).
+    first, last : str or date
+        Campaign plan dates, inclusive.
+    created_utc : datetime
+        Aware UTC time of the record.
+
+    Returns
+    -------
+    dict
+        ``id``, ``from``, ``to``, ``created_utc``, ``sessions_found``,
+        ``aod_values`` (AOD values stored) and ``channels`` (one dict per channel,
+        the fields of :class:`ChannelCalibration`).
+
+    Raises
+    ------
+    CalibrationError
+        No channel has enough accepted sessions; nothing is stored.
+    """
+    d1, d2 = check_plan_date(first), check_plan_date(last)
+    if d2 < d1:
+        raise CalibrationError(f"the end date {d2} is before the start date {d1}; swap them")
+    results = results_between(store.conn, d1, d2)
+    sessions_found = len({(r["date"], r["session"]) for r in results})
+    notes: list[str] = []
+    channels = campaign(results, config, notes)
+    if not any(c.usable for c in channels):
+        why = "; ".join(f"{c.channel}: {c.reasons[0]}" for c in channels if c.reasons)
+        raise CalibrationError(
+            f"no channel has enough accepted sessions from {d1} to {d2} "
+            f"({sessions_found} session{'s' if sessions_found != 1 else ''} found; {why}); "
+            "widen the dates or lower fit.campaign_min_sessions")
+    settings = {"campaign_clip_sigma": config.fit.campaign_clip_sigma,
+                "campaign_min_sessions": config.fit.campaign_min_sessions,
+                "config": config.source}
+    rows = [asdict(c) for c in channels]
+    cid = store.save_calibration(created_utc, d1, d2, config.site.name, settings, notes, rows)
+    from daemon.aod import update_aod
+    from daemon.storeread import stored_calibration
+
+    record = stored_calibration(store.conn, cid)
+    n_aod = update_aod(store, config, d1, d2, calibration=record)
+    return {"id": cid, "from": d1, "to": d2, "created_utc": record["created_utc"],
+            "site_name": config.site.name, "sessions_found": sessions_found,
+            "aod_values": n_aod, "notes": notes, "channels": rows}
+
+
+# --------------------------------------------------------------------------- command
+
+def calibration_table(record: Mapping[str, Any]) -> str:
+    """The per-channel calibration as an aligned table for an 80-column terminal."""
+    from daemon.tables import fmt, table
+
+    body = []
+    for c in record["channels"]:
+        v0, unc = c["v0_1au"], c["v0_1au_unc"]
+        body.append([c["channel"], fmt(v0, ".5f"),
+                     fmt(100 * unc / v0 if v0 and unc is not None else None, ".3f"),
+                     fmt(c["repeatability_pct"], ".3f"), c["n_sessions"], c["n_flagged"],
+                     fmt(c["drift_pct_per_year"], "+.2f"), fmt(c["astm_ratio"], ".4f"),
+                     fmt(bool(c["usable"]))])
+    text = table(["channel", "V0 1AU [V]", "unc [%]", "rms [%]", "n", "flagged",
+                  "drift [%/yr]", "lamp", "ok"], body,
+                 [False, True, True, True, True, True, True, True, False])
+    lines = [text]
+    for c in record["channels"]:
+        for s in c["sessions"]:
+            if s["flagged"]:
+                lines.append(f"  {c['channel']} {s['date']} {s['session']} flagged: {s['why']}")
+        for r in c["reasons"]:
+            lines.append(f"  {c['channel']} not usable: {r}")
+    lines += [f"  note: {n}" for n in record.get("notes", [])]
+    return "\n".join(lines)
+
+
+def calibrate_command(args: Any) -> int:
+    """``heliotrope calibrate``: combine, store, compute AOD; print the record."""
+    import os
+
+    from daemon.cli import EX_CONFIG, EX_DATAERR, CommandError
+    from daemon.config import ConfigError, load_config
+    from daemon.store import StoreError
+    from daemon.tables import dumps
+
+    try:
+        config = load_config(args.config)
+    except ConfigError as exc:
+        raise CommandError(str(exc), EX_CONFIG) from None
+    db = args.db or os.environ.get("HELIOTROPE_DB") or config.store_path
+    if args.to < args.from_:
+        raise CommandError(f"--to {args.to} is before --from {args.from_}; swap them", 64)
+    if not os.path.exists(db):
+        raise CommandError(f"{db}: no store here; pass --db with the path of the heliotrope "
+                           "store (store.path in the service's configuration)", 66)
+    try:
+        store = Store.open(db)
+    except StoreError as exc:
+        raise CommandError(str(exc), 74) from None
+    try:
+        record = calibrate(store, config, args.from_, args.to,
+                           _dt.datetime.now(_dt.UTC))
+    except CalibrationError as exc:
+        raise CommandError(str(exc), 1) from None
+    except ValueError as exc:
+        raise CommandError(str(exc), EX_DATAERR) from None
+    finally:
+        store.close()
+    if args.json:
+        print(dumps(record))
+        return 0
+    print(f"calibration {record['id']}: {record['from']} to {record['to']}, "
+          f"{record['sessions_found']} sessions, V0 at 1 AU")
+    print(calibration_table(record))
+    print(f"aerosol optical depth computed for {record['aod_values']} values "
+          "(heliotrope export --what aod)")
+    print(f"stored in {db}")
+    return 0
