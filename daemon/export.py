@@ -38,6 +38,8 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import IO, Any
 
+from daemon.storeread import sample_stats_cte
+
 # (column, unit); unit None for text, flags and counts, "1" for dimensionless numbers.
 MEASUREMENT_COLUMNS: tuple[tuple[str, str | None], ...] = (
     ("measurement_id", None), ("time_utc", None), ("plan_date", None), ("session", None),
@@ -77,22 +79,8 @@ WHATS = tuple(COLUMNS)
 FORMATS = ("csv", "json")
 EX_CANTCREAT = 73  # sysexits.h: cannot create the output file
 
-_MEASUREMENTS_SQL = """
-WITH sel AS (
-    SELECT id FROM measurements WHERE plan_date BETWEEN ?1 AND ?2
-), mean AS (
-    SELECT s.measurement_id, s.channel, s.kind, AVG(s.value_v) AS mean_v,
-           COUNT(s.value_v) AS n
-    FROM samples s JOIN sel ON sel.id = s.measurement_id
-    GROUP BY s.measurement_id, s.channel, s.kind
-), spread AS (
-    SELECT s.measurement_id, s.channel,
-           SUM((s.value_v - mean.mean_v) * (s.value_v - mean.mean_v)) AS ss
-    FROM samples s JOIN mean ON mean.measurement_id = s.measurement_id
-         AND mean.channel = s.channel AND mean.kind = s.kind
-    WHERE s.kind = 'sun'
-    GROUP BY s.measurement_id, s.channel
-)
+_MEASUREMENTS_SQL = sample_stats_cte(
+    "SELECT id FROM measurements WHERE plan_date BETWEEN ?1 AND ?2") + """
 SELECT m.id, m.time_utc, m.plan_date, m.session, m.status, m.failure, m.target_airmass,
        m.apparent_zenith_deg, m.azimuth_deg, m.airmass, m.ozone_airmass,
        m.earth_sun_factor, m.pressure_hpa, m.pointing_error_deg, m.locked, m.duration_s,

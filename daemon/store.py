@@ -30,7 +30,7 @@ from typing import Any
 from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
-from daemon.storeread import StoreError, check_plan_date
+from daemon.storeread import SESSION_STATS_SQL, StoreError, check_plan_date
 from drivers.interfaces import Housekeeping
 
 __all__ = ["ChannelStats", "MeasurementRecord", "SessionPoint", "Store", "StoreError",
@@ -546,7 +546,7 @@ class Store:
         with self._lock:
             conn = self.db.conn
             meas = conn.execute(_POINTS_SQL, (date, session)).fetchall()
-            stats = conn.execute(_STATS_SQL, (date, session)).fetchall()
+            stats = conn.execute(SESSION_STATS_SQL, (date, session)).fetchall()
         by_id: dict[int, dict[str, ChannelStats]] = {}
         for mid, channel, saturated, sun_mean, n_sun, sun_ss, dark_mean, n_dark in stats:
             n_sun = int(n_sun or 0)
@@ -585,32 +585,7 @@ WHERE m.plan_date = ? AND m.session = ? AND m.status = 'ok'
 ORDER BY m.time_utc, m.id
 """
 
-_STATS_SQL = """
-WITH sel AS (
-    SELECT id FROM measurements WHERE plan_date = ?1 AND session = ?2 AND status = 'ok'
-), mean AS (
-    SELECT s.measurement_id, s.channel, s.kind, AVG(s.value_v) AS mean_v,
-           COUNT(s.value_v) AS n
-    FROM samples s JOIN sel ON sel.id = s.measurement_id
-    GROUP BY s.measurement_id, s.channel, s.kind
-), spread AS (
-    SELECT s.measurement_id, s.channel,
-           SUM((s.value_v - mean.mean_v) * (s.value_v - mean.mean_v)) AS ss
-    FROM samples s JOIN mean ON mean.measurement_id = s.measurement_id
-         AND mean.channel = s.channel AND mean.kind = s.kind
-    WHERE s.kind = 'sun'
-    GROUP BY s.measurement_id, s.channel
-)
-SELECT mc.measurement_id, mc.channel, mc.saturated, sun.mean_v, sun.n, spread.ss,
-       dark.mean_v, dark.n
-FROM measurement_channels mc JOIN sel ON sel.id = mc.measurement_id
-LEFT JOIN mean sun ON sun.measurement_id = mc.measurement_id AND sun.channel = mc.channel
-     AND sun.kind = 'sun'
-LEFT JOIN mean dark ON dark.measurement_id = mc.measurement_id AND dark.channel = mc.channel
-     AND dark.kind = 'dark'
-LEFT JOIN spread ON spread.measurement_id = mc.measurement_id AND spread.channel = mc.channel
-ORDER BY mc.measurement_id, mc.channel_index
-"""
+
 
 
 def _sample_rows(mid: int, rec: MeasurementRecord) -> Iterable[dict[str, Any]]:

@@ -294,8 +294,8 @@ def store_files_size(path: str | Path) -> int:
     return total
 
 
-# The same aggregates as daemon.store.Store.session_points (two-pass sample SD), for the
-# read-only plot and report; tests/test_plot.py checks that both agree.
+# The read-only plot and report use the same aggregates as daemon.store.Store.
+# session_points (SESSION_STATS_SQL below); tests/test_plot.py checks that both agree.
 _RO_POINTS_SQL = """
 SELECT m.id, m.time_utc, m.airmass, m.earth_sun_factor, m.pressure_hpa,
        m.pointing_error_deg, m.locked, h.measurement_id IS NOT NULL, h.detector_temp_c
@@ -304,10 +304,13 @@ WHERE m.plan_date = ? AND m.session = ? AND m.status = 'ok'
 ORDER BY m.time_utc, m.id
 """
 
-_RO_STATS_SQL = """
-WITH sel AS (
-    SELECT id FROM measurements WHERE plan_date = ?1 AND session = ?2 AND status = 'ok'
-), mean AS (
+def sample_stats_cte(selection: str) -> str:
+    """The WITH clause that aggregates raw samples of the measurements ``selection``
+    picks (a SELECT of ids named ``id``): ``mean`` per measurement, channel and kind
+    (AVG, COUNT) and ``spread``, the sum of squared deviations of the sun samples from
+    their mean. Two passes, so a 5 V signal keeps its 1e-7 V noise."""
+    return f"""
+WITH sel AS ({selection}), mean AS (
     SELECT s.measurement_id, s.channel, s.kind, AVG(s.value_v) AS mean_v,
            COUNT(s.value_v) AS n
     FROM samples s JOIN sel ON sel.id = s.measurement_id
@@ -319,7 +322,14 @@ WITH sel AS (
          AND mean.channel = s.channel AND mean.kind = s.kind
     WHERE s.kind = 'sun'
     GROUP BY s.measurement_id, s.channel
-)
+)"""
+
+
+# Per channel of each 'ok' measurement of one session: saturation, sun mean, count and
+# spread, dark mean and count. Used by the writer's session fit and the read-only plot.
+SESSION_STATS_SQL = sample_stats_cte(
+    "SELECT id FROM measurements WHERE plan_date = ?1 AND session = ?2 AND status = 'ok'"
+) + """
 SELECT mc.measurement_id, mc.channel, mc.saturated, sun.mean_v, sun.n, spread.ss,
        dark.mean_v, dark.n
 FROM measurement_channels mc JOIN sel ON sel.id = mc.measurement_id
@@ -346,7 +356,7 @@ def session_points_readonly(conn: sqlite3.Connection, plan_date: str | _dt.date,
     date = check_plan_date(plan_date)
     stats: dict[int, dict[str, dict[str, Any]]] = {}
     for mid, channel, saturated, sun_mean, n_sun, sun_ss, dark_mean, n_dark in conn.execute(
-            _RO_STATS_SQL, (date, session)).fetchall():
+            SESSION_STATS_SQL, (date, session)).fetchall():
         n_sun = int(n_sun or 0)
         sd = (sun_ss / (n_sun - 1)) ** 0.5 if n_sun >= 2 and sun_ss is not None else None
         stats.setdefault(mid, {})[channel] = {
