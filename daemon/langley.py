@@ -94,6 +94,11 @@ class FitResult:
     v0_drift_unc : float
         The part of ``v0_rel_unc`` that allows for an unseen linear drift of the
         optical depth during the session (see :func:`drift_sensitivity`) [fraction].
+    in_window : tuple of bool
+        Aligned with the input: True where the point was a candidate for the fit
+        (signal, air mass and correction usable, air mass inside the window). A
+        candidate not in ``used`` was rejected as an outlier when the fit has a line
+        (``n_used > 0``); otherwise there were too few candidates for a line.
     """
 
     v0: float
@@ -115,6 +120,43 @@ class FitResult:
     residual_trend: float = math.nan
     residual_trend_t: float = math.nan
     v0_drift_unc: float = 0.0
+    in_window: tuple[bool, ...] = ()
+
+
+def fit_coordinates(airmass: ArrayLike, signal: ArrayLike,
+                    ln_correction: ArrayLike | None = None,
+                    regressor_exponent: float = 1.0) -> tuple[np.ndarray, np.ndarray]:
+    """The (x, y) of every point as :func:`fit_session` fits them.
+
+    Parameters
+    ----------
+    airmass : array_like
+        Relative optical air mass of each point [dimensionless].
+    signal : array_like
+        Dark-corrected signal of each point [V].
+    ln_correction : array_like, optional
+        Added to ln V, one value per point [ln V].
+    regressor_exponent : float, default 1
+        ``x = m ** regressor_exponent``.
+
+    Returns
+    -------
+    x, y : ndarray
+        ``x`` the regressor (air mass, or ``m^b``), ``y = ln V + ln_correction``;
+        NaN where a value is not finite (a signal that is zero or negative, a
+        missing air mass or correction).
+    """
+    m = np.asarray(airmass, dtype=float).ravel()
+    v = np.asarray(signal, dtype=float).ravel()
+    corr = (np.zeros_like(m) if ln_correction is None
+            else np.asarray(ln_correction, dtype=float).ravel())
+    b = float(regressor_exponent)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x = m if b == 1.0 else m ** b
+        y = np.log(v) + corr
+    x = np.where(np.isfinite(x), x, math.nan)
+    y = np.where(np.isfinite(y), y, math.nan)
+    return x, y
 
 
 def fit_line(x: ArrayLike, y: ArrayLike) -> LineFit:
@@ -270,12 +312,14 @@ def residual_correlation(x: ArrayLike, residuals: ArrayLike) -> Correlation:
     return Correlation(r1=r1, phi=phi, inflation=inflation, n_eff=n / inflation**2)
 
 
-def _no_fit(n_total: int, used: np.ndarray, reasons: list[str], notes: list[str]) -> FitResult:
+def _no_fit(n_total: int, used: np.ndarray, reasons: list[str], notes: list[str],
+            in_window: np.ndarray) -> FitResult:
     nan = math.nan
     return FitResult(v0=nan, ln_v0=nan, tau=nan, v0_rel_unc=nan, tau_unc=nan, n_used=0,
                      n_total=n_total, airmass_min=nan, airmass_max=nan, residual_sd=nan,
                      lag1_autocorr=nan, used=tuple(bool(u) for u in used), accepted=False,
-                     reasons=tuple(reasons + notes), notes=tuple(notes))
+                     reasons=tuple(reasons + notes), notes=tuple(notes),
+                     in_window=tuple(bool(w) for w in in_window))
 
 
 def _plural(n: int, word: str) -> str:
@@ -491,20 +535,23 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings, *,
         notes.append(f"{_plural(n_outside, 'point')} outside the air-mass window "
                      f"{lo:g} to {hi:g}")
 
-    candidates = np.flatnonzero(in_window & ~bad_sig & ~bad_corr)
+    candidate = in_window & ~bad_sig & ~bad_corr
+    candidates = np.flatnonzero(candidate)
     n_window = candidates.size
     if n_window < MIN_FIT_POINTS:
         what = "no usable points" if n_window == 0 else f"only {_plural(n_window, 'usable point')}"
         return _no_fit(n_total, used, [
             f"{what} of {n_total} in the air-mass window {lo:g} to {hi:g}; "
-            f"a Langley fit needs at least {MIN_FIT_POINTS}"], notes)
+            f"a Langley fit needs at least {MIN_FIT_POINTS}"], notes, candidate)
     am = m[candidates]
-    x = am if b == 1.0 else am ** b
-    y = np.log(v[candidates]) + corr_ln[candidates]
+    # One definition of the plotted and the fitted coordinates (fit_coordinates).
+    x_all, y_all = fit_coordinates(m, v, corr_ln, b)
+    x = x_all[candidates]
+    y = y_all[candidates]
     if np.ptp(x) == 0.0:
         return _no_fit(n_total, used, [
             f"all {n_window} usable points are at air mass {am[0]:g}; "
-            "a Langley fit needs a spread in air mass"], notes)
+            "a Langley fit needs a spread in air mass"], notes, candidate)
 
     keep = np.ones(n_window, dtype=bool)
     min_keep = max(MIN_FIT_POINTS, math.ceil(settings.min_fraction_kept * n_window - 1e-9))
@@ -598,7 +645,7 @@ def fit_session(airmass: ArrayLike, signal: ArrayLike, settings: FitSettings, *,
         used=tuple(bool(u) for u in used), accepted=accepted,
         reasons=() if accepted else tuple(reasons + notes), notes=tuple(notes),
         max_abs_residual=max_abs, residual_trend=bend, residual_trend_t=bend_t,
-        v0_drift_unc=drift_unc)
+        v0_drift_unc=drift_unc, in_window=tuple(bool(c) for c in candidate))
 
 
 def v0_at_1au(v0_day: float, earth_sun_factor: float) -> float:

@@ -1,24 +1,29 @@
 """``heliotrope plot``: the Langley plot of one channel and session, in the terminal.
 
-The session fit (:mod:`daemon.sessionfit`) stores its result per channel, not which
-points it used, and it cannot run here: its extinction corrections import pvlib,
-which the read commands never do. So the plot draws
+The session fit (:mod:`daemon.sessionfit`) stores, beside its result, every point of
+the session as it fitted it (the ``fit_points`` table, read with
+:func:`daemon.storeread.fit_points`): the regressor x (air mass, or ``m^b`` for a
+water-vapour channel), y (ln V after the dark, temperature, ozone and pressure
+corrections, and for a water-vapour channel the known extinctions) and the point's
+role (used, rejected as an outlier, outside the window, screened). The plot draws
+exactly those points and the stored line through them: intercept ln V0 (V0 on the
+day, not at 1 AU) and slope minus tau. A water-vapour channel stores no tau; its line
+is the least-squares line of its own used points, which is the fit's line (the fit
+is ordinary least squares on those very points).
 
-- the fitted line of the stored result (ln V0 and tau), and
-- the session's points read back from the store (read-only), as ln of the dark- and
-  temperature-corrected signal, screened as the session fit screens them (no sun
-  lock, saturated, cloudy) and marked used or rejected by fitting them again with
-  :func:`daemon.langley.fit_session` and the service's fit settings, without the
-  small ozone and pressure corrections.
-
-When the recomputed number of points used differs from the stored one, a note says
-so. Without a stored result the recomputed line is drawn.
+A store written before the per-point records existed has no ``fit_points`` for its
+sessions. The session fit cannot run here (its corrections import pvlib, which the
+read commands never do), so for those the points are screened again and marked
+used or rejected by fitting them again with :func:`daemon.langley.fit_session` and
+the service's fit settings, without the small ozone and pressure corrections; a note
+says so, and another when the recomputed number of points used differs from the
+stored one. Without a stored result the recomputed line is drawn.
 
 The terminal plot uses Unicode (Braille dots for the line, one glyph per point) and
 fits 80 columns: ``●`` a point in the fit, ``×`` a point the fit rejected as an
 outlier, ``○`` a point screened out before the fit or outside the air-mass window.
 ``--png FILE`` draws the same with matplotlib (the ``plot`` extra). numpy is imported
-for the fit; matplotlib only for ``--png``.
+for the fallback re-fit only; matplotlib only for ``--png``.
 """
 
 from __future__ import annotations
@@ -34,6 +39,19 @@ from typing import Any
 DEFAULT_CONFIG = "/etc/heliotrope/heliotrope.yaml"
 PLOT_EXTRA_HINT = "install the plot extra: pip install 'heliotrope[plot]'"
 USED, REJECTED, EXCLUDED = "used", "rejected", "excluded"
+AIRMASS_LABEL = "air mass"
+LN_V_LABEL = "ln V"
+MARKS_STORED = "stored fit points"
+MARKS_RECOMPUTED = "recomputed here"
+# Stored roles (daemon.storeread.FIT_POINT_ROLES) as the plot marks them, and why.
+_STORED_ROLES = {"used": (USED, None),
+                 "rejected": (REJECTED, "rejected by the fit as an outlier"),
+                 "outside": (EXCLUDED, "outside the fit's air-mass window, or no finite value"),
+                 "unfitted": (EXCLUDED, "no line was fitted to this channel's session")}
+_SCREENING_WHY = {"missing": "no samples of this channel",
+                  "unlocked": "sun lock not confirmed or pointing error too large",
+                  "saturated": "saturated",
+                  "cloudy": "cloudy: burst too variable for a clear sky"}
 GLYPHS = {USED: "●", REJECTED: "×", EXCLUDED: "○"}
 _PRIORITY = {EXCLUDED: 1, USED: 2, REJECTED: 3}  # which glyph wins a shared cell
 # Braille dot bits by (column, row) inside one character cell (Unicode U+2800 block).
@@ -50,12 +68,25 @@ class PlotPoint:
     signal_v: float | None  # dark-corrected (and temperature-corrected) signal [V]
     role: str  # USED, REJECTED or EXCLUDED
     why: str | None = None  # why a point is excluded
+    # With ``fitted`` the point is drawn at the stored (x, y) of the session fit;
+    # otherwise at (air mass, ln signal_v).
+    fitted: bool = False
+    x: float | None = None
+    y: float | None = None
 
     @property
     def ln_v(self) -> float | None:
+        """The plotted ordinate [ln V]; None when there is none."""
+        if self.fitted:
+            return self.y
         if self.signal_v is None or not (self.signal_v > 0) or not math.isfinite(self.signal_v):
             return None
         return math.log(self.signal_v)
+
+    @property
+    def pos_x(self) -> float | None:
+        """The plotted abscissa: the fit's regressor, else the air mass."""
+        return self.x if self.fitted else self.airmass
 
 
 @dataclass
@@ -78,6 +109,24 @@ class SessionView:
     site_name: str | None = None
     line_source: str | None = None  # where the drawn line comes from
     notes: list[str] = field(default_factory=list)
+    marks_source: str = MARKS_RECOMPUTED  # where the points' roles and positions come from
+    x_label: str = AIRMASS_LABEL  # the regressor: air mass, or m^b (water vapour)
+    y_label: str = LN_V_LABEL
+
+    @property
+    def tau_is_optical_depth(self) -> bool:
+        """False for a water-vapour channel, whose slope is against ``m^b``."""
+        return self.x_label == AIRMASS_LABEL
+
+    def line_text(self, short: bool = False) -> str:
+        """The drawn line in words: V0 [V] and tau (or the slope against m^b)."""
+        unc = (f" +/- {100 * self.v0_rel_unc:.3f} %"
+               if self.v0_rel_unc is not None and not short else "")
+        stored_1au = self.stored.get("v0_1au") if self.stored and not short else None
+        at_1au = f" ({stored_1au:.5f} V at 1 AU)" if stored_1au is not None else ""
+        slope = (f"tau {self.tau:.4f}" if self.tau_is_optical_depth
+                 else f"slope {-self.tau:.4f} against {self.x_label}")
+        return f"V0 {self.v0:.5f} V{unc}{at_1au}, {slope}"
 
     def to_dict(self) -> dict[str, Any]:
         return {"date": self.plan_date, "session": self.session, "channel": self.channel,
@@ -86,10 +135,13 @@ class SessionView:
                         "v0_rel_unc": self.v0_rel_unc, "n_used": self.n_used,
                         "n_total": len(self.points), "accepted": self.accepted,
                         "reasons": self.reasons},
-                "line_source": self.line_source, "stored": self.stored, "notes": self.notes,
+                "line_source": self.line_source, "marks_source": self.marks_source,
+                "x_label": self.x_label, "y_label": self.y_label,
+                "stored": self.stored, "notes": self.notes,
                 "points": [{"measurement_id": p.measurement_id, "time_utc": p.time_utc,
-                            "airmass": p.airmass, "signal_v": p.signal_v, "ln_v": p.ln_v,
-                            "role": p.role, "why": p.why} for p in self.points]}
+                            "airmass": p.airmass, "signal_v": p.signal_v, "x": p.pos_x,
+                            "ln_v": p.ln_v, "role": p.role, "why": p.why}
+                           for p in self.points]}
 
 
 # --------------------------------------------------------------------------- recompute
@@ -139,7 +191,11 @@ def _screen(points: list[dict], channel, config) -> tuple[list[dict], list[PlotP
 
 
 def langley_view(conn, config, plan_date: str, session: str, channel_name: str) -> SessionView:
-    """Recompute one channel's session fit from the stored points, with per-point roles.
+    """One channel's session: its points with their roles in the fit, and the fitted line.
+
+    From the stored fit points when the store has them (exact marks, y as fitted);
+    else, for sessions fitted before they were stored, by fitting the stored
+    measurements again (see the module docstring).
 
     Parameters
     ----------
@@ -154,13 +210,111 @@ def langley_view(conn, config, plan_date: str, session: str, channel_name: str) 
     channel_name : str
         A channel named in the configuration.
     """
-    import numpy as np
-
-    from daemon.langley import WINDOW_EDGE_TOLERANCE, fit_session
-    from daemon.storeread import results_between, session_points_readonly
+    from daemon.storeread import fit_points, results_between, session_points_readonly
 
     channel = config.channel(channel_name)
     raw = session_points_readonly(conn, plan_date, session)
+    stored = next((r for r in results_between(conn, plan_date, plan_date)
+                   if r["session"] == session and r["channel"] == channel_name), None)
+    records = fit_points(conn, plan_date, session, channel_name)
+    if records:
+        return _stored_view(raw, records, stored, channel, config, plan_date, session)
+    return _recomputed_view(raw, stored, channel, config, plan_date, session)
+
+
+def _least_squares(xy: list[tuple[float, float]]) -> tuple[float, float] | None:
+    """Intercept and slope of the ordinary least-squares line, None without a spread in x."""
+    if len(xy) < 2:
+        return None
+    n = len(xy)
+    x_mean = math.fsum(x for x, _ in xy) / n
+    y_mean = math.fsum(y for _, y in xy) / n
+    sxx = math.fsum((x - x_mean) ** 2 for x, _ in xy)
+    if sxx == 0.0:
+        return None
+    slope = math.fsum((x - x_mean) * (y - y_mean) for x, y in xy) / sxx
+    return y_mean - slope * x_mean, slope
+
+
+def _regressor_label(points: list[PlotPoint]) -> str:
+    """'air mass', or 'air mass^b' when the stored x is a power of the air mass."""
+    exponents = []
+    for p in points:
+        if p.x is None or p.airmass is None or not (p.x > 0 and p.airmass > 1.05):
+            continue
+        if abs(p.x - p.airmass) > 1e-9 * p.airmass:
+            exponents.append(math.log(p.x) / math.log(p.airmass))
+    if not exponents:
+        return AIRMASS_LABEL
+    exponents.sort()
+    return f"{AIRMASS_LABEL}^{exponents[len(exponents) // 2]:.3g}"
+
+
+def _stored_view(raw: list[dict], records: list[dict], stored: dict | None, channel, config,
+                 plan_date: str, session: str) -> SessionView:
+    """The view from the stored fit points: exact marks, y as the fit used it."""
+    kept, screened = _screen(raw, channel, config)
+    signal = {k["p"]["measurement_id"]: k["signal"] for k in kept}
+    signal.update({q.measurement_id: q.signal_v for q in screened})
+    by_id = {p["measurement_id"]: p for p in raw}
+    points = []
+    for r in records:
+        mid = r["measurement_id"]
+        if r["role"] == "screened":
+            role, why = EXCLUDED, _SCREENING_WHY.get(r["reason"], f"screened: {r['reason']}")
+        else:
+            role, why = _STORED_ROLES.get(r["role"], (EXCLUDED, r["role"]))
+        p = by_id.get(mid, {})
+        points.append(PlotPoint(mid, p.get("time_utc") or "", p.get("airmass"),
+                                signal.get(mid), role, why, fitted=True, x=r["x"], y=r["y"]))
+    known = {r["measurement_id"] for r in records}
+    late = [p for p in raw if p["measurement_id"] not in known]
+    for p in late:
+        points.append(PlotPoint(p["measurement_id"], p["time_utc"], p["airmass"],
+                                signal.get(p["measurement_id"]), EXCLUDED,
+                                "not in the stored fit", fitted=True))
+    points.sort(key=lambda q: (q.time_utc, q.measurement_id))
+    n_used = sum(1 for q in points if q.role == USED)
+    view = SessionView(
+        plan_date=plan_date, session=session, channel=channel.name,
+        wavelength_nm=channel.wavelength_nm, points=points, ln_v0=None, tau=None, v0=None,
+        v0_rel_unc=None, n_used=n_used, accepted=False, reasons=[], stored=stored,
+        marks_source=MARKS_STORED, x_label=_regressor_label(points))
+    if view.x_label != AIRMASS_LABEL:
+        view.y_label = "ln V + known extinction"
+    if late:
+        view.notes.append(f"{len(late)} measurement(s) of the session are not in the stored "
+                          "fit (recorded after it?): not drawn")
+    if stored is None:
+        view.notes.append("fit points without a stored session result: no line drawn")
+        return view
+    view.v0, view.v0_rel_unc = stored["v0"], stored["v0_rel_unc"]
+    view.accepted, view.reasons = stored["accepted"], list(stored["reasons"])
+    if stored["n_used"] != n_used:
+        view.notes.append(f"the stored result used {stored['n_used']} points but "
+                          f"{n_used} are stored as used: the store is inconsistent")
+    if stored["v0"] is None or not stored["v0"] > 0:
+        return view
+    if stored["tau"] is not None:
+        # V0 is the day's (not 1 AU): the intercept of the fitted ln V.
+        view.ln_v0, view.tau = math.log(stored["v0"]), stored["tau"]
+        view.line_source = "stored session result"
+        return view
+    line = _least_squares([(q.x, q.y) for q in points if q.role == USED
+                           and q.x is not None and q.y is not None])
+    if line is not None:
+        view.ln_v0, view.tau = line[0], -line[1]
+        view.line_source = "least squares of the stored points used"
+    return view
+
+
+def _recomputed_view(raw: list[dict], stored: dict | None, channel, config, plan_date: str,
+                     session: str) -> SessionView:
+    """The view of a session fitted before fit points were stored: marks recomputed."""
+    import numpy as np
+
+    from daemon.langley import WINDOW_EDGE_TOLERANCE, fit_session
+
     kept, screened = _screen(raw, channel, config)
     fit = fit_session(np.array([k["airmass"] for k in kept], dtype=float),
                       np.array([k["signal"] for k in kept], dtype=float), config.fit)
@@ -179,8 +333,6 @@ def langley_view(conn, config, plan_date: str, session: str, channel_name: str) 
             role, why = REJECTED, "rejected by the fit as an outlier"
         points.append(PlotPoint(p["measurement_id"], p["time_utc"], p["airmass"], v, role, why))
     points.sort(key=lambda q: (q.time_utc, q.measurement_id))
-    stored = next((r for r in results_between(conn, plan_date, plan_date)
-                   if r["session"] == session and r["channel"] == channel_name), None)
     view = SessionView(
         plan_date=plan_date, session=session, channel=channel.name,
         wavelength_nm=channel.wavelength_nm, points=points, ln_v0=None, tau=None, v0=None,
@@ -192,6 +344,9 @@ def langley_view(conn, config, plan_date: str, session: str, channel_name: str) 
         if stored["v0"] is not None and stored["v0"] > 0 and stored["tau"] is not None:
             view.ln_v0, view.tau = math.log(stored["v0"]), stored["tau"]
             view.line_source = "stored session result"
+        view.notes.append("this session was fitted before the store kept the fit's points: "
+                          "the marks come from fitting the points again here, without the "
+                          "ozone and pressure corrections")
         if stored["n_used"] != fit.n_used:
             view.notes.append(f"the stored fit used {stored['n_used']} points, this "
                               f"recomputation {fit.n_used}: the marks may be off (the "
@@ -218,8 +373,8 @@ def _nice_range(lo: float, hi: float) -> tuple[float, float]:
 def render_terminal(view: SessionView, width: int = 80, height: int = 16) -> str:
     """The Langley plot as text: at most ``width`` columns, ``height`` plot rows.
 
-    ln V [ln(V/1 V)] against air mass from 0, so the fitted line runs back to its
-    intercept ln V0 at air mass zero.
+    ln V [ln(V/1 V)] against air mass (or the water-vapour fit's ``m^b``) from 0, so
+    the fitted line runs back to its intercept ln V0 at air mass zero.
     """
     label_w = 8
     plot_w = max(20, width - label_w - 2)
@@ -227,22 +382,19 @@ def render_terminal(view: SessionView, width: int = 80, height: int = 16) -> str
     head = [f"Langley plot {view.plan_date} {view.session}, channel {view.channel} "
             f"({view.wavelength_nm:g} nm)"
             + (f", {view.site_name}" if view.site_name else "")]
-    if view.ln_v0 is not None:
-        stored_1au = view.stored.get("v0_1au") if view.stored else None
-        at_1au = f" ({stored_1au:.5f} V at 1 AU)" if stored_1au is not None else ""
-        unc = (f" +/- {100 * view.v0_rel_unc:.3f} %" if view.v0_rel_unc is not None else "")
-        head.append(f"V0 {view.v0:.5f} V{unc}{at_1au}, tau {view.tau:.4f}")
-    n_plotted = sum(1 for p in view.points if p.ln_v is not None and p.airmass is not None)
+    if view.ln_v0 is not None and view.v0 is not None:
+        head.append(view.line_text())
+    plotted = [p for p in view.points if p.ln_v is not None and p.pos_x is not None
+               and math.isfinite(p.pos_x) and math.isfinite(p.ln_v)]
+    n_plotted = len(plotted)
     head.append(f"{view.n_used} of {len(view.points)} points in the fit, "
                 f"{'accepted' if view.accepted else 'NOT accepted'}"
                 + (f"; line: {view.line_source}" if view.line_source else ""))
-    plotted = [p for p in view.points if p.ln_v is not None and p.airmass is not None
-               and math.isfinite(p.airmass)]
     if not plotted:
-        return "\n".join(head + ["nothing to plot: no point with a positive signal"]
+        return "\n".join(head + ["nothing to plot: no point with a value to draw"]
                          + [f"note: {n}" for n in view.notes])
-    x_hi = max(p.airmass for p in plotted)
-    x_lo = 0.0 if view.ln_v0 is not None else math.floor(min(p.airmass for p in plotted))
+    x_hi = max(p.pos_x for p in plotted)
+    x_lo = 0.0 if view.ln_v0 is not None else math.floor(min(p.pos_x for p in plotted))
     x_hi = math.ceil(2.0 * x_hi) / 2.0  # a target measured just past m = 6 keeps the axis at 6.5
     if x_hi <= x_lo:
         x_hi = x_lo + 1.0
@@ -271,14 +423,14 @@ def render_terminal(view: SessionView, width: int = 80, height: int = 16) -> str
             prev = py
     glyph: dict[tuple[int, int], str] = {}
     for p in plotted:
-        cell = (dot_y(p.ln_v) // 4, dot_x(p.airmass) // 2)
+        cell = (dot_y(p.ln_v) // 4, dot_x(p.pos_x) // 2)
         if cell not in glyph or _PRIORITY[p.role] > _PRIORITY[glyph[cell]]:
             glyph[cell] = p.role
 
     digits = 4 if (y_hi - y_lo) < 0.2 else 3
     label_rows = {0: y_hi, plot_h // 2: y_hi - (plot_h // 2) / (plot_h - 1) * (y_hi - y_lo),
                   plot_h - 1: y_lo}
-    lines = head + [" " * (label_w - 4) + "ln V"]
+    lines = head + [" " * max(0, label_w - 4) + view.y_label]
     for row in range(plot_h):
         label = f"{label_rows[row]:.{digits}f}" if row in label_rows else ""
         tick = "┤" if row in label_rows else "│"
@@ -302,13 +454,13 @@ def render_terminal(view: SessionView, width: int = 80, height: int = 16) -> str
         tick_labels[start:start + len(text)] = list(text)
     lines.append(" " * label_w + " └" + "".join(axis))
     lines.append(" " * (label_w + 2) + "".join(tick_labels).rstrip())
-    lines.append(" " * (label_w + 2 + plot_w // 2 - 4) + "air mass")
+    lines.append(" " * (label_w + 2 + plot_w // 2 - len(view.x_label) // 2) + view.x_label)
     lines.append(f"{GLYPHS[USED]} in the fit  {GLYPHS[REJECTED]} rejected by the fit  "
                  f"{GLYPHS[EXCLUDED]} screened or outside the window  "
                  + ("⠒ fit" if view.ln_v0 is not None else ""))
     if n_plotted < len(view.points):
         lines.append(f"{len(view.points) - n_plotted} point(s) without a positive signal "
-                     "are not drawn")
+                     "or a finite value are not drawn")
     lines += [f"note: {n}" for n in view.notes]
     return "\n".join(_wrap(line, width) for line in lines)
 
@@ -348,17 +500,18 @@ def render_png(views: list[SessionView], path: Path) -> None:
     for ax, view in zip(axes[0], views, strict=True):
         for role, style in styles.items():
             pts = [p for p in view.points if p.role == role and p.ln_v is not None
-                   and p.airmass is not None]
+                   and p.pos_x is not None]
             if pts:
-                ax.plot([p.airmass for p in pts], [p.ln_v for p in pts], linestyle="none",
+                ax.plot([p.pos_x for p in pts], [p.ln_v for p in pts], linestyle="none",
                         **style)
         if view.ln_v0 is not None:
-            x_hi = max([p.airmass for p in view.points if p.airmass is not None] + [1.0])
+            x_hi = max([p.pos_x for p in view.points if p.pos_x is not None] + [1.0])
+            label = (f"fit: {view.line_text(short=True)}" if view.v0 is not None else "fit")
             ax.plot([0.0, x_hi], [view.ln_v0, view.ln_v0 - view.tau * x_hi], color="k",
-                    linewidth=1, label=f"fit: V0 {view.v0:.5f} V, tau {view.tau:.4f}")
+                    linewidth=1, label=label)
         ax.set_xlim(left=0.0)
-        ax.set_xlabel("air mass")
-        ax.set_ylabel("ln V [ln(V / 1 V)]")
+        ax.set_xlabel(view.x_label)
+        ax.set_ylabel(f"{view.y_label} [ln(V / 1 V)]")
         ax.set_title(f"{view.plan_date} {view.session}, channel {view.channel} "
                      f"({view.wavelength_nm:g} nm)")
         ax.grid(alpha=0.3)

@@ -6,8 +6,10 @@ channel (both sessions, as :mod:`daemon.plot` marks the points), the housekeepin
 temperatures and supply voltage through the day, and the day's events. Times are UTC
 with the site's local time beside them.
 
-Read-only and free of heavy imports apart from numpy (the marks of the Langley
-plots are recomputed, see :mod:`daemon.plot`).
+Read-only and free of heavy imports apart from numpy. The Langley plots show the
+points exactly as the session fit used them (the stored fit points, see
+:mod:`daemon.plot`); numpy is needed only to mark the points of sessions fitted
+before those were stored, by fitting them again.
 """
 
 from __future__ import annotations
@@ -207,18 +209,18 @@ def langley_svg(views: Sequence[Any], channel: str, wavelength_nm: float) -> str
     ys: list[float] = []
     for v in views:
         colour = SESSION_COLOURS.get(v.session, "#333")
-        pts = [p for p in v.points if p.ln_v is not None and p.airmass is not None
-               and math.isfinite(p.airmass)]
-        xs += [p.airmass for p in pts]
+        pts = [p for p in v.points if p.ln_v is not None and p.pos_x is not None
+               and math.isfinite(p.pos_x) and math.isfinite(p.ln_v)]
+        xs += [p.pos_x for p in pts]
         ys += [p.ln_v for p in pts]
         for role, marker, label in ((USED, "dot", f"{v.session} used"),
                                     (REJECTED, "cross", f"{v.session} rejected")):
-            sel = [(p.airmass, p.ln_v) for p in pts if p.role == role]
+            sel = [(p.pos_x, p.ln_v) for p in pts if p.role == role]
             if sel:
                 series.append({"kind": "points", "xy": sel, "marker": marker, "colour": colour,
                                "label": label})
         # Screened points last: hollow rings on top stay visible over the other session.
-        excluded.append([(p.airmass, p.ln_v) for p in pts if p.role == EXCLUDED])
+        excluded.append([(p.pos_x, p.ln_v) for p in pts if p.role == EXCLUDED])
     if not xs:
         return "<p>No measurement with a positive signal.</p>"
     x_hi = math.ceil(2.0 * max(xs)) / 2.0
@@ -233,8 +235,8 @@ def langley_svg(views: Sequence[Any], channel: str, wavelength_nm: float) -> str
         series.append({"kind": "points", "xy": rings, "marker": "ring",
                        "colour": EXCLUDED_COLOUR, "label": "screened"})
     pad = 0.05 * (max(ys) - min(ys) or 1.0)
-    return svg_chart(series, (0.0, x_hi), (min(ys) - pad, max(ys) + pad), "air mass",
-                     "ln V [ln(V / 1 V)]",
+    return svg_chart(series, (0.0, x_hi), (min(ys) - pad, max(ys) + pad), views[0].x_label,
+                     f"{views[0].y_label} [ln(V / 1 V)]",
                      title=f"Langley plot, channel {channel} ({wavelength_nm:g} nm)")
 
 
@@ -371,10 +373,13 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
     else:
         parts.append("<p>No session results for this date.</p>")
     parts.append("<h2>Langley plots</h2>")
-    parts.append('<p class="meta">ln V against air mass; filled dots are in the fit, crosses '
-                 "were rejected by it, grey rings were screened out (no lock, saturated, "
-                 "cloudy) or lie outside the fit window. Lines: the stored session fits, "
-                 "extrapolated to air mass zero.</p>")
+    parts.append('<p class="meta">ln V against air mass, as the session fit used it (dark, '
+                 "temperature, ozone and pressure corrected); filled dots are in the fit, "
+                 "crosses were rejected by it, grey rings were screened out (no lock, "
+                 "saturated, cloudy) or lie outside the fit window. Lines: the stored session "
+                 "fits, extrapolated to air mass zero. A session fitted before the store kept "
+                 "the fit's points is marked by fitting it again, and says so below its "
+                 "plot.</p>")
     parts.append('<div class="charts">')
     for ch in config.channels:
         vs = [v for v in views[ch.name] if v.points]
@@ -383,7 +388,8 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         for v in vs:
             if v.v0 is not None:
                 caption += (f"; {v.session} V0 {v.v0:.5f} V"
-                            + (f", tau {v.tau:.4f}" if v.tau is not None else ""))
+                            + (f", tau {v.tau:.4f}" if v.tau is not None
+                               and v.tau_is_optical_depth else ""))
         parts.append(f"<figure>{langley_svg(vs, ch.name, ch.wavelength_nm) if vs else ''}"
                      f"<figcaption>{e(caption)}"
                      + "".join(f"<br>{e(n)}" for n in notes) + "</figcaption></figure>")

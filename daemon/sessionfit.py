@@ -12,6 +12,11 @@ modified Langley, once the window channels have given the aerosol. V0 is normali
 to 1 AU with the mean Earth-Sun factor of the points used, and the rows are saved
 to the store and returned in the JSON contract of :mod:`daemon.storeread`.
 
+Every row also carries ``fit_points``: per measurement of the session the (x, y) the
+fit used and the point's role (:func:`fit_point_records`). The store keeps them
+beside the result, so the read-only plot and report show exactly the fitted points
+without importing this module (which needs pvlib).
+
 :func:`fit_series` is the store-free core; the offline ``refit`` command uses it too.
 """
 
@@ -21,7 +26,7 @@ import datetime as _dt
 import logging
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -29,10 +34,10 @@ import numpy as np
 from daemon import solar
 from daemon.config import Channel, Config
 from daemon.lamp import lamp_check, lamp_note
-from daemon.langley import FitResult, fit_session, v0_at_1au
+from daemon.langley import FitResult, fit_coordinates, fit_session, v0_at_1au
 from daemon.ozone import channel_cross_section_cm2, ozone_optical_depth
 from daemon.store import FIT_SESSIONS, SessionPoint, Store
-from daemon.storeread import RESULT_KEYS, check_plan_date
+from daemon.storeread import FIT_POINT_ROLES, RESULT_KEYS, check_plan_date
 
 log = logging.getLogger(__name__)
 
@@ -68,13 +73,42 @@ def temperature_corrected(signal_v: float, detector_temp_c: float, channel: Chan
 
 # --------------------------------------------------------------------------- series
 
+#: Keys of the screening rules, in the order they are tried (:func:`point_signal`).
+SCREENING_KEYS = ("missing", "unlocked", "saturated", "cloudy")
+
+#: Roles of a point in a stored session fit (the ``fit_points`` table): in the final
+#: line; a candidate clipped as an outlier; outside the air-mass window or without a
+#: finite x or y; dropped by screening (``reason`` says which rule); a candidate of a
+#: channel that got no line (too few points, or a water-vapour channel without the
+#: aerosol it needs).
+ROLE_USED, ROLE_REJECTED, ROLE_OUTSIDE, ROLE_SCREENED, ROLE_UNFITTED = FIT_POINT_ROLES
+
+
+@dataclass
+class ScreenedPoints:
+    """The measurements screening dropped from one channel's series, kept for display.
+
+    ``reasons`` holds one key of :data:`SCREENING_KEYS` per point; ``signal_v`` is the
+    dark-subtracted, temperature-corrected signal [V] (NaN without samples).
+    """
+
+    measurement_ids: np.ndarray
+    reasons: tuple[str, ...]
+    airmass: np.ndarray
+    ozone_airmass: np.ndarray
+    pressure_hpa: np.ndarray
+    signal_v: np.ndarray
+
+
 @dataclass
 class ChannelSeries:
     """One channel's screened, corrected points of one session, ready to fit.
 
     Every array has one value per point; NaN marks a value that is not known.
     ``n_total`` counts the session's measurements (screened ones included) and
-    ``notes`` says what the screening dropped or assumed.
+    ``notes`` says what the screening dropped or assumed. ``measurement_ids`` (one
+    per point) and ``screened`` come from the store (:func:`screen_channel`); a series
+    built elsewhere (the offline refit) may leave them out.
     """
 
     airmass: np.ndarray
@@ -85,6 +119,8 @@ class ChannelSeries:
     n_total: int
     notes: list[str] = field(default_factory=list)
     hours: np.ndarray | None = None  # time of each point [h], any origin
+    measurement_ids: np.ndarray | None = None
+    screened: ScreenedPoints | None = None
 
 
 @dataclass(frozen=True)
@@ -135,6 +171,17 @@ def _count(n: int, what: str) -> str:
     return f"{n} burst{'s' if n != 1 else ''} {what}"
 
 
+def _screened_signal(p: SessionPoint, channel: Channel) -> float:
+    """The corrected signal of a screened measurement [V], for display; NaN without samples."""
+    st = p.channels.get(channel.name)
+    if st is None or st.n_sun == 0 or st.sun_mean_v is None:
+        return math.nan
+    net = st.sun_mean_v - (0.0 if st.dark_mean_v is None else st.dark_mean_v)
+    if p.housekeeping is not None:
+        net = temperature_corrected(net, p.housekeeping.detector_temp_c, channel)
+    return float(net)
+
+
 def _point_pressure(p: SessionPoint) -> float:
     if p.housekeeping is not None and p.housekeeping.pressure_hpa is not None:
         value = p.housekeeping.pressure_hpa
@@ -157,16 +204,26 @@ def screen_channel(points: Sequence[SessionPoint], channel: Channel,
     max_cv = config.fit.max_cv
     max_pointing = config.acquisition.max_pointing_error_deg
     rows: list[tuple[float, float, float, float, float, float]] = []
-    counts = {"missing": 0, "unlocked": 0, "saturated": 0, "cloudy": 0}
+    ids: list[int] = []
+    dropped: list[tuple[float, float, float, float]] = []
+    dropped_ids: list[int] = []
+    dropped_why: list[str] = []
+    counts = dict.fromkeys(SCREENING_KEYS, 0)
     no_dark = no_hk = 0
     for p in points:
         ps = point_signal(p, channel, config)
+        airmass = math.nan if p.airmass is None else p.airmass
         if ps.screened is not None:
             counts[ps.screened] += 1
+            dropped_ids.append(p.measurement_id)
+            dropped_why.append(ps.screened)
+            dropped.append((airmass, _point_ozone_airmass(p, config), _point_pressure(p),
+                            _screened_signal(p, channel)))
             continue
         no_dark += ps.no_dark
         no_hk += ps.no_housekeeping
-        rows.append((math.nan if p.airmass is None else p.airmass,
+        ids.append(p.measurement_id)
+        rows.append((airmass,
                      _point_ozone_airmass(p, config), _point_pressure(p), ps.signal_v,
                      math.nan if p.earth_sun_factor is None else p.earth_sun_factor,
                      p.time_utc.timestamp() / 3600.0))
@@ -186,9 +243,15 @@ def screen_channel(points: Sequence[SessionPoint], channel: Channel,
     if no_hk:
         notes.append(_count(no_hk, "without housekeeping: no detector-temperature correction"))
     arr = np.array(rows, dtype=float).reshape(-1, 6)
+    out = np.array(dropped, dtype=float).reshape(-1, 4)
+    screened = ScreenedPoints(measurement_ids=np.array(dropped_ids, dtype=np.int64),
+                              reasons=tuple(dropped_why), airmass=out[:, 0],
+                              ozone_airmass=out[:, 1], pressure_hpa=out[:, 2],
+                              signal_v=out[:, 3])
     return ChannelSeries(airmass=arr[:, 0], ozone_airmass=arr[:, 1], pressure_hpa=arr[:, 2],
                          signal_v=arr[:, 3], earth_sun_factor=arr[:, 4],
-                         n_total=len(points), notes=notes, hours=arr[:, 5])
+                         n_total=len(points), notes=notes, hours=arr[:, 5],
+                         measurement_ids=np.array(ids, dtype=np.int64), screened=screened)
 
 
 # --------------------------------------------------------------------------- corrections
@@ -208,6 +271,28 @@ class Extinction:
     reference_pressure_hpa: float
     notes: tuple[str, ...]
     failures: tuple[str, ...]
+    pressure_normalised: bool = False
+
+    def correction_at(self, airmass: np.ndarray, ozone_airmass: np.ndarray,
+                      pressure_hpa: np.ndarray) -> np.ndarray:
+        """The ln V correction of this session at any points [ln V].
+
+        The same formula :func:`extinction_corrections` applies to the fitted points
+        (``ln_correction``), for points screened out of the fit: a missing pressure
+        counts as the session's reference pressure.
+        """
+        m = np.asarray(airmass, dtype=float)
+        p_ref = self.reference_pressure_hpa
+        p = np.asarray(pressure_hpa, dtype=float)
+        p_filled = np.where(np.isfinite(p), p, p_ref)
+        correction = np.zeros_like(m)
+        if self.pressure_normalised:
+            tau_r_i = self.tau_rayleigh * p_filled / p_ref  # Rayleigh optical depth scales with p
+            correction = correction + (tau_r_i - self.tau_rayleigh) * m
+        if self.tau_ozone > 0.0:  # False for NaN: no cross-section, no correction
+            correction = correction + self.tau_ozone * (np.asarray(ozone_airmass, dtype=float)
+                                                        - m)
+        return correction
 
 
 def extinction_corrections(series: ChannelSeries, channel: Channel,
@@ -259,10 +344,8 @@ def extinction_corrections(series: ChannelSeries, channel: Channel,
     p_filled = np.where(np.isfinite(p), p, p_ref)
     change = float(np.ptp(p_filled)) if p_filled.size else 0.0
     tau_r_ref = float(solar.rayleigh_optical_depth(channel.wavelength_nm, p_ref))
-    correction = np.zeros_like(m)
-    if change > 0.0 and fit.normalise_pressure:
-        tau_r_i = tau_r_ref * p_filled / p_ref  # Rayleigh optical depth scales with p
-        correction = correction + (tau_r_i - tau_r_ref) * m
+    normalised = change > 0.0 and fit.normalise_pressure
+    if normalised:
         if change > fit.max_pressure_change_hpa:
             notes.append(f"pressure changed by {change:.1f} hPa during the session: ln V "
                          f"normalised to the mean {p_ref:.1f} hPa")
@@ -280,11 +363,10 @@ def extinction_corrections(series: ChannelSeries, channel: Channel,
                      "ozone_cross_section_cm2 for this channel")
     else:
         tau_o3 = ozone_optical_depth(sigma, config.site.ozone_du)
-        if tau_o3 > 0.0:
-            correction = correction + tau_o3 * (series.ozone_airmass - m)
-    return Extinction(ln_correction=correction, tau_rayleigh=tau_r_ref, tau_ozone=tau_o3,
-                      reference_pressure_hpa=p_ref, notes=tuple(notes),
-                      failures=tuple(failures))
+    ext = Extinction(ln_correction=np.zeros_like(m), tau_rayleigh=tau_r_ref, tau_ozone=tau_o3,
+                     reference_pressure_hpa=p_ref, notes=tuple(notes),
+                     failures=tuple(failures), pressure_normalised=normalised)
+    return replace(ext, ln_correction=ext.correction_at(m, series.ozone_airmass, p))
 
 
 #: Reference wavelength [nm] of ``fit.tau_drift_per_hour``; the drift allowed for
@@ -390,6 +472,64 @@ def _row(plan_date: str, session: str, channel: Channel, fit: FitResult | None, 
     }
 
 
+def fit_point_records(s: ChannelSeries, fit: FitResult | None, x: np.ndarray, y: np.ndarray,
+                      screened_x: np.ndarray, screened_y: np.ndarray) -> list[dict[str, Any]]:
+    """Per measurement of one channel's session: the (x, y) the fit used and its role.
+
+    Parameters
+    ----------
+    s : ChannelSeries
+        The series that was fitted, with ``measurement_ids`` and ``screened``
+        (None ids are stored as None: a series built outside the store has none).
+    fit : FitResult or None
+        The fit of ``s`` (None: the channel was not fitted at all).
+    x, y : ndarray
+        Regressor (air mass, or ``m^b``) and ``ln V`` plus the corrections, one per
+        point of ``s``, as :func:`daemon.langley.fit_coordinates` gives them for the
+        arguments of the fit [ln V]; NaN where not finite.
+    screened_x, screened_y : ndarray
+        The same for the screened points of ``s``, with the same corrections.
+
+    Returns
+    -------
+    list of dict
+        ``measurement_id``, ``x``, ``y``, ``role`` (:data:`ROLE_USED`,
+        :data:`ROLE_REJECTED`, :data:`ROLE_OUTSIDE`, :data:`ROLE_SCREENED` or
+        :data:`ROLE_UNFITTED`) and ``reason`` (the screening key, else None).
+    """
+    n = s.airmass.size
+    ids: list[int | None] = ([None] * n if s.measurement_ids is None
+                             else [int(i) for i in s.measurement_ids])
+    has_line = fit is not None and fit.n_used > 0
+    records = []
+    for i in range(n):
+        if fit is None:
+            role = ROLE_UNFITTED
+        elif fit.used[i]:
+            role = ROLE_USED
+        elif fit.in_window[i]:
+            # A candidate left out of a fitted line was clipped as an outlier.
+            role = ROLE_REJECTED if has_line else ROLE_UNFITTED
+        else:
+            role = ROLE_OUTSIDE
+        records.append({"measurement_id": ids[i], "x": float(x[i]), "y": float(y[i]),
+                        "role": role, "reason": None})
+    if s.screened is not None:
+        for i, (mid, why) in enumerate(zip(s.screened.measurement_ids, s.screened.reasons,
+                                           strict=True)):
+            records.append({"measurement_id": int(mid), "x": float(screened_x[i]),
+                            "y": float(screened_y[i]), "role": ROLE_SCREENED,
+                            "reason": why})
+    return records
+
+
+def _screened_arrays(s: ChannelSeries) -> ScreenedPoints:
+    if s.screened is not None:
+        return s.screened
+    empty = np.empty(0)
+    return ScreenedPoints(np.empty(0, dtype=np.int64), (), empty, empty, empty, empty)
+
+
 def contract(row: Mapping[str, Any]) -> dict[str, Any]:
     """The JSON-contract keys of a result row, with non-finite numbers as None."""
     out = {}
@@ -422,7 +562,8 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
         One row per configured channel in configuration order: the contract keys
         (:data:`daemon.storeread.RESULT_KEYS`) plus ``notes``, ``earth_sun_factor``,
         ``residual_sd``, ``tau_aerosol``, ``tau_rayleigh``, ``tau_ozone``,
-        ``e0_1au_w_m2_nm`` and ``astm_ratio`` (NaN where not computed).
+        ``e0_1au_w_m2_nm`` and ``astm_ratio`` (NaN where not computed), and
+        ``fit_points`` (:func:`fit_point_records`).
         Water-vapour channels are fitted after the window channels, whose accepted
         aerosol optical depths they need; their ``tau`` is None (the modified
         Langley's slope is not an optical depth).
@@ -440,6 +581,12 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
                           drift_per_hour=drift_per_hour(channel, config))
         row = _row(plan_date, session, channel, fit, s.n_total, s.earth_sun_factor,
                    s.notes + list(ext.notes), ext.failures, ext)
+        x, y = fit_coordinates(s.airmass, s.signal_v, ext.ln_correction)
+        sp = _screened_arrays(s)
+        sx, sy = fit_coordinates(sp.airmass, sp.signal_v,
+                                 ext.correction_at(sp.airmass, sp.ozone_airmass,
+                                                   sp.pressure_hpa))
+        row["fit_points"] = fit_point_records(s, fit, x, y, sx, sy)
         rows[channel.name] = row
         if row["accepted"] and math.isfinite(row["tau_aerosol"]):
             aerosol[channel.wavelength_nm] = row["tau_aerosol"]
@@ -464,25 +611,43 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
     """
     b = config.fit.water_vapour_exponent
     tau_a = aerosol_at(channel.wavelength_nm, aerosol)
+    sp = _screened_arrays(s)
     if tau_a is None:
-        return _row(plan_date, session, channel, None, s.n_total, s.earth_sun_factor,
-                    s.notes, [f"not fitted: water-vapour channel; the modified Langley needs "
-                              f"the aerosol from at least two accepted window channels, and "
-                              f"this session has {len(aerosol)}"])
+        row = _row(plan_date, session, channel, None, s.n_total, s.earth_sun_factor,
+                   s.notes, [f"not fitted: water-vapour channel; the modified Langley needs "
+                             f"the aerosol from at least two accepted window channels, and "
+                             f"this session has {len(aerosol)}"])
+        # No aerosol, no corrected ln V: the points are kept with x only.
+        row["fit_points"] = fit_point_records(
+            s, None, fit_coordinates(s.airmass, s.signal_v, regressor_exponent=b)[0],
+            np.full(s.airmass.shape, math.nan),
+            fit_coordinates(sp.airmass, sp.signal_v, regressor_exponent=b)[0],
+            np.full(sp.airmass.shape, math.nan))
+        return row
     ext = extinction_corrections(s, channel, config)
     tau_o3 = 0.0 if math.isnan(ext.tau_ozone) else ext.tau_ozone
     p_ref = ext.reference_pressure_hpa
-    p = np.where(np.isfinite(s.pressure_hpa), s.pressure_hpa, p_ref)
-    tau_r_i = ext.tau_rayleigh * p / p_ref
-    known = tau_r_i * s.airmass + tau_o3 * s.ozone_airmass + tau_a[0] * s.airmass
+
+    def known_extinction(m: np.ndarray, m_o3: np.ndarray, p_hpa: np.ndarray) -> np.ndarray:
+        p = np.where(np.isfinite(p_hpa), p_hpa, p_ref)
+        tau_r_i = ext.tau_rayleigh * p / p_ref
+        return tau_r_i * m + tau_o3 * m_o3 + tau_a[0] * m
+
+    known = known_extinction(s.airmass, s.ozone_airmass, s.pressure_hpa)
     fit = fit_session(s.airmass, s.signal_v, config.fit, ln_correction=known,
                       regressor_exponent=b, hours=s.hours,
                       drift_per_hour=drift_per_hour(channel, config))
     notes = s.notes + [n for n in ext.notes if not n.startswith("no ozone cross-section")]
     notes.append(f"water-vapour channel: modified Langley, ln V plus Rayleigh, ozone and "
                  f"aerosol {tau_a[0]:.4f} (from {tau_a[1]}) against m^{b:g}")
-    return _row(plan_date, session, channel, fit, s.n_total, s.earth_sun_factor, notes,
-                ext.failures, None, report_tau=False)
+    row = _row(plan_date, session, channel, fit, s.n_total, s.earth_sun_factor, notes,
+               ext.failures, None, report_tau=False)
+    x, y = fit_coordinates(s.airmass, s.signal_v, known, b)
+    sx, sy = fit_coordinates(sp.airmass, sp.signal_v,
+                             known_extinction(sp.airmass, sp.ozone_airmass, sp.pressure_hpa),
+                             b)
+    row["fit_points"] = fit_point_records(s, fit, x, y, sx, sy)
+    return row
 
 
 # --------------------------------------------------------------------------- store
@@ -510,9 +675,11 @@ def fit_stored_session(store: Store, config: Config, plan_date: str | _dt.date, 
     list of dict
         One row per channel in configuration order, in the JSON contract
         (:data:`daemon.storeread.RESULT_KEYS`); numbers that could not be computed
-        are None. A re-fit replaces the stored rows of the same channels. When a
-        calibration is stored, the session's aerosol optical depths are computed and
-        stored too (:func:`daemon.aod.update_aod`).
+        are None. A re-fit replaces the stored rows of the same channels, and with
+        them, in the same transaction, the per-point records of the fit
+        (``fit_points``, see :func:`fit_point_records`). When a calibration is
+        stored, the session's aerosol optical depths are computed and stored too
+        (:func:`daemon.aod.update_aod`).
     """
     date = check_plan_date(plan_date)
     if session not in FIT_SESSIONS:

@@ -30,7 +30,7 @@ from typing import Any
 from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
-from daemon.storeread import SESSION_STATS_SQL, StoreError, check_plan_date
+from daemon.storeread import FIT_POINT_ROLES, SESSION_STATS_SQL, StoreError, check_plan_date
 from drivers.interfaces import Housekeeping
 
 __all__ = ["ChannelStats", "MeasurementRecord", "SessionPoint", "Store", "StoreError",
@@ -132,6 +132,18 @@ def m002_calibrations_aod(db: Database) -> None:
     }, pk="measurement_id",
         foreign_keys=[("measurement_id", "measurements", "id"),
                       ("calibration_id", "calibrations", "id")])
+
+
+@migrations()
+def m003_fit_points(db: Database) -> None:
+    # Per point of a session fit: the (x, y) the fit used and its role, so the
+    # read-only plot and report show the fitted points without re-fitting. Replaced
+    # together with the session_results row of the same channel.
+    db["fit_points"].create({
+        "plan_date": str, "session": str, "channel": str, "measurement_id": int,
+        "x": float, "y": float, "role": str, "reason": str,
+    }, pk=("plan_date", "session", "channel", "measurement_id"), not_null=["role"],
+        foreign_keys=[("measurement_id", "measurements", "id")])
 
 
 # Every migration is pending on an empty database: that lists the names this version knows.
@@ -436,14 +448,20 @@ class Store:
         Each row needs the contract keys ``channel``, ``wavelength_nm``, ``v0``,
         ``v0_1au``, ``v0_rel_unc``, ``tau``, ``n_used``, ``n_total``,
         ``airmass_min``, ``airmass_max``, ``accepted`` and ``reasons``, and may carry
-        ``notes``, ``earth_sun_factor``, ``residual_sd`` and ``fitted_utc``. NaN is
-        stored as NULL. ``fitted_utc`` defaults to the system clock.
+        ``notes``, ``earth_sun_factor``, ``residual_sd``, ``fitted_utc`` and
+        ``fit_points`` (dicts with ``measurement_id``, ``x``, ``y``, ``role`` from
+        :data:`daemon.storeread.FIT_POINT_ROLES` and ``reason``, the screening key of
+        a 'screened' point). NaN is stored as NULL. ``fitted_utc`` defaults to the
+        system clock. In one transaction with the results, the stored fit points of
+        every channel saved are replaced by the row's ``fit_points`` (none when the
+        row has none), so points of an older fit never outlive it.
         """
         date = check_plan_date(plan_date)
         if session not in FIT_SESSIONS:
             raise ValueError(f"session results are per 'am' or 'pm' session; got {session!r}")
         default_fitted = fitted_utc if fitted_utc is not None else _dt.datetime.now(_dt.UTC)
         records = []
+        points = []
         for r in rows:
             for key, want in (("date", date), ("session", session)):
                 if key in r and r[key] != want:
@@ -464,8 +482,13 @@ class Store:
                 "residual_sd": _num(r.get("residual_sd")),
                 "fitted_utc": fitted if isinstance(fitted, str) else utc_iso(fitted),
             })
+            points += _fit_point_rows(date, session, str(r["channel"]), r.get("fit_points", ()))
         with self._lock, self.db.atomic():
             self.db["session_results"].insert_all(records, replace=True)
+            self.db.conn.executemany(
+                "DELETE FROM fit_points WHERE plan_date = ? AND session = ? AND channel = ?",
+                [(date, session, rec["channel"]) for rec in records])
+            self.db["fit_points"].insert_all(points)
 
     def save_calibration(self, created_utc: _dt.datetime, first_date: str, last_date: str,
                          site_name: str, settings: Mapping[str, Any], notes: Sequence[str],
@@ -569,6 +592,29 @@ class Store:
                 pointing_error_deg=r[9], locked=bool(r[10]), duration_s=r[11],
                 housekeeping=hk, channels=by_id.get(r[0], {})))
         return points
+
+
+def _fit_point_rows(date: str, session: str, channel: str,
+                    points: Iterable[Mapping[str, Any]]) -> list[dict[str, Any]]:
+    """Check one channel's fit points and turn them into ``fit_points`` rows."""
+    out = []
+    for pt in points:
+        mid = pt.get("measurement_id")
+        if mid is None:
+            raise ValueError(f"a fit point of channel {channel!r} has no measurement_id; only "
+                             "points of stored measurements can be saved")
+        role = pt.get("role")
+        if role not in FIT_POINT_ROLES:
+            raise ValueError(f"fit point {mid} of channel {channel!r} has role {role!r}; "
+                             f"use one of {', '.join(FIT_POINT_ROLES)}")
+        reason = pt.get("reason")
+        if (role == "screened") != (reason is not None):
+            raise ValueError(f"fit point {mid} of channel {channel!r}: a 'screened' point "
+                             "needs the screening key as its reason, any other role none")
+        out.append({"plan_date": date, "session": session, "channel": channel,
+                    "measurement_id": int(mid), "x": _num(pt.get("x")), "y": _num(pt.get("y")),
+                    "role": role, "reason": reason})
+    return out
 
 
 def _nan(value: float | None) -> float:

@@ -373,6 +373,51 @@ def session_points_readonly(conn: sqlite3.Connection, plan_date: str | _dt.date,
     return points
 
 
+# --------------------------------------------------------------------------- fit points
+
+#: Roles of a point in a stored session fit: in the final line; a candidate the fit
+#: clipped as an outlier; outside the air-mass window or without a finite x or y;
+#: screened out before the fit (``reason`` names the rule: missing, unlocked,
+#: saturated, cloudy); a candidate of a channel that got no line.
+FIT_POINT_ROLES = ("used", "rejected", "outside", "screened", "unfitted")
+
+
+def fit_points(conn: sqlite3.Connection, plan_date: str | _dt.date, session: str,
+               channel: str) -> list[dict[str, Any]] | None:
+    """The points of one channel's stored session fit, as the fit used them.
+
+    Parameters
+    ----------
+    conn : sqlite3.Connection
+        A store connection (:func:`open_readonly`).
+    plan_date : str or date
+        Local date of the plan, YYYY-MM-DD.
+    session : str
+        'am' or 'pm'.
+    channel : str
+        Channel name.
+
+    Returns
+    -------
+    list of dict or None
+        One dict per measurement of the session, in measurement order:
+        ``measurement_id``, ``x`` (the regressor: air mass, or ``m^b`` for a
+        water-vapour channel), ``y`` (ln V [ln(V / 1 V)] after the dark, temperature,
+        ozone, pressure and, for a water-vapour channel, known-extinction
+        corrections), ``role`` (one of :data:`FIT_POINT_ROLES`) and ``reason`` (the
+        screening key of a 'screened' point, else None); ``x`` and ``y`` are None
+        where not finite. An empty list when the session was not fitted since the
+        store has the table; None when the store predates it.
+    """
+    if not _has_table(conn, "fit_points"):
+        return None
+    cur = conn.execute("SELECT measurement_id, x, y, role, reason FROM fit_points "
+                       "WHERE plan_date = ? AND session = ? AND channel = ? "
+                       "ORDER BY measurement_id", (check_plan_date(plan_date), session, channel))
+    return [dict(zip(("measurement_id", "x", "y", "role", "reason"), tuple(r), strict=True))
+            for r in cur.fetchall()]
+
+
 # --------------------------------------------------------------------------- calibration, AOD
 
 AOD_KEYS = ("time_utc", "plan_date", "session", "measurement_id", "channel", "wavelength_nm",

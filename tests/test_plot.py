@@ -1,10 +1,12 @@
-"""``heliotrope plot``: per-point marks agree with the service's session fit, the
-terminal plot fits 80 columns, and the PNG needs the plot extra."""
+"""``heliotrope plot``: per-point marks are the service's session fit's own (stored fit
+points; a re-fit for stores written before them), the terminal plot fits 80 columns,
+and the PNG needs the plot extra."""
 
 from __future__ import annotations
 
 import json
 import math
+import sqlite3
 import subprocess
 import sys
 from datetime import date
@@ -53,19 +55,38 @@ def test_readonly_points_equal_the_writers_aggregates(day, conn):
 def test_marks_show_the_outlier_rejected_and_the_unlocked_point_screened(day, conn):
     for ch in day.config.channels:
         view = plot.langley_view(conn, day.config, D, "am", ch.name)
+        assert view.marks_source == plot.MARKS_STORED
         roles = {p.measurement_id: p.role for p in view.points}
         assert roles[day.outlier_id] == plot.REJECTED, ch.name
         assert roles[day.unlocked_id] == plot.EXCLUDED
         assert sum(r == plot.USED for r in roles.values()) == view.n_used
-        # The recomputed selection is the service's own: same number of points used.
+        # The marks are the service's own: as many points used as the stored result.
         assert view.stored["n_used"] == view.n_used, ch.name
+        assert len(view.points) == view.stored["n_total"]
         assert view.notes == []
 
 
+def _residual_sd(conn, session, channel):
+    return conn.execute("SELECT residual_sd FROM session_results WHERE plan_date = ? AND "
+                        "session = ? AND channel = ?", (D, session, channel)).fetchone()[0]
+
+
 def test_the_line_is_the_stored_fit_and_follows_beer_lambert(day, conn):
+    for session in ("am", "pm"):
+        for ch in day.config.channels:
+            view = plot.langley_view(conn, day.config, D, session, ch.name)
+            assert view.line_source == "stored session result"
+            assert view.ln_v0 == pytest.approx(math.log(view.stored["v0"]), rel=1e-12)
+            # The drawn line passes through the plotted used points within the
+            # residual spread of the fit: the points are the fit's own (x, y).
+            sd = _residual_sd(conn, session, ch.name)
+            resid = [p.ln_v - (view.ln_v0 - view.tau * p.pos_x) for p in view.points
+                     if p.role == plot.USED]
+            assert len(resid) == view.n_used
+            assert max(abs(e) for e in resid) < 4 * sd, (session, ch.name)
+            assert math.sqrt(sum(e * e for e in resid) / (len(resid) - 2)) == pytest.approx(
+                sd, rel=1e-6)
     view = plot.langley_view(conn, day.config, D, "pm", "500")
-    assert view.line_source == "stored session result"
-    assert view.ln_v0 == pytest.approx(math.log(view.stored["v0"]))
     # The synthetic signal is V0 f exp(-tau m) (Beer-Lambert-Bouguer law, common
     # practice, no source): the fitted line must give back tau and V0 f.
     assert view.tau == pytest.approx(TAU["500"], abs=2e-4)
@@ -73,6 +94,60 @@ def test_the_line_is_the_stored_fit_and_follows_beer_lambert(day, conn):
     used = [p for p in view.points if p.role == plot.USED]
     for p in used:
         assert p.ln_v == pytest.approx(view.ln_v0 - view.tau * p.airmass, abs=2e-3)
+
+
+def _copy_store(day, path):
+    src = sqlite3.connect(day.path)
+    dst = sqlite3.connect(path)
+    try:
+        src.backup(dst)
+    finally:
+        src.close()
+        dst.close()
+    return path
+
+
+def test_the_marks_follow_the_stored_fit_points_not_a_re_fit(day, tmp_path):
+    # Change one stored role in a copy of the store: the plot shows what is stored.
+    path = _copy_store(day, tmp_path / "copy.db")
+    good = next(mid for (session, _), mid in day.record_ids.items()
+                if session == "am" and mid not in (day.outlier_id, day.unlocked_id))
+    with sqlite3.connect(path) as c:
+        c.execute("UPDATE fit_points SET role = 'rejected' WHERE measurement_id = ? "
+                  "AND channel = '500'", (good,))
+    conn = open_readonly(path)
+    try:
+        view = plot.langley_view(conn, day.config, D, "am", "500")
+    finally:
+        conn.close()
+    roles = {p.measurement_id: p.role for p in view.points}
+    assert roles[good] == plot.REJECTED and roles[day.outlier_id] == plot.REJECTED
+    # ... and says that its count no longer agrees with the stored result.
+    assert view.n_used == view.stored["n_used"] - 1
+    assert any("inconsistent" in n for n in view.notes)
+
+
+def test_a_store_from_before_the_fit_points_falls_back_to_a_re_fit(day, tmp_path):
+    path = _copy_store(day, tmp_path / "old.db")
+    with sqlite3.connect(path) as c:
+        c.execute("DROP TABLE fit_points")
+    conn = open_readonly(path)
+    try:
+        for ch in day.config.channels:
+            view = plot.langley_view(conn, day.config, D, "am", ch.name)
+            assert view.marks_source == plot.MARKS_RECOMPUTED
+            roles = {p.measurement_id: p.role for p in view.points}
+            assert roles[day.outlier_id] == plot.REJECTED, ch.name
+            assert roles[day.unlocked_id] == plot.EXCLUDED
+            assert view.stored["n_used"] == view.n_used, ch.name
+            assert view.line_source == "stored session result"
+            assert any("fitted before the store kept the fit's points" in n
+                       for n in view.notes)
+        text = plot.render_terminal(view)
+        assert "note: this session was fitted before" in text.replace("\n", " ")
+        assert max(len(line) for line in text.splitlines()) <= 80
+    finally:
+        conn.close()
 
 
 def test_terminal_plot_fits_80_columns_and_marks_points(day, conn):
@@ -113,6 +188,7 @@ def test_plot_command_text_and_json(day, capsys):
     out = json.loads(capsys.readouterr().out)
     (p,) = out["plots"]
     assert p["session"] == "am" and p["channel"] == "870"
+    assert p["marks_source"] == "stored fit points" and p["x_label"] == "air mass"
     roles = {q["measurement_id"]: q["role"] for q in p["points"]}
     assert roles[day.outlier_id] == "rejected"
     assert p["fit"]["n_used"] == sum(1 for r in roles.values() if r == "used")

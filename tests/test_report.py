@@ -79,6 +79,29 @@ def test_page_has_every_section(page, day):
     assert page.count("<circle") > 30 and 'stroke-width="1.6"' in page  # dots and crosses
 
 
+def test_langley_plots_use_the_stored_fit_points_or_say_they_re_fit(page, day, tmp_path):
+    # A fresh store: exact marks, no note. A store from before the fit points were kept
+    # (table dropped): the plots are still drawn, each caption says the marks are
+    # recomputed.
+    import sqlite3
+
+    note = "fitted before the store kept the fit&#x27;s points"
+    assert note not in page
+    old = tmp_path / "old.db"
+    src, dst = sqlite3.connect(day.path), sqlite3.connect(old)
+    try:
+        src.backup(dst)
+        dst.execute("DROP TABLE fit_points")
+        dst.commit()
+    finally:
+        src.close()
+        dst.close()
+    fallback = build_report(old, day.config, D, dt.datetime(2027, 2, 16, 7, tzinfo=dt.UTC))
+    # Two sessions per channel, each with its note.
+    assert fallback.count(note) == 2 * len(day.config.channels)
+    assert fallback.count("<svg") == page.count("<svg")
+
+
 def test_nice_ticks_are_round_and_cover_the_range():
     assert nice_ticks(0.0, 1.0) == [0.0, 0.2, 0.4, 0.6, 0.8, 1.0]
     assert nice_ticks(12.53, 12.67) == [12.55, 12.6, 12.65]

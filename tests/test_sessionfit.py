@@ -10,7 +10,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from daemon import storeread
+from daemon import plot, storeread
 from daemon.config import Channel, parse_config
 from daemon.sessionfit import fit_stored_session, temperature_corrected
 from daemon.store import MeasurementRecord, Store
@@ -329,13 +329,124 @@ def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
             store.record_measurement(replace(rec, channels=rec.channels + ("940",), sun=sun,
                                              dark=dark, saturated=rec.saturated + (False,)))
         rows = fit_stored_session(store, config, DAY, "am", T_AM)
+        fitted = storeread.fit_points(store.conn, DAY, "am", "940")
+        conn = storeread.open_readonly(store.path)
+        try:
+            view = plot.langley_view(conn, config, DAY, "am", "940")
+        finally:
+            conn.close()
         strict = replace(config, fit=replace(config.fit, min_airmass_span=5.0))
         refused = fit_stored_session(store, strict, DAY, "am", T_AM)
+        unfitted = storeread.fit_points(store.conn, DAY, "am", "940")
     finally:
         store.close()
+    # The stored points are the modified Langley's: x = m^0.6, and y = ln V plus the
+    # known extinctions lies on ln(V0 f) - a (u m)^b, the transmission law above.
+    used = [p for p in fitted if p["role"] == "used"]
+    assert len(used) == rows[-1]["n_used"] == AIRMASS.size
+    for p, m in zip(used, AIRMASS, strict=True):
+        assert p["x"] == pytest.approx(m ** 0.6, rel=1e-12)
+        assert p["y"] == pytest.approx(math.log(v0_wv * ES_FACTOR) - a_ub * p["x"], abs=2e-3)
+    assert all(p["role"] == "unfitted" and p["y"] is None for p in unfitted)
+    # The plot draws those points against m^b, and the least-squares line of the used
+    # points is the fit's own line: its intercept is the stored ln V0.
+    assert view.x_label == "air mass^0.6" and view.n_used == rows[-1]["n_used"]
+    assert view.line_source == "least squares of the stored points used"
+    assert view.ln_v0 == pytest.approx(math.log(rows[-1]["v0"]), abs=1e-9)
+    assert -view.tau == pytest.approx(-a_ub, abs=0.01)
+    for q in view.points:
+        assert q.ln_v == pytest.approx(view.ln_v0 - view.tau * q.pos_x, abs=2e-4)
+    text = plot.render_terminal(view)
+    assert "against air mass^0.6" in text and "tau" not in text.splitlines()[1]
     water = rows[-1]
     assert water["channel"] == "940" and water["accepted"], water["reasons"]
     assert water["v0_1au"] == pytest.approx(v0_wv, rel=0.002)
     assert water["tau"] is None  # the slope against m^b is not an optical depth
     assert refused[-1]["accepted"] is False
     assert refused[-1]["reasons"][0].startswith("not fitted: water-vapour channel")
+
+
+# --------------------------------------------------------------------------- fit points
+
+def _session_ids(store, session):
+    return [r[0] for r in store.conn.execute(
+        "SELECT id FROM measurements WHERE session = ? AND status = 'ok' ORDER BY time_utc, id",
+        (session,))]
+
+
+def _roles(store, session, channel):
+    return {p["measurement_id"]: (p["role"], p["reason"])
+            for p in storeread.fit_points(store.conn, DAY, session, channel)}
+
+
+def test_fit_points_record_every_burst_with_its_role(filled_store):
+    rows = fit_stored_session(filled_store, make_config(), DAY, "pm", T_PM)
+    ids = _session_ids(filled_store, "pm")
+    for r in rows:
+        roles = _roles(filled_store, "pm", r["channel"])
+        assert sorted(roles) == sorted(ids)  # every 'ok' burst, the failed one not
+        used = [mid for mid, (role, _) in roles.items() if role == "used"]
+        assert len(used) == r["n_used"]
+        assert roles[ids[4]] == ("screened", "cloudy")  # burst CV 0.05 above max_cv 0.02
+        assert roles[ids[12]] == ("screened", "unlocked")
+        want = ("screened", "saturated") if r["channel"] == "500" else ("used", None)
+        assert roles[ids[8]] == want
+
+
+def test_fit_points_mark_a_cloud_pulled_point_rejected_and_carry_the_fitted_ln_v(tmp_path):
+    store = Store.open(tmp_path / "h.db")
+    rng = np.random.default_rng(7)
+    try:
+        for i, m in enumerate(AIRMASS):
+            # A thin cloud dims the sixth burst by 3 % with a steady burst: screening
+            # cannot see it, the fit must clip it.
+            extra = {"cloud": 0.03} if i == 6 else {}
+            store.record_measurement(synthetic_record(i, m, T_AM, "am", rng, **extra))
+        store.record_measurement(synthetic_record(AIRMASS.size, 7.0, T_AM, "am", rng))
+        config = make_config()
+        rows = fit_stored_session(store, config, DAY, "am", T_AM)
+        ids = _session_ids(store, "am")
+        for r in rows:
+            pts = {p["measurement_id"]: p
+                   for p in storeread.fit_points(store.conn, DAY, "am", r["channel"])}
+            assert r["accepted"], r["reasons"]
+            assert pts[ids[6]]["role"] == "rejected"
+            assert pts[ids[-1]]["role"] == "outside"  # air mass 7 beyond the window 2 to 6
+            used = [p for p in pts.values() if p["role"] == "used"]
+            assert len(used) == r["n_used"]
+            # Clipping at 2.5 residual SDs may take a noisy point or two besides the cloud.
+            assert AIRMASS.size - 3 <= r["n_used"] <= AIRMASS.size - 1
+            assert {p["role"] for p in pts.values()} == {"used", "rejected", "outside"}
+            # The stored line runs through the used points within their residual spread.
+            sd = store.conn.execute(
+                "SELECT residual_sd FROM session_results WHERE session = 'am' AND channel = ?",
+                (r["channel"],)).fetchone()[0]
+            ln_v0 = math.log(r["v0"])
+            resid = [p["y"] - (ln_v0 - r["tau"] * p["x"]) for p in used]
+            assert max(abs(e) for e in resid) < 4 * sd
+            assert math.sqrt(sum(e * e for e in resid) / (len(resid) - 2)) == pytest.approx(
+                sd, rel=1e-6)
+            rej = pts[ids[6]]
+            assert rej["y"] - (ln_v0 - r["tau"] * rej["x"]) == pytest.approx(-0.03, abs=1e-3)
+        # y is ln V plus the ozone air-mass correction tau_O3 (m_O3 - m). At 675 nm the
+        # 670-680 nm bin of Serdyuchenko et al. (2014) gives 3.96e-5 per DU (REFERENCES.md),
+        # so 260 DU give tau_O3 = 0.0103.
+        tau_o3 = 3.96e-5 * 260
+        recs = {mid: rec for mid, rec in zip(ids, _records_again(), strict=True)}
+        for p in storeread.fit_points(store.conn, DAY, "am", "675"):
+            rec = recs[p["measurement_id"]]
+            k = rec.channels.index("675")
+            net = (np.mean([s[k] for s in rec.sun]) - np.mean([d[k] for d in rec.dark]))
+            assert p["x"] == rec.airmass
+            assert p["y"] - math.log(net) == pytest.approx(
+                tau_o3 * (rec.ozone_airmass - rec.airmass), rel=0.01, abs=1e-9)
+    finally:
+        store.close()
+
+
+def _records_again():
+    # The same records as the test above wrote (same seed and order).
+    rng = np.random.default_rng(7)
+    out = [synthetic_record(i, m, T_AM, "am", rng, **({"cloud": 0.03} if i == 6 else {}))
+           for i, m in enumerate(AIRMASS)]
+    return out + [synthetic_record(AIRMASS.size, 7.0, T_AM, "am", rng)]

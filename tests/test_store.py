@@ -78,7 +78,7 @@ def test_open_creates_dirs_and_sets_the_pragmas(store, db_path):
     assert conn.execute("PRAGMA busy_timeout").fetchone()[0] >= 1000
     names = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
     assert {"measurements", "samples", "housekeeping", "events", "plans", "session_results",
-            "meta", "measurement_channels", "_sqlite_migrations"} <= names
+            "meta", "measurement_channels", "fit_points", "_sqlite_migrations"} <= names
 
 
 def test_reopening_applies_no_migration_twice(db_path):
@@ -368,6 +368,74 @@ def test_session_results_refuse_mismatched_rows(store):
                                    [result_row("500", 500, date="2025-03-20")], fitted_utc=T0)
     with pytest.raises(ValueError, match="'am' or 'pm'"):
         store.save_session_results("2025-03-21", "routine", [], fitted_utc=T0)
+
+
+def test_fit_points_are_replaced_with_their_results_in_one_transaction(store, db_path):
+    ids = [store.record_measurement(make_record(i, session="am")) for i in range(4)]
+    pts = [{"measurement_id": ids[0], "x": 2.0, "y": 0.3, "role": "used", "reason": None},
+           {"measurement_id": ids[1], "x": 2.25, "y": math.nan, "role": "rejected",
+            "reason": None},
+           {"measurement_id": ids[2], "x": 2.5, "y": 0.2, "role": "screened",
+            "reason": "cloudy"}]
+    store.save_session_results("2025-03-21", "am", [
+        result_row("500", 500, fit_points=pts),
+        result_row("870", 870, fit_points=pts[:1])], fitted_utc=T0)
+    conn = storeread.open_readonly(db_path)
+    try:
+        got = storeread.fit_points(conn, "2025-03-21", "am", "500")
+        assert [(g["measurement_id"], g["role"], g["reason"]) for g in got] == [
+            (ids[0], "used", None), (ids[1], "rejected", None), (ids[2], "screened", "cloudy")]
+        assert got[1]["y"] is None and got[0]["x"] == 2.0  # NaN is stored as NULL
+        assert storeread.fit_points(conn, "2025-03-21", "pm", "500") == []
+
+        # A re-fit of 500 nm replaces its points, even when it brings none; 870 stays.
+        store.save_session_results("2025-03-21", "am", [result_row(
+            "500", 500, fit_points=[dict(pts[0], role="outside")])], fitted_utc=T0)
+        got = storeread.fit_points(conn, "2025-03-21", "am", "500")
+        assert [(g["measurement_id"], g["role"]) for g in got] == [(ids[0], "outside")]
+        store.save_session_results("2025-03-21", "am", [result_row("500", 500)],
+                                   fitted_utc=T0)
+        assert storeread.fit_points(conn, "2025-03-21", "am", "500") == []
+        assert len(storeread.fit_points(conn, "2025-03-21", "am", "870")) == 1
+
+        # A point of an unknown measurement fails the foreign key: the result row of
+        # that save is not written either.
+        bad = dict(pts[0], measurement_id=9999)
+        with pytest.raises(sqlite3.IntegrityError):
+            store.save_session_results("2025-03-21", "am", [result_row(
+                "870", 870, v0=9.9, fit_points=[bad])], fitted_utc=T0)
+        assert storeread.results_between(conn, "2025-03-21", "2025-03-21")[1]["v0"] == 1.5
+        assert len(storeread.fit_points(conn, "2025-03-21", "am", "870")) == 1
+    finally:
+        conn.close()
+
+
+def test_fit_points_refuse_bad_records(store):
+    mid = store.record_measurement(make_record(0, session="am"))
+    ok = {"measurement_id": mid, "x": 2.0, "y": 0.3, "role": "used", "reason": None}
+    for change, message in (({"role": "kept"}, "has role 'kept'"),
+                            ({"role": "screened"}, "screening key as its reason"),
+                            ({"reason": "cloudy"}, "screening key as its reason"),
+                            ({"measurement_id": None}, "no measurement_id")):
+        with pytest.raises(ValueError, match=message):
+            store.save_session_results("2025-03-21", "am", [result_row(
+                "500", 500, fit_points=[dict(ok, **change)])], fitted_utc=T0)
+    assert count(store.conn, "session_results") == 0
+
+
+def test_fit_points_reader_on_a_store_without_the_table(store, db_path):
+    # A store written before the fit_points migration: the reader says so with None,
+    # and the writer adds the table when it next opens the store.
+    store.conn.execute("DROP TABLE fit_points")
+    store.conn.execute("DELETE FROM _sqlite_migrations WHERE name = 'm003_fit_points'")
+    store.conn.commit()
+    conn = storeread.open_readonly(db_path)
+    try:
+        assert storeread.fit_points(conn, "2025-03-21", "am", "500") is None
+        Store.open(db_path).close()
+        assert storeread.fit_points(conn, "2025-03-21", "am", "500") == []
+    finally:
+        conn.close()
 
 
 def test_latest_results_of_an_empty_store(store, db_path):
