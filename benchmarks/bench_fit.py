@@ -37,6 +37,7 @@ sys.path.insert(0, str(ROOT))
 from daemon.langley import WINDOW_EDGE_TOLERANCE, fit_session  # noqa: E402
 from daemon.sessionfit import (  # noqa: E402
     ChannelSeries,
+    apply_day_check,
     drift_per_hour,
     extinction_corrections,
     fit_series,
@@ -102,11 +103,15 @@ def accuracy(n_seeds: int, n_days: int) -> None:
         n_sessions = 0
         for seed in range(n_seeds):
             for day in days(n_days):
+                fitted = []
                 for session in ("am", "pm"):
                     s = simulate_session(day, session, scenario, seed)
                     n_sessions += 1
                     series = series_of(s, config)
-                    rows = fit_series(series, config, s.date, session)
+                    fitted.append((s, series, fit_series(series, config, s.date, session)))
+                # the afternoon fit's same-day check, as in the service
+                apply_day_check(fitted[0][2], fitted[1][2], config.fit)
+                for s, series, rows in fitted:
                     for r in rows:
                         truth = s.v0_1au_true[r["channel"]]
                         others = comparison_v0(series[r["channel"]], channels[r["channel"]],

@@ -108,6 +108,9 @@ class FitSettings:
     campaign_min_sessions: int = 3  # accepted sessions a calibration needs per channel
     campaign_clip_sigma: float = 3.0  # sessions further than this from the mean are flagged
     tau_drift_per_hour: float = 0.0007  # unseen optical-depth drift allowed for, at 500 nm
+    # Same-day morning and afternoon V0 at 1 AU may differ by this fraction (or by three
+    # combined uncertainties, when larger) before both are refused as drifting.
+    max_am_pm_difference: float = 0.01
 
 
 @dataclass(frozen=True)
@@ -374,6 +377,7 @@ def _read_fit(s: _Section | None) -> FitSettings:
         campaign_clip_sigma=s.number("campaign_clip_sigma", 1.0, 10.0, default=3.0),
         tau_drift_per_hour=s.number("tau_drift_per_hour", 0.0, 0.1, default=0.0007,
                                     unit="per hour"),
+        max_am_pm_difference=s.number("max_am_pm_difference", 0.001, 0.5, default=0.01),
     )
     if fit.airmass_max <= fit.airmass_min:
         raise ConfigError(f"{s._key('airmass_max')}: {fit.airmass_max:g} must be above "

@@ -36,7 +36,13 @@ import numpy as np
 
 from daemon import solar
 from daemon.config import Config
-from daemon.sessionfit import ChannelSeries, contract, fit_series, temperature_corrected
+from daemon.sessionfit import (
+    ChannelSeries,
+    apply_day_check,
+    contract,
+    fit_series,
+    temperature_corrected,
+)
 
 REQUIRED_COLUMNS = ("time_utc", "channel", "signal")
 OPTIONAL_COLUMNS = ("pressure_hpa", "detector_temp_c")
@@ -233,6 +239,10 @@ def refit_readings(readings: list[Reading], config: Config) -> dict[str, Any]:
                             if k in ("date", "session", "channel", "notes", "tau_aerosol",
                                      "tau_rayleigh", "tau_ozone", "residual_sd",
                                      "e0_1au_w_m2_nm", "astm_ratio")})
+    for date in sorted({r["date"] for r in results}):
+        am = [r for r in results if r["date"] == date and r["session"] == "am"]
+        pm = [r for r in results if r["date"] == date and r["session"] == "pm"]
+        apply_day_check(am, pm, config.fit)
     return {"results": results, "details": details, "readings": len(readings)}
 
 

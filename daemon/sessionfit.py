@@ -32,12 +32,12 @@ from typing import Any
 import numpy as np
 
 from daemon import solar
-from daemon.config import Channel, Config
+from daemon.config import Channel, Config, FitSettings
 from daemon.lamp import lamp_check, lamp_note
 from daemon.langley import FitResult, fit_coordinates, fit_session, v0_at_1au
 from daemon.ozone import channel_cross_section_cm2, ozone_optical_depth
 from daemon.store import FIT_SESSIONS, SessionPoint, Store
-from daemon.storeread import FIT_POINT_ROLES, RESULT_KEYS, check_plan_date
+from daemon.storeread import FIT_POINT_ROLES, RESULT_KEYS, check_plan_date, results_between
 
 log = logging.getLogger(__name__)
 
@@ -650,6 +650,58 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
     return row
 
 
+# --------------------------------------------------------------------------- same day
+
+def day_disagreements(am_rows: Sequence[Mapping[str, Any]], pm_rows: Sequence[Mapping[str, Any]],
+                      settings: FitSettings) -> dict[str, str]:
+    """Channels whose morning and afternoon V0 at 1 AU disagree, with the reason.
+
+    A steady drift of the optical depth through a half-day keeps the Langley plot
+    straight and moves V0 without a trace in that session's residuals (Shaw 1983, from
+    memory); the same day's other session, with the drift running the other way
+    against air mass, is the check a single session cannot make. The allowed difference
+    is ``settings.max_am_pm_difference`` or three combined stated uncertainties,
+    whichever is larger. A pair is compared when at least one session is accepted and
+    both have a V0 (a session refused for its residuals still testifies against the
+    other); the caller refuses whichever of the two was accepted.
+    """
+    am = {r["channel"]: r for r in am_rows}
+    out = {}
+    for pm in pm_rows:
+        a = am.get(pm["channel"])
+        if a is None or not (pm["accepted"] or a["accepted"]):
+            continue
+        v_am, v_pm = a["v0_1au"], pm["v0_1au"]
+        u_am, u_pm = a["v0_rel_unc"] or 0.0, pm["v0_rel_unc"] or 0.0
+        if not (v_am and v_pm and math.isfinite(v_am) and math.isfinite(v_pm)):
+            continue
+        diff = v_pm / v_am - 1.0
+        limit = max(settings.max_am_pm_difference, 3.0 * math.hypot(u_am, u_pm))
+        if abs(diff) > limit:
+            out[pm["channel"]] = (
+                f"morning and afternoon V0 at 1 AU differ by {100 * diff:+.2f} % (allowed "
+                f"{100 * limit:.2f} %): the optical depth drifted during the day")
+    return out
+
+
+def apply_day_check(am_rows: Sequence[dict[str, Any]], pm_rows: Sequence[dict[str, Any]],
+                    settings: FitSettings) -> dict[str, str]:
+    """Refuse, in place, both sessions of every channel whose morning and afternoon
+    disagree (:func:`day_disagreements`); return the reasons by channel. A row already
+    refused keeps its first reason and gets this one after it."""
+    found = day_disagreements(am_rows, pm_rows, settings)
+    for row in (*am_rows, *pm_rows):
+        reason = found.get(row["channel"])
+        if reason is None:
+            continue
+        if row["accepted"]:
+            row["accepted"] = False
+            row["reasons"] = [reason, *row.get("notes", ())]
+        else:
+            row["reasons"] = [*row["reasons"], reason]
+    return found
+
+
 # --------------------------------------------------------------------------- store
 
 def fit_stored_session(store: Store, config: Config, plan_date: str | _dt.date, session: str,
@@ -687,6 +739,12 @@ def fit_stored_session(store: Store, config: Config, plan_date: str | _dt.date, 
     points = store.session_points(date, session)
     series = {ch.name: screen_channel(points, ch, config) for ch in config.channels}
     rows = fit_series(series, config, date, session)
+    if session == "pm":
+        am_rows = [r for r in results_between(store.conn, date, date) if r["session"] == "am"]
+        am_accepted = {r["channel"] for r in am_rows if r["accepted"]}
+        for channel, reason in apply_day_check(am_rows, rows, config.fit).items():
+            if channel in am_accepted:  # stored this morning as accepted: no longer
+                store.refuse_session_result(date, "am", channel, reason)
     store.save_session_results(date, session, rows, fitted_utc=fitted_utc)
     _update_aod(store, config, date, session, fitted_utc)
     return [contract(r) for r in rows]

@@ -490,6 +490,23 @@ class Store:
                 [(date, session, rec["channel"]) for rec in records])
             self.db["fit_points"].insert_all(points)
 
+    def refuse_session_result(self, plan_date: str | _dt.date, session: str, channel: str,
+                              reason: str) -> None:
+        """Mark one stored session result as not accepted, with ``reason`` first among
+        its reasons (a later check, such as the same day's other session, refused it)."""
+        date = check_plan_date(plan_date)
+        with self._lock, self.db.atomic():
+            row = self.db.conn.execute(
+                "SELECT reasons, notes FROM session_results WHERE plan_date = ? AND "
+                "session = ? AND channel = ?", (date, session, channel)).fetchone()
+            if row is None:
+                raise ValueError(f"no stored result for {date} {session} channel {channel!r}")
+            reasons = [reason] + [r for r in json.loads(row[0] or "[]") if r != reason]
+            reasons += [n for n in json.loads(row[1] or "[]") if n not in reasons]
+            self.db.conn.execute(
+                "UPDATE session_results SET accepted = 0, reasons = ? WHERE plan_date = ? "
+                "AND session = ? AND channel = ?", (_dumps(reasons), date, session, channel))
+
     def save_calibration(self, created_utc: _dt.datetime, first_date: str, last_date: str,
                          site_name: str, settings: Mapping[str, Any], notes: Sequence[str],
                          channels: Iterable[Mapping[str, Any]]) -> int:
