@@ -10,7 +10,9 @@ stored as failed, and the day goes on.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
+import math
 import sqlite3
 import threading
 from dataclasses import dataclass
@@ -25,6 +27,7 @@ from daemon.store import MeasurementRecord, Store
 from drivers.interfaces import (
     Burst,
     DeviceError,
+    Housekeeping,
     LinkError,
     Radiometer,
     Tracker,
@@ -35,6 +38,14 @@ log = logging.getLogger(__name__)
 
 LINK_FAULT_KINDS = ("retries", "timeouts", "crc_errors", "stale", "garbage", "reconnects",
                     "device_errors")
+# Housekeeping outside these bounds is a sensor fault or a firmware sentinel (-999.9),
+# not weather: it is stored as unknown, never used (common practice, no source; the
+# pressure bounds match the offline refit's).
+PLAUSIBLE_HOUSEKEEPING = {
+    "detector_temp_c": (-60.0, 90.0), "case_temp_c": (-60.0, 90.0),
+    "ambient_temp_c": (-60.0, 60.0), "supply_v": (0.0, 60.0), "humidity_pct": (0.0, 100.0),
+    "pressure_hpa": (300.0, 1100.0),
+}
 POLL_S = 1.0  # tracker state polling interval while waiting for a lock
 SLEW_TIMEOUT_S = 180.0  # a full-circle slew of a slow tracker, with margin
 
@@ -155,6 +166,12 @@ class Station:
             self.event("warning", kind, message, {"error": type(exc).__name__})
             rec = self._failed_record(target, plan_date, str(exc))
             ok = False
+        except Exception as exc:  # a bug must cost one target, not the day
+            log.exception("%s: acquisition failed", what)
+            message = f"{what}: acquisition failed: {exc!r}"
+            self.event("error", "acquisition_error", message, {"error": type(exc).__name__})
+            rec = self._failed_record(target, plan_date, f"acquisition failed: {exc!r}")
+            ok = False
         finally:
             self.record_link_faults()
         try:
@@ -180,7 +197,7 @@ class Station:
         dark = (self.radiometer.read_dark(acq.dark_samples) if acq.dark_samples
                 else Burst(samples=(), duration_s=0.0, saturated=()))
         self._check_stop()
-        housekeeping = self.radiometer.read_housekeeping()
+        housekeeping = self._plausible(self.radiometer.read_housekeeping())
         after = self.tracker.state()
         self._check_shape(burst, dark)
         mean_time = started + timedelta(seconds=burst.duration_s / 2)
@@ -197,6 +214,22 @@ class Station:
             sun=burst.samples, dark=dark.samples, saturated=burst.saturated,
             housekeeping=housekeeping,
         )
+
+    def _plausible(self, hk: Housekeeping) -> Housekeeping:
+        """Housekeeping with implausible values replaced by unknown (NaN, or None for
+        the pressure), each replacement recorded as an event."""
+        bad = {}
+        for name, (lo, hi) in PLAUSIBLE_HOUSEKEEPING.items():
+            value = getattr(hk, name)
+            if value is not None and not (math.isfinite(value) and lo <= value <= hi):
+                bad[name] = value
+        if not bad:
+            return hk
+        what = ", ".join(f"{k} {v!r}" for k, v in bad.items())
+        self.event("warning", "housekeeping_implausible",
+                   f"housekeeping out of range, stored as unknown: {what}", bad)
+        fixes = {k: (None if k == "pressure_hpa" else math.nan) for k in bad}
+        return dataclasses.replace(hk, **fixes)
 
     def _channel_names(self) -> tuple[str, ...]:
         return tuple(ch.name for ch in self.config.channels)

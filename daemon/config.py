@@ -21,6 +21,9 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import yaml
 
 EX_CONFIG = 78  # sysexits.h: configuration error
+# The longest one command may go unanswered, all retries included. With the slew and
+# lock limits this keeps a whole target well inside the unit's WatchdogSec (600 s).
+MAX_EXCHANGE_S = 20.0
 
 
 class ConfigError(Exception):
@@ -302,6 +305,12 @@ def _read_port(s: _Section) -> Port:
         timeout_s=s.number("timeout_s", 0.05, 60, default=2.0, unit="s"),
         retries=s.integer("retries", 0, 10, default=3),
     )
+    worst = port.timeout_s * (port.retries + 1)
+    if worst > MAX_EXCHANGE_S:
+        raise ConfigError(
+            f"{s._key('timeout_s')}: {port.timeout_s:g} s x (retries {port.retries} + 1) = "
+            f"{worst:g} s for one unanswered command; allowed at most {MAX_EXCHANGE_S:g} s, "
+            "so a target never outlasts the service's watchdog")
     s.finish()
     return port
 
@@ -343,7 +352,7 @@ def _read_acquisition(s: _Section | None) -> AcquisitionSettings:
     acq = AcquisitionSettings(
         burst_samples=s.integer("burst_samples", 1, 1000, default=10),
         dark_samples=s.integer("dark_samples", 0, 1000, default=5),
-        lock_timeout_s=s.number("lock_timeout_s", 1, 600, default=30.0, unit="s"),
+        lock_timeout_s=s.number("lock_timeout_s", 1, 120, default=30.0, unit="s"),
         max_pointing_error_deg=s.number("max_pointing_error_deg", 0.01, 5, default=0.2,
                                         unit="degrees"),
     )

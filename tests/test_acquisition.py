@@ -94,3 +94,27 @@ def test_instrument_clocks_are_set_at_every_target(cfg, tmp_path):
     station.measure(target, DAY)
     station.store.close()
     assert radiometer.clock_sets and radiometer.clock_sets[-1] >= target.time_utc
+
+
+class _SentinelRadiometer(FakeRadiometer):
+    """Firmware that reports a missing sensor as -999.9."""
+
+    def read_housekeeping(self):
+        from drivers.interfaces import Housekeeping
+        return Housekeeping(-999.9, 20.0, 5.0, 12.6, 30.0, -999.9)
+
+
+def test_implausible_housekeeping_is_stored_as_unknown_and_the_burst_kept(cfg, tmp_path):
+    station = _station(cfg, tmp_path, radiometer=_SentinelRadiometer())
+    target = plan_day(cfg, DAY).targets[0]
+    station.clock.sleep_until(target.time_utc)
+    assert station.measure(target, DAY).ok
+    station.store.close()
+    db = tmp_path / "t.db"
+    (pressure,) = _rows(db, "select pressure_hpa from measurements")[0]
+    assert pressure == pytest.approx(station.pressure_hpa)  # the site's, not -999.9
+    assert _rows(db, "select detector_temp_c, pressure_hpa, case_temp_c from housekeeping") == [
+        (None, None, 20.0)]
+    assert _rows(db, "select count(*) from samples") == [(6 * 15,)]
+    (msg,) = _rows(db, "select message from events where kind = 'housekeeping_implausible'")[0]
+    assert "detector_temp_c -999.9" in msg and "pressure_hpa -999.9" in msg

@@ -85,6 +85,11 @@ BAD = [
     ("plan.targets", [], "plan.targets: expected a non-empty list, got an empty list"),
     ("plan.airmass_max", 1.5,
      "plan.airmass_max: 1.5 is below airmass_min 2; allowed airmass_min to 40"),
+    ("instrument.radiometer.retries", 10,
+     "instrument.radiometer.timeout_s: 2 s x (retries 10 + 1) = 22 s for one unanswered "
+     "command; allowed at most 20 s, so a target never outlasts the service's watchdog"),
+    ("acquisition.lock_timeout_s", 600,
+     "acquisition.lock_timeout_s: 600 is out of range; allowed 1 to 120 s"),
     ("acquisition.burst_samples", 0,
      "acquisition.burst_samples: 0 is out of range; allowed 1 to 1000"),
     ("fit.max_residual_sd", True,

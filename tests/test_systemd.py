@@ -58,3 +58,19 @@ def test_service_unit_has_the_field_settings():
                  "DeviceAllow=char-ttyACM rw", "RestrictAddressFamilies=AF_UNIX",
                  "SystemCallFilter=@system-service", "SupplementaryGroups=dialout"]:
         assert line in text, line
+
+
+def test_bench_drop_in_opens_loopback_only(tmp_path):
+    """The bench drop-in, applied to the service unit, still verifies and stays rated
+    2.0 or lower: it adds IPv4 on loopback, nothing else."""
+    unit = _installed_copy(tmp_path, "heliotroped.service")
+    drop_in = (UNITS / "heliotroped-bench.conf").read_text()
+    assert "IPAddressAllow=localhost" in drop_in and "AF_INET6" not in drop_in
+    unit.write_text(unit.read_text() + "\n" + drop_in)  # as systemd merges a drop-in
+    proc = subprocess.run([ANALYZE, "verify", str(unit)], capture_output=True, text=True,
+                          timeout=60)
+    assert proc.returncode == 0 and proc.stdout + proc.stderr == ""
+    proc = subprocess.run([ANALYZE, "security", "--offline=yes", str(unit)],
+                          capture_output=True, text=True, timeout=60)
+    found = re.search(r"Overall exposure level for \S+: (\d+\.\d+)", proc.stdout)
+    assert found and float(found.group(1)) <= 2.0
