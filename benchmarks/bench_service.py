@@ -59,8 +59,9 @@ def memory_over_month(days: int) -> tuple[float, float]:
     return after_one, after_all
 
 
-def idle_cpu(idle_s: float) -> float:
-    """Percent of one core used by heliotroped over ``idle_s`` seconds with no target."""
+def idle_cpu(idle_s: float) -> tuple[float, float]:
+    """Percent of one core used by heliotroped over ``idle_s`` seconds with no target,
+    and the seconds from SIGTERM to its exit."""
     with tempfile.TemporaryDirectory() as tmp, simulator("pico-sereno-clear", 1,
                                                          "tcp:0") as ends:
         data = yaml.safe_load(CONFIG.read_text())
@@ -90,10 +91,12 @@ def idle_cpu(idle_s: float) -> float:
             time.sleep(idle_s)
             c1, t1 = cpu_s(), time.monotonic()
         finally:
+            s0 = time.monotonic()
             proc.terminate()
             proc.wait(timeout=30)
+            stop_s = time.monotonic() - s0
             sock.close()
-    return 100.0 * (c1 - c0) / (t1 - t0)
+    return 100.0 * (c1 - c0) / (t1 - t0), stop_s
 
 
 class _Timed:
@@ -173,9 +176,11 @@ def main() -> int:
           f"(growth {growth:+.1f} MB; budget 5 MB)")
     ok &= growth < 5.0
 
-    cpu = idle_cpu(args.idle_s)
+    cpu, stop_s = idle_cpu(args.idle_s)
     print(f"idle service CPU over {args.idle_s:g} s: {cpu:.2f} % of one core (budget 1 %)")
-    ok &= cpu < 1.0
+    print(f"SIGTERM to exit (parks the tracker, closes ports and store): {stop_s:.2f} s "
+          "(budget 5 s)")
+    ok &= cpu < 1.0 and stop_s < 5.0
 
     delays = target_latency(args.targets)
     if delays:
@@ -185,6 +190,7 @@ def main() -> int:
         print("latency: no burst started (is the simulator answering?)")
         ok = False
     print(json.dumps({"rss_1_day_mb": one, "rss_month_mb": month, "idle_cpu_pct": cpu,
+                      "stop_s": stop_s,
                       "latency_s": delays}))
     return 0 if ok else 1
 

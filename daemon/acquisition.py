@@ -185,9 +185,14 @@ class Station:
     def _acquire(self, target: PlannedTarget, plan_date: date) -> MeasurementRecord:
         acq = self.config.acquisition
         self.sync_clocks()
-        aim = solar.geometry_at(self.clock.now(), self.config.site, self.pressure_hpa)
-        self.tracker.goto(aim.azimuth_deg, aim.apparent_elevation_deg)
-        self.tracker.follow_sun(True)
+        state = self.tracker.state()
+        # A tracker already locked on the sun (between the targets of a session) is left
+        # alone: a new slew would only cost lock time.
+        if not (state.mode == "tracking" and state.locked
+                and state.error_deg <= acq.max_pointing_error_deg):
+            aim = solar.geometry_at(self.clock.now(), self.config.site, self.pressure_hpa)
+            self.tracker.goto(aim.azimuth_deg, aim.apparent_elevation_deg)
+            self.tracker.follow_sun(True)
         self._wait_for_lock()
         self._check_stop()
         self.sync_clocks()

@@ -20,7 +20,7 @@ BIN_WIDTH_NM = 10
 #: Ozone absorption cross-section, 10-nm bin means [cm^2 molecule^-1] at 233 K, keyed
 #: by the bin's lower edge [nm]. Data set: Serdyuchenko, A. et al. (2014), Atmos. Meas.
 #: Tech. 7:625-636, and Gorshelev, V. et al. (2014), Atmos. Meas. Tech. 7:609-624.
-#: Status: "C" bin means as listed in REFERENCES.md (440, 490, 500, 600, 670);
+#: Status: "C" bin means as listed in docs/REFERENCES.md (440, 490, 500, 600, 670);
 #: "S" secondary 10-nm means of the same data set, not checked against the original
 #: files; "M" from memory, order of magnitude only (weak Wulf bands: below 3e-4 in
 #: optical depth at 260 DU, so an error there is harmless).

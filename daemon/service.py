@@ -203,7 +203,10 @@ class Service:
     # ------------------------------------------------------------------ life cycle
 
     def stop(self, *_args) -> None:
-        """Signal handler: stop taking jobs, interrupt waits, let ``run`` clean up."""
+        """Stop taking jobs, interrupt waits, let ``run`` clean up. Idempotent.
+
+        Called from an ordinary thread, never from a signal handler: stopping the
+        scheduler takes locks that the interrupted main thread may be holding."""
         self.station.stopping.set()
         self.clock.wake()
         if self.scheduler.running:
@@ -231,7 +234,8 @@ class Service:
                                next_run_time=self.clock.now(), misfire_grace_time=None,
                                coalesce=True)
         sd_notify("READY=1")
-        self.scheduler.start()  # blocks until stop()
+        if not self.station.stopping.is_set():
+            self.scheduler.start()  # blocks until stop()
         sd_notify("STOPPING=1")
         if self._drain():
             self.station.park()
@@ -252,6 +256,21 @@ def _describe(item) -> str:
     return f"{item.kind} at {item.time_utc:%H:%M:%S} UTC"
 
 
+STOP_SIGNALS = {signal.SIGTERM, signal.SIGINT}
+
+
+def _stop_on_signal(service: Service, finished: threading.Event) -> None:
+    """Wait for SIGTERM or SIGINT in this thread (they are blocked everywhere else) and
+    stop the service; repeat until ``run`` has returned, in case the scheduler was still
+    starting when the signal came."""
+    signal.sigwait(STOP_SIGNALS)
+    log.info("stop requested by signal")
+    while True:
+        service.stop()
+        if finished.wait(0.5):
+            return
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(prog="heliotroped",
                                 description="heliotrope acquisition service (systemd starts it)")
@@ -260,6 +279,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--log-level", default="INFO",
                    choices=["DEBUG", "INFO", "WARNING", "ERROR"])
     args = p.parse_args(argv)
+    # Signals are taken synchronously by one thread (see _stop_on_signal); threads
+    # started from here on inherit the mask.
+    signal.pthread_sigmask(signal.SIG_BLOCK, STOP_SIGNALS)
     logging.basicConfig(level=args.log_level,
                         format="%(levelname)s %(name)s: %(message)s")
     try:
@@ -280,11 +302,13 @@ def main(argv: list[str] | None = None) -> int:
     radiometer = open_radiometer(r.url, r.baudrate, r.timeout_s, r.retries)
     tracker = open_tracker(t.url, t.baudrate, t.timeout_s, t.retries)
     service = Service(config, store, radiometer, tracker)
-    signal.signal(signal.SIGTERM, service.stop)
-    signal.signal(signal.SIGINT, service.stop)
+    finished = threading.Event()
+    threading.Thread(target=_stop_on_signal, args=(service, finished), daemon=True,
+                     name="signals").start()
     try:
         service.run()
     finally:
+        finished.set()
         radiometer.close()
         tracker.close()
         store.close()

@@ -605,7 +605,7 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
 
     ``V = V0 exp(-tau_R m - tau_O3 m_O3 - tau_a m - a (u m)^b)`` for a water-vapour
     band (water-vapour absorption as a power of the slant column, b about 0.5-0.6;
-    REFERENCES.md, from memory), so ``ln V + tau_R m + tau_O3 m_O3 + tau_a m`` is a
+    docs/REFERENCES.md, from memory), so ``ln V + tau_R m + tau_O3 m_O3 + tau_a m`` is a
     straight line in ``m^b`` with intercept ln V0. ``tau_a`` comes from the session's
     accepted window channels by the Angstrom law.
     """

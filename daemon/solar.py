@@ -354,7 +354,7 @@ def ozone_airmass(apparent_zenith_deg: ArrayLike, station_height_m: float,
     ----------
     Komhyr, W. D. (1980), "Operations handbook - ozone observations with a Dobson
     spectrophotometer", WMO Global Ozone Research and Monitoring Project Report
-    No. 6 (citation from memory; formula as given in REFERENCES.md).
+    No. 6 (citation from memory; formula as given in docs/REFERENCES.md).
     """
     r_km = float(station_height_m) / 1000.0
     h_km = _positive("layer_height_km", layer_height_km, "km")

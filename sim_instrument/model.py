@@ -103,7 +103,7 @@ MIN_LOCK_SUN_ELEVATION_DEG = 0.0  # the sun sensor loses the sun at the horizon
 
 SUN_TABLE_STEPS = 60  # minutes per tracker sun table (one UTC hour)
 DARK_REFERENCE_C = 25.0  # the scenario's dark_v is the dark signal at this temperature
-SUN_RADIUS_DEG = 0.2665  # the solar disc is 0.533 deg wide at 1 AU (REFERENCES.md, F)
+SUN_RADIUS_DEG = 0.2665  # the solar disc is 0.533 deg wide at 1 AU (docs/REFERENCES.md, F)
 
 
 def field_of_view_fraction(offset_deg: float, field_of_view_deg: float) -> float:

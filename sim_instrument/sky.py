@@ -31,17 +31,17 @@ import pvlib
 
 STANDARD_PRESSURE_HPA = 1013.25
 MOLECULES_PER_DU_CM2 = 2.687e16  # 1 Dobson unit, molecules cm^-2 (definition of the DU)
-EARTH_RADIUS_KM = 6371.229  # Komhyr (1980), as quoted in REFERENCES.md
+EARTH_RADIUS_KM = 6371.229  # Komhyr (1980), as quoted in docs/REFERENCES.md
 OZONE_LAYER_HEIGHT_KM = 22.0  # effective height of the ozone layer, Komhyr (1980)
 
 # Ozone absorption cross-section, 10-nm bin means [cm^2 molecule^-1], keyed by the
 # bin's lower edge [nm]. Source of the data: Serdyuchenko, A. et al. (2014), Atmos.
 # Meas. Tech. 7:625-636, and Gorshelev, V. et al. (2014), Atmos. Meas. Tech.
 # 7:609-624, at 233 K.
-#   "C" bins are the 10-nm means listed in REFERENCES.md (440, 490, 500, 600, 670).
+#   "C" bins are the 10-nm means listed in docs/REFERENCES.md (440, 490, 500, 600, 670).
 #   "S" bins are 10-nm means of the same 233 K data set as tabulated (in m^2) in
 #       E. Bruneton's precomputed atmospheric scattering demo (2017, demo.cc,
-#       kOzoneCrossSection); its 440/490/500/600/670 bins agree with REFERENCES.md,
+#       kOzoneCrossSection); its 440/490/500/600/670 bins agree with docs/REFERENCES.md,
 #       the others were not checked against the original files.
 #   "M" bins are from memory (order of magnitude only: the Wulf bands are weak,
 #       and at 260 DU these give optical depths below 3e-4).
@@ -240,7 +240,7 @@ def ozone_airmass(zenith_deg: float | np.ndarray, station_height_km: float = 0.0
     ----------
     Komhyr, W. D. (1980), "Operations handbook - ozone observations with a Dobson
     spectrophotometer", WMO Global Ozone Research and Monitoring Project Report
-    No. 6 (citation from memory; formula as in REFERENCES.md).
+    No. 6 (citation from memory; formula as in docs/REFERENCES.md).
     """
     z = np.radians(np.asarray(zenith_deg, dtype=float))
     shell = EARTH_RADIUS_KM + layer_height_km
@@ -266,7 +266,7 @@ def earth_sun_factor_spencer(day_of_year: float | np.ndarray) -> float | np.ndar
     References
     ----------
     Spencer, J. W. (1971), "Fourier series representation of the position of the
-    sun", Search 2(5):172 (citation from memory; coefficients as in REFERENCES.md).
+    sun", Search 2(5):172 (citation from memory; coefficients as in docs/REFERENCES.md).
     """
     g = 2.0 * np.pi * (np.asarray(day_of_year, dtype=float) - 1.0) / 365.0
     f = (1.000110 + 0.034221 * np.cos(g) + 0.001280 * np.sin(g)

@@ -25,11 +25,11 @@ DAY = dt.date(2027, 2, 15)
 
 def test_aerosol_optical_depth_of_noise_free_beer_lambert():
     # Beer-Lambert with Rayleigh (Bodhaine at 645 hPa), ozone on the Komhyr air mass
-    # and aerosol on the Kasten-Young air mass (REFERENCES.md).
+    # and aerosol on the Kasten-Young air mass (docs/REFERENCES.md).
     m = float(solar.relative_airmass(75.0))
     m_o3 = float(solar.ozone_airmass(75.0, 3650.0))
     tau_r = float(solar.rayleigh_optical_depth(500.0, 645.0))
-    assert tau_r == pytest.approx(0.14335 * 645 / 1013.25, rel=1e-4)  # REFERENCES.md table
+    assert tau_r == pytest.approx(0.14335 * 645 / 1013.25, rel=1e-4)  # docs/REFERENCES.md table
     tau_o3, tau_a, v0, f = 0.0083, 0.0312, 3.1, 1.0296
     v = v0 * f * math.exp(-tau_r * m - tau_o3 * m_o3 - tau_a * m)
     total, aerosol = aerosol_optical_depth(v, v0, f, m, m_o3, tau_r, tau_o3)
@@ -40,7 +40,7 @@ def test_aerosol_optical_depth_of_noise_free_beer_lambert():
 
 
 def test_a_v0_error_gives_an_aod_error_of_e_over_m():
-    # A relative error e in V0 gives an optical-depth error e/m (REFERENCES.md, F).
+    # A relative error e in V0 gives an optical-depth error e/m (docs/REFERENCES.md, F).
     m = 3.0
     _, a = aerosol_optical_depth(1.0, 2.0, 1.0, m, m, 0.1, 0.0)
     _, b = aerosol_optical_depth(1.0, 2.0 * 1.01, 1.0, m, m, 0.1, 0.0)

@@ -166,7 +166,7 @@ def test_calibration_is_stored_and_gives_aerosol_optical_depth(campaign_store):
             r["aod"] - aod_truth[r["measurement_id"]][r["channel"]])
         assert r["angstrom_channels"] == ["440", "870"]
     for name, e in errors.items():
-        # A relative V0 error e gives an optical-depth error e/m (REFERENCES.md); the
+        # A relative V0 error e gives an optical-depth error e/m (docs/REFERENCES.md); the
         # ozone column is off by up to ~8 DU (3e-4 at 500 nm); allow 0.002.
         assert np.max(np.abs(e)) < 0.002, name
     # Angstrom exponent: the simulated days draw alpha from 0.8 to 1.6.

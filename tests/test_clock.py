@@ -35,10 +35,12 @@ def test_sim_clock_accepts_other_zones_and_refuses_naive_times():
 def test_real_clock_is_aware_utc_and_wakes_early():
     clock = RealClock()
     assert clock.now().tzinfo is UTC
-    threading.Timer(0.05, clock.wake).start()
-    m0 = clock.monotonic()
-    clock.sleep_until(clock.now() + timedelta(hours=1))  # would be an hour without wake()
-    assert clock.monotonic() - m0 < 600  # returned: woken, not an hour later
+    sleeper = threading.Thread(target=clock.sleep_until,
+                               args=(clock.now() + timedelta(hours=1),), daemon=True)
+    sleeper.start()
+    clock.wake()
+    sleeper.join(timeout=60)  # a hang guard: without wake() this is an hour
+    assert not sleeper.is_alive()
 
 
 def test_step_detector_sees_steps_of_the_wall_clock_only():

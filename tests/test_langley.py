@@ -235,14 +235,14 @@ def test_lag1_autocorrelation_of_known_series():
 # --------------------------------------------------------------------------- 1 AU
 
 def spencer_factor(doy: int) -> float:
-    # Spencer (1971), Search 2(5):172 (citation from memory), as in REFERENCES.md.
+    # Spencer (1971), Search 2(5):172 (citation from memory), as in docs/REFERENCES.md.
     g = 2 * math.pi * (doy - 1) / 365
     return (1.000110 + 0.034221 * math.cos(g) + 0.001280 * math.sin(g)
             + 0.000719 * math.cos(2 * g) + 0.000077 * math.sin(2 * g))
 
 
 def test_v0_at_1au_makes_january_and_july_agree():
-    # Spencer's (r0/r)^2: 1.03508 on day 3 and 0.96659 on day 186 (REFERENCES.md, F).
+    # Spencer's (r0/r)^2: 1.03508 on day 3 and 0.96659 on day 186 (docs/REFERENCES.md, F).
     jan, jul = spencer_factor(3), spencer_factor(186)
     assert jan == pytest.approx(1.03508, abs=1e-5) and jul == pytest.approx(0.96659, abs=1e-5)
     v0_1au = 1.5
@@ -275,11 +275,11 @@ def _airmasses():
 
 def test_ozone_correction_makes_noise_free_data_exact():
     # Beer-Lambert with the ozone on its own air mass (Komhyr 1980 layer at 22 km,
-    # REFERENCES.md); tau_O3 = 500 nm band at 260 DU from Serdyuchenko et al. (2014)
-    # bin means (REFERENCES.md: 9.02e-22 and 1.48e-21 cm^2, 2.687e16 cm^-2 per DU).
+    # docs/REFERENCES.md); tau_O3 = 500 nm band at 260 DU from Serdyuchenko et al. (2014)
+    # bin means (docs/REFERENCES.md: 9.02e-22 and 1.48e-21 cm^2, 2.687e16 cm^-2 per DU).
     m, m_o3 = _airmasses()
     tau_o3 = 0.5 * (9.02e-22 + 1.48e-21) * 260 * 2.687e16
-    tau_rest = 0.0990 + 0.02  # Bodhaine Rayleigh at 700 hPa (REFERENCES.md) plus aerosol
+    tau_rest = 0.0990 + 0.02  # Bodhaine Rayleigh at 700 hPa (docs/REFERENCES.md) plus aerosol
     v0 = 1.9
     v = v0 * np.exp(-tau_rest * m - tau_o3 * m_o3)
     plain = fit_session(m, v, SETTINGS)
@@ -371,7 +371,7 @@ def test_an_unseen_drift_moves_v0_by_its_sensitivity_and_the_uncertainty_covers_
 # --------------------------------------------------------------------------- water vapour
 
 def test_modified_langley_recovers_v0_of_a_water_vapour_band():
-    # Water-vapour transmission as exp(-a (u m)^b), b about 0.5-0.6 (REFERENCES.md,
+    # Water-vapour transmission as exp(-a (u m)^b), b about 0.5-0.6 (docs/REFERENCES.md,
     # from memory): ln V plus the known extinctions is a line in m^b.
     m, _ = _airmasses()
     b, a_u_b, tau_known = 0.6, 0.25, 0.03

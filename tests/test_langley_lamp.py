@@ -17,7 +17,7 @@ from tests.langley_sessions import pico_config, simulate_session
 
 
 @pytest.mark.parametrize("wavelength_nm, box_mean", [
-    # ASTM G173-03 extraterrestrial column, 10-nm box means (REFERENCES.md, F).
+    # ASTM G173-03 extraterrestrial column, 10-nm box means (docs/REFERENCES.md, F).
     (380, 1.0873), (440, 1.8263), (500, 1.9191), (675, 1.5093), (870, 0.9497),
     (940, 0.8397), (1020, 0.7034),
 ])

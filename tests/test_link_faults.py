@@ -192,13 +192,12 @@ def test_a_reboot_goes_silent_then_comes_back_with_fresh_counters(scenario, endp
             rad.read_housekeeping()
         assert rad.status().requests >= 4
         rad.set_clock(at_solar(1.0))  # crosses the reboot: the next request is lost
-        started = time.monotonic()
         with pytest.raises(LinkError):
             rad.read_housekeeping()
         rad.transport.retries = 8  # rides out the rest of the boot
         status = rad.status()
-        assert time.monotonic() - started >= 0.8 - 0.05
         c = rad.transport.counters
+        assert c.timeouts >= 2  # the device was silent while it booted
         rad.close()
         truth = server.station.truth()
     assert status.requests <= 3  # counted since the reboot

@@ -22,11 +22,11 @@ T_AM = dt.datetime(2025, 3, 21, 13, 0, tzinfo=UTC)
 T_PM = dt.datetime(2025, 3, 21, 22, 0, tzinfo=UTC)
 AIRMASS = np.arange(2.0, 6.0001, 0.25)  # 17 targets, as the default plan
 DARK_V = 0.0042
-TEMP_COEFF = 0.003  # per K: near-infrared silicon is 0.1-0.5 %/K (REFERENCES.md, from memory)
+TEMP_COEFF = 0.003  # per K: near-infrared silicon is 0.1-0.5 %/K (docs/REFERENCES.md, from memory)
 
 
 def spencer_factor(doy: int) -> float:
-    # (r0/r)^2 of Spencer (1971), Search 2(5):172 (citation from memory; REFERENCES.md).
+    # (r0/r)^2 of Spencer (1971), Search 2(5):172 (citation from memory; docs/REFERENCES.md).
     g = 2 * math.pi * (doy - 1) / 365
     return (1.000110 + 0.034221 * math.cos(g) + 0.001280 * math.sin(g)
             + 0.000719 * math.cos(2 * g) + 0.000077 * math.sin(2 * g))
@@ -35,7 +35,7 @@ def spencer_factor(doy: int) -> float:
 ES_FACTOR = spencer_factor(80)  # 21 March
 
 # Pico Sereno Station channels with invented V0 at 1 AU and total optical depths
-# (the Rayleigh part near Bodhaine et al. 1999 at about 650 hPa, REFERENCES.md).
+# (the Rayleigh part near Bodhaine et al. 1999 at about 650 hPa, docs/REFERENCES.md).
 TRUTH = {
     "380": (0.9500, 0.33), "440": (1.4200, 0.19), "500": (1.6500, 0.12),
     "675": (1.3100, 0.06), "870": (1.1200, 0.03), "1020": (0.8800, 0.025),
@@ -263,7 +263,7 @@ def test_ozone_air_mass_correction_removes_the_500_and_675_nm_bias(tmp_path):
 
 def test_pressure_change_is_normalised_or_fails_the_blue_channels(tmp_path):
     # Rayleigh optical depth scales with pressure (Bodhaine et al. 1999, eq. 30 and the
-    # p/1013.25 scaling, REFERENCES.md). A 6 hPa fall through the afternoon tilts the
+    # p/1013.25 scaling, docs/REFERENCES.md). A 6 hPa fall through the afternoon tilts the
     # 380 nm Langley plot; the BSRN manual (McArthur 2005, sec. 7.4.2.1) asks for
     # normalisation or dropping channels below 500 nm when p moves more than 1 hPa.
     from daemon import solar
@@ -307,7 +307,7 @@ def _water_config():
 
 
 def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
-    # Water-vapour transmission exp(-a (u m)^b), b = 0.6 (REFERENCES.md, from memory);
+    # Water-vapour transmission exp(-a (u m)^b), b = 0.6 (docs/REFERENCES.md, from memory);
     # the aerosol at 940 nm follows the Angstrom law between 870 and 1020 nm. Schmid
     # and Wehrli (1995) repeat the 0.94 um V0 to 1.0 % with a modified Langley.
     from daemon import solar
@@ -429,7 +429,7 @@ def test_fit_points_mark_a_cloud_pulled_point_rejected_and_carry_the_fitted_ln_v
             rej = pts[ids[6]]
             assert rej["y"] - (ln_v0 - r["tau"] * rej["x"]) == pytest.approx(-0.03, abs=1e-3)
         # y is ln V plus the ozone air-mass correction tau_O3 (m_O3 - m). At 675 nm the
-        # 670-680 nm bin of Serdyuchenko et al. (2014) gives 3.96e-5 per DU (REFERENCES.md),
+        # 670-680 nm bin of Serdyuchenko et al. (2014) gives 3.96e-5 per DU (docs/REFERENCES.md),
         # so 260 DU give tau_O3 = 0.0103.
         tau_o3 = 3.96e-5 * 260
         recs = {mid: rec for mid, rec in zip(ids, _records_again(), strict=True)}

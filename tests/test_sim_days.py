@@ -49,7 +49,7 @@ def test_hazy_low_site_errs_more_than_the_mountain_yet_within_ten_percent(pico, 
                                                                           capsys):
     # A drifting, flickering aerosol over a low site biases the Langley V0 by percents
     # (Weihs et al. 1995: 1.2-7 % at low sites; Shaw 1983 on drifting optical depth;
-    # REFERENCES.md), while a clean, stable mountain day gives a small fraction of a
+    # docs/REFERENCES.md), while a clean, stable mountain day gives a small fraction of a
     # percent. Rule of thumb of the trade: even a mid-latitude city site, on a
     # cloud-free day, recovers V0 within about 10 % (common practice, no source).
     pico_err, bw_err = _errors(pico), _errors(brightwater)

@@ -279,7 +279,7 @@ def test_ln_v_is_linear_in_air_mass_with_slope_minus_tau(scenario):
     # stable, ozone-free day with Rayleigh and aerosol on the same (Kasten-Young) air
     # mass (common practice, no source). Independent pieces: the air mass from pvlib's
     # Kasten-Young 1989 on pvlib's SPA apparent zenith, (r0/r)^2 from pvlib's NREL SPA
-    # distance, and tau = Bodhaine 1999 at 1013.25 hPa (REFERENCES.md table, F)
+    # distance, and tau = Bodhaine 1999 at 1013.25 hPa (docs/REFERENCES.md table, F)
     # scaled to the site's 645 hPa plus the aerosol optical depth 0.02 at 500 nm.
     sc = quiet(scenario, ozone_du=0.0)
     st = locked_station(sc, when=datetime(2025, 2, 12, 13, 55, tzinfo=UTC))
@@ -308,8 +308,8 @@ def test_ln_v_is_linear_in_air_mass_with_slope_minus_tau(scenario):
 def test_ozone_rides_on_its_own_air_mass(scenario):
     # With ozone the signal follows ln V0' - (tau_R + tau_a) m_KY - tau_O3 m_O3, the
     # ozone air mass being Komhyr's (1980) thin layer at 22 km seen from 3.65 km
-    # (formula with R = 6371.229 km as in REFERENCES.md). Its air mass grows slower
-    # than Kasten-Young's (5.21 against 5.59 at z = 80 deg at sea level, REFERENCES.md,
+    # (formula with R = 6371.229 km as in docs/REFERENCES.md). Its air mass grows slower
+    # than Kasten-Young's (5.21 against 5.59 at z = 80 deg at sea level, docs/REFERENCES.md,
     # F), so a plain Langley slope lies between -(tau_R + tau_a) and -tau_total.
     st = locked_station(quiet(scenario), when=datetime(2025, 2, 12, 13, 55, tzinfo=UTC))
     for minutes in range(0, 100, 5):
@@ -482,14 +482,14 @@ def test_truth_records_every_burst_as_json(scenario):
     ch = first["channels"]["440"]
     assert ch["tau_total"] == pytest.approx(ch["tau_rayleigh"] + ch["tau_ozone"]
                                             + ch["tau_aerosol"], rel=1e-12)
-    # Rayleigh at the site: Bodhaine 1999 eq. 30 at 1013.25 hPa (REFERENCES.md, F)
+    # Rayleigh at the site: Bodhaine 1999 eq. 30 at 1013.25 hPa (docs/REFERENCES.md, F)
     # scaled to 645 hPa; ozone and aerosol from the scenario's 260 DU and tau_500.
     assert ch["tau_rayleigh"] == pytest.approx(0.24261 * 645.0 / 1013.25, abs=1e-5)
     assert ch["tau_ozone"] == pytest.approx(sky.ozone_optical_depth(440.0, 260.0), rel=1e-12)
     assert ch["tau_aerosol"] == pytest.approx(0.02 * (440.0 / 500.0) ** -1.3, rel=1e-12)
     assert first["airmass_ozone"] < first["airmass_rayleigh"]  # Komhyr below KY off zenith
     assert 2.0 < first["airmass_rayleigh"] < 3.0
-    # Mid-February (r0/r)^2, Spencer 1971 (REFERENCES.md coefficients, from memory).
+    # Mid-February (r0/r)^2, Spencer 1971 (docs/REFERENCES.md coefficients, from memory).
     assert first["earth_sun_factor"] == pytest.approx(
         sky.earth_sun_factor_spencer(43 + 15.0 / 24.0), abs=1.2e-3)
 
@@ -641,7 +641,7 @@ def test_pressure_tide_reaches_the_barometer_and_the_rayleigh_optical_depth():
     st.set_clock(_at_solar_hour(s, day, 16.0) + timedelta(seconds=60))
     st.burst(3)
     reading = st.truth()["readings"][-1]
-    # Bodhaine et al. 1999 eq. 30 at 1013.25 hPa (REFERENCES.md, F), scaled to the
+    # Bodhaine et al. 1999 eq. 30 at 1013.25 hPa (docs/REFERENCES.md, F), scaled to the
     # pressure of the moment.
     assert reading["channels"]["500"]["tau_rayleigh"] == pytest.approx(
         0.14335 * reading["pressure_hpa"] / 1013.25, abs=2e-5)
@@ -724,7 +724,7 @@ def test_shot_noise_grows_with_the_signal():
 def test_field_of_view_fraction():
     from sim_instrument.model import field_of_view_fraction
 
-    # A 2.5 deg field (WMO 1986, REFERENCES.md, C) and a 0.533 deg disc (F).
+    # A 2.5 deg field (WMO 1986, docs/REFERENCES.md, C) and a 0.533 deg disc (F).
     assert field_of_view_fraction(0.0, 2.5) == 1.0
     assert field_of_view_fraction(0.98, 2.5) == 1.0
     assert field_of_view_fraction(1.25, 2.5) == pytest.approx(0.5, abs=1e-3)

@@ -1,6 +1,6 @@
-"""The simulator's sky against published values (see /work/shared/REFERENCES.md).
+"""The simulator's sky against published values (see docs/REFERENCES.md).
 
-Status letters as in REFERENCES.md: C read in a published source, F computed here
+Status letters as in docs/REFERENCES.md: C read in a published source, F computed here
 from a confirmed published formula, M from memory (loose tolerance).
 """
 
@@ -22,18 +22,18 @@ WAVELENGTHS_NM = [340, 380, 440, 500, 675, 870, 1020]
 # --------------------------------------------------------------------- Rayleigh
 
 # Bodhaine, B. A. et al. (1999), J. Atmos. Oceanic Technol. 16:1854-1861, eq. 30,
-# evaluated to 5 decimals in REFERENCES.md (F).
+# evaluated to 5 decimals in docs/REFERENCES.md (F).
 BODHAINE_1013_HPA = [0.71248, 0.44618, 0.24261, 0.14335, 0.04220, 0.01513, 0.00798]
 BODHAINE_700_HPA = [0.49221, 0.30824, 0.16760, 0.09904, 0.02916, 0.01046, 0.00551]
 # Hansen, J. E. and Travis, L. D. (1974), Space Sci. Rev. 16:527, their formula at
-# 1013.25 hPa, as listed in REFERENCES.md (F): an independent parameterisation.
+# 1013.25 hPa, as listed in docs/REFERENCES.md (F): an independent parameterisation.
 HANSEN_TRAVIS_1013_HPA = [0.71015, 0.44568, 0.24276, 0.14359, 0.04233, 0.01518, 0.00800]
 
 
 @pytest.mark.parametrize(("wavelength_nm", "expected"), list(zip(WAVELENGTHS_NM,
                                                                  BODHAINE_1013_HPA, strict=True)))
 def test_rayleigh_matches_bodhaine_1999_at_standard_pressure(wavelength_nm, expected):
-    # Bodhaine et al. 1999 eq. 30, table values rounded to 5 decimals (REFERENCES.md, F).
+    # Bodhaine et al. 1999 eq. 30, table values rounded to 5 decimals (docs/REFERENCES.md, F).
     assert sky.rayleigh_optical_depth(wavelength_nm, 1013.25) == pytest.approx(expected,
                                                                                abs=6e-6)
 
@@ -41,13 +41,13 @@ def test_rayleigh_matches_bodhaine_1999_at_standard_pressure(wavelength_nm, expe
 @pytest.mark.parametrize(("wavelength_nm", "expected"), list(zip(WAVELENGTHS_NM,
                                                                  BODHAINE_700_HPA, strict=True)))
 def test_rayleigh_matches_bodhaine_1999_scaled_to_700_hpa(wavelength_nm, expected):
-    # Bodhaine et al. 1999 eq. 30 scaled by p / 1013.25 hPa (REFERENCES.md, F).
+    # Bodhaine et al. 1999 eq. 30 scaled by p / 1013.25 hPa (docs/REFERENCES.md, F).
     assert sky.rayleigh_optical_depth(wavelength_nm, 700.0) == pytest.approx(expected, abs=6e-6)
 
 
 def test_rayleigh_within_half_a_percent_of_hansen_travis_1974():
     # Hansen and Travis (1974) vs Bodhaine (1999): the two published formulas differ
-    # by about 0.3 % across 340-1020 nm (REFERENCES.md table, F).
+    # by about 0.3 % across 340-1020 nm (docs/REFERENCES.md table, F).
     tau = sky.rayleigh_optical_depth(np.array(WAVELENGTHS_NM, dtype=float))
     assert_allclose(tau, HANSEN_TRAVIS_1013_HPA, rtol=5e-3)
 
@@ -63,7 +63,7 @@ def test_rayleigh_accepts_arrays_and_scales_linearly_with_pressure():
 # ------------------------------------------------------------------------ ozone
 
 # 10-nm bin means of Serdyuchenko et al. (2014), Atmos. Meas. Tech. 7:625, and
-# Gorshelev et al. (2014), 233 K; 1 DU = 2.687e16 cm^-2 (REFERENCES.md, C).
+# Gorshelev et al. (2014), 233 K; 1 DU = 2.687e16 cm^-2 (docs/REFERENCES.md, C).
 # (bin centre [nm], cross-section [cm^2], tau per DU, tau at 300 DU)
 SERDYUCHENKO_BINS = [
     (445, 1.58e-22, 4.25e-6, 0.0013),
@@ -77,15 +77,15 @@ SERDYUCHENKO_BINS = [
 @pytest.mark.parametrize(("centre_nm", "sigma_cm2", "tau_per_du", "tau_300"), SERDYUCHENKO_BINS)
 def test_ozone_bins_match_serdyuchenko_2014(centre_nm, sigma_cm2, tau_per_du, tau_300):
     # A 10-nm band centred on the bin is exactly that bin (Serdyuchenko et al. 2014,
-    # 10-nm means in REFERENCES.md, values given to 3 significant figures).
+    # 10-nm means in docs/REFERENCES.md, values given to 3 significant figures).
     assert sky.ozone_cross_section_cm2(centre_nm, 10.0) == pytest.approx(sigma_cm2, rel=6e-3)
     assert sky.ozone_optical_depth(centre_nm, 1.0) == pytest.approx(tau_per_du, rel=6e-3)
-    # tau at 300 DU is given to 2 significant figures in REFERENCES.md.
+    # tau at 300 DU is given to 2 significant figures in docs/REFERENCES.md.
     assert sky.ozone_optical_depth(centre_nm, 300.0) == pytest.approx(tau_300, rel=4e-2)
 
 
 def test_ozone_at_500_nm_is_about_0_032_per_atm_cm():
-    # REFERENCES.md: about 0.032 per atm-cm (1000 DU) at 500 nm for a 10-nm band
+    # docs/REFERENCES.md: about 0.032 per atm-cm (1000 DU) at 500 nm for a 10-nm band
     # (F, the mean of the 490-500 and 500-510 nm Serdyuchenko bins); the common
     # value 0.0328 is from memory, hence the loose tolerance.
     assert sky.ozone_optical_depth(500.0, 1000.0) == pytest.approx(0.032, rel=3e-2)
@@ -93,7 +93,7 @@ def test_ozone_at_500_nm_is_about_0_032_per_atm_cm():
 
 @pytest.mark.parametrize("wavelength_nm", [380.0, 870.0, 1020.0])
 def test_ozone_negligible_outside_chappuis_band(wavelength_nm):
-    # REFERENCES.md: negligible at 870 and 1020 nm (from memory); 380 nm lies in
+    # docs/REFERENCES.md: negligible at 870 and 1020 nm (from memory); 380 nm lies in
     # the gap between the Huggins and Chappuis bands (Serdyuchenko 2014 bins).
     # "Negligible" taken as below 1e-3 at a high 300 DU (from memory, loose).
     assert 0.0 < sky.ozone_optical_depth(wavelength_nm, 300.0) < 1e-3
@@ -131,7 +131,7 @@ def test_angstrom_law_referenced_at_500_nm():
 ])
 def test_kasten_young_1989(zenith_deg, formula, table):
     # Kasten and Young (1989), Applied Optics 28(22):4735, eq. 3 evaluated in
-    # REFERENCES.md (F), and their table (second-hand, C) within 0.5 %.
+    # docs/REFERENCES.md (F), and their table (second-hand, C) within 0.5 %.
     m = sky.relative_airmass_kasten_young(zenith_deg)
     assert m == pytest.approx(formula, abs=6e-5)
     if table is not None:
@@ -139,7 +139,7 @@ def test_kasten_young_1989(zenith_deg, formula, table):
 
 
 def test_kasten_young_departs_from_the_secant_where_references_say():
-    # REFERENCES.md (F): the plane-parallel secant exceeds Kasten-Young by 0.1 % at
+    # docs/REFERENCES.md (F): the plane-parallel secant exceeds Kasten-Young by 0.1 % at
     # z = 42.2 deg and by 1 % at z = 72.9 deg.
     for zenith, excess in ((42.2, 1e-3), (72.9, 1e-2)):
         ratio = (1.0 / np.cos(np.radians(zenith))) / sky.relative_airmass_kasten_young(zenith)
@@ -155,7 +155,7 @@ def test_kasten_young_is_nan_below_the_horizon():
                                                       (90.0, 12.06446)])
 def test_komhyr_ozone_airmass_at_sea_level(zenith_deg, expected):
     # Komhyr (1980), WMO GORMP Report No. 6 formula with R = 6371.229 km and
-    # h = 22 km, evaluated in REFERENCES.md (F).
+    # h = 22 km, evaluated in docs/REFERENCES.md (F).
     assert sky.ozone_airmass(zenith_deg, 0.0, 22.0) == pytest.approx(expected, abs=6e-6)
 
 
@@ -172,7 +172,7 @@ def test_komhyr_station_height_enters_the_formula():
 
 def test_spencer_1971_extremes():
     # Spencer (1971), Search 2(5):172: maximum 1.03508 on day 3, minimum 0.96659 on
-    # day 186 (REFERENCES.md, F).
+    # day 186 (docs/REFERENCES.md, F).
     f = sky.earth_sun_factor_spencer(np.arange(1, 366))
     assert int(np.argmax(f)) + 1 == 3
     assert int(np.argmin(f)) + 1 == 186
@@ -181,7 +181,7 @@ def test_spencer_1971_extremes():
 
 
 def test_pvlib_earth_sun_factor_at_2024_perihelion_and_aphelion():
-    # Ephemeris 2024 (REFERENCES.md, F): perihelion 3 Jan r = 0.983307 AU,
+    # Ephemeris 2024 (docs/REFERENCES.md, F): perihelion 3 Jan r = 0.983307 AU,
     # (1/r)^2 = 1.03424; aphelion 5 Jul r = 1.016725 AU, (1/r)^2 = 0.96737.
     # Checked at 00 UTC of those days; r moves by under 1e-6 AU/day at the extremes.
     f = sky.earth_sun_factor(pd.DatetimeIndex(["2024-01-03T00:00Z", "2024-07-05T00:00Z"]))
@@ -189,7 +189,7 @@ def test_pvlib_earth_sun_factor_at_2024_perihelion_and_aphelion():
 
 
 def test_spencer_and_spa_agree_within_about_a_tenth_of_a_percent():
-    # REFERENCES.md: Spencer vs the 2024 ephemeris within 0.1 % at perihelion and
+    # docs/REFERENCES.md: Spencer vs the 2024 ephemeris within 0.1 % at perihelion and
     # aphelion (F). Over every day of 2024 the largest difference found here is
     # 0.104 % (late May; Spencer's series assumes a 365-day year), so the whole-year
     # bound is 0.11 %.
@@ -231,7 +231,7 @@ def test_posix_seconds_and_datetimes_give_the_same_sun():
 # ------------------------------------------------------- extraterrestrial spectrum
 
 # ASTM G173-03 extraterrestrial column as shipped with pvlib (data/ASTMG173.csv),
-# W m^-2 nm^-1: point value (C) and 10-nm box mean (F), from REFERENCES.md.
+# W m^-2 nm^-1: point value (C) and 10-nm box mean (F), from docs/REFERENCES.md.
 ASTM_G173 = [(340, 1.0544, 0.9469), (380, 1.152, 1.0873), (440, 1.83, 1.8263),
              (500, 1.916, 1.9191), (675, 1.499, 1.5093), (870, 0.977, 0.9497),
              (940, 0.84, 0.8397), (1020, 0.70127, 0.7034)]
@@ -240,7 +240,7 @@ ASTM_G173 = [(340, 1.0544, 0.9469), (380, 1.152, 1.0873), (440, 1.83, 1.8263),
 @pytest.mark.parametrize(("wavelength_nm", "point", "box_mean"), ASTM_G173)
 def test_astm_g173_top_of_atmosphere_values(wavelength_nm, point, box_mean):
     # ASTM G173-03 (C for the points, read from the table); box means F, rounded to 4
-    # decimals in REFERENCES.md.
+    # decimals in docs/REFERENCES.md.
     assert sky.extraterrestrial_irradiance_w_m2_nm(wavelength_nm) == pytest.approx(point,
                                                                                   rel=1e-6)
     assert sky.extraterrestrial_irradiance_w_m2_nm(wavelength_nm, 10.0) == pytest.approx(
@@ -250,7 +250,7 @@ def test_astm_g173_top_of_atmosphere_values(wavelength_nm, point, box_mean):
 def test_astm_g173_band_integral_is_just_below_the_solar_constant():
     # The 280-4000 nm integral of the G173 extraterrestrial column must fall a little
     # short of the whole-spectrum 1366.1 W m^-2 it is scaled to (pvlib's default,
-    # REFERENCES.md, C): about 1348 W m^-2, the rest lying outside 280-4000 nm
+    # docs/REFERENCES.md, C): about 1348 W m^-2, the rest lying outside 280-4000 nm
     # (from memory, hence the loose lower bound).
     mean = sky.extraterrestrial_irradiance_w_m2_nm(2140.0, 3720.0)
     assert 1330.0 < mean * 3720.0 < 1366.1
@@ -316,7 +316,7 @@ def test_water_vapour_matches_bird_and_riordan_1986_via_pvlib(wavelength_nm, wat
 
 def test_940_nm_band_needs_a_modified_langley():
     # The 940 nm band saturates: -ln T grows as (m W)^b with b about 0.5-0.6, not
-    # linearly in m (REFERENCES.md, "Sun photometer practice", from memory; hence the
+    # linearly in m (docs/REFERENCES.md, "Sun photometer practice", from memory; hence the
     # loose bounds). Fit ln(-ln T) against ln(m W) over air masses 2-6.
     m = np.linspace(2.0, 6.0, 17)
     for water_cm in (0.4, 1.5, 3.0):
@@ -355,7 +355,7 @@ def test_semidiurnal_tide_peaks_near_10_and_22_local_time():
 # ----------------------------------------------------------- broadband channel
 
 def test_broadband_top_of_atmosphere_against_the_total_solar_irradiance():
-    # Kopp and Lean (2011), GRL 38, L01706: TSI 1360.8 +/- 0.5 W m^-2 (REFERENCES.md, C).
+    # Kopp and Lean (2011), GRL 38, L01706: TSI 1360.8 +/- 0.5 W m^-2 (docs/REFERENCES.md, C).
     # The channel integrates SPECTRL2's extraterrestrial spectrum over 300-4000 nm only,
     # so it must fall short of the TSI by what lies outside that band. How much that is
     # we take from an independent spectrum, ASTM G173-03 (pvlib's copy, C): its own

@@ -1,4 +1,4 @@
-"""Solar geometry and air masses checked against published values (REFERENCES.md)."""
+"""Solar geometry and air masses checked against published values (docs/REFERENCES.md)."""
 
 from __future__ import annotations
 
@@ -30,7 +30,7 @@ PICO = Site(name="Pico Sereno Station", latitude_deg=19.95, longitude_deg=-101.3
 def test_spa_worked_example_position():
     # Reda and Andreas (2004), Table A5.1: topocentric zenith 50.111622 deg (refracted),
     # topocentric azimuth 194.340241 deg (east of north), equation of time 14.641503 min
-    # (REFERENCES.md gives 14.64 min).
+    # (docs/REFERENCES.md gives 14.64 min).
     pos = solar.sun_position([SPA_TIME], SPA_SITE, pressure_hpa=820.0, temperature_c=11.0,
                              delta_t_s=SPA_DELTA_T_S)
     assert_allclose(pos.apparent_zenith_deg, [50.111622], atol=1e-4)
@@ -103,7 +103,7 @@ def test_noon_zenith_at_equinox_is_latitude():
 # --------------------------------------------------------------------------- air mass
 
 @pytest.mark.parametrize("zenith, expected", [
-    # Kasten and Young (1989) eq. 3, values computed from the formula (REFERENCES.md, F).
+    # Kasten and Young (1989) eq. 3, values computed from the formula (docs/REFERENCES.md, F).
     (0.0, 0.99971), (60.0, 1.99429), (70.0, 2.90315), (80.0, 5.58604), (85.0, 10.30579),
     (90.0, 37.91961),
 ])
@@ -112,7 +112,7 @@ def test_kasten_young_formula_values(zenith, expected):
 
 
 @pytest.mark.parametrize("zenith, table, rel", [
-    # Kasten and Young (1989) table, second-hand (REFERENCES.md, C); the paper gives the
+    # Kasten and Young (1989) table, second-hand (docs/REFERENCES.md, C); the paper gives the
     # formula's error against its table as under 0.5 % down to the horizon (from memory).
     (80.0, 5.5841, 0.001), (85.0, 10.3164, 0.0015), (90.0, 38.0868, 0.005),
 ])
@@ -121,7 +121,7 @@ def test_kasten_young_formula_against_table(zenith, table, rel):
 
 
 def test_airmass_departs_from_secant_where_published():
-    # REFERENCES.md (F): sec z exceeds Kasten-Young by 0.1 % at 42.2 deg, by 1 % at 72.9.
+    # docs/REFERENCES.md (F): sec z exceeds Kasten-Young by 0.1 % at 42.2 deg, by 1 % at 72.9.
     for z, excess in ((42.2, 0.001), (72.9, 0.01)):
         ratio = 1.0 / math.cos(math.radians(z)) / solar.relative_airmass(z)
         assert ratio - 1.0 == pytest.approx(excess, abs=5e-5)
@@ -137,7 +137,7 @@ def test_airmass_below_horizon_is_nan_and_arrays_work():
 
 def test_apparent_zenith_from_airmass_inverts_kasten_young():
     # Round trip through the published values: KY89 gives 1.99429 at 60 deg, 5.58604 at 80
-    # (REFERENCES.md, F).
+    # (docs/REFERENCES.md, F).
     assert solar.apparent_zenith_from_airmass(1.99429) == pytest.approx(60.0, abs=1e-4)
     assert solar.apparent_zenith_from_airmass(5.58604) == pytest.approx(80.0, abs=1e-4)
     m = np.array([1.0, 2.0, 6.0, 20.0, 37.9])
@@ -157,7 +157,7 @@ def test_absolute_airmass_scales_with_pressure():
 
 
 @pytest.mark.parametrize("zenith, expected", [
-    # Komhyr (1980) formula (REFERENCES.md, formula C, values F): sea level, 22 km layer.
+    # Komhyr (1980) formula (docs/REFERENCES.md, formula C, values F): sea level, 22 km layer.
     (60.0, 1.97970), (80.0, 5.21166), (90.0, 12.06446),
 ])
 def test_ozone_airmass_komhyr(zenith, expected):
@@ -183,7 +183,7 @@ WAVELENGTHS_NM = [340, 380, 440, 500, 675, 870, 1020]
 
 
 @pytest.mark.parametrize("pressure, expected", [
-    # Bodhaine et al. (1999) eq. 30, tabulated in REFERENCES.md (F) to five decimals.
+    # Bodhaine et al. (1999) eq. 30, tabulated in docs/REFERENCES.md (F) to five decimals.
     (1013.25, [0.71248, 0.44618, 0.24261, 0.14335, 0.04220, 0.01513, 0.00798]),
     (700.0, [0.49221, 0.30824, 0.16760, 0.09904, 0.02916, 0.01046, 0.00551]),
 ])
@@ -193,7 +193,7 @@ def test_rayleigh_bodhaine(pressure, expected):
 
 
 def test_rayleigh_close_to_hansen_travis():
-    # Hansen and Travis (1974), Space Sci. Rev. 16:527 (REFERENCES.md, F): an independent
+    # Hansen and Travis (1974), Space Sci. Rev. 16:527 (docs/REFERENCES.md, F): an independent
     # approximation, within 0.5 % of Bodhaine over 340-1020 nm.
     hansen = [0.71015, 0.44568, 0.24276, 0.14359, 0.04233, 0.01518, 0.00800]
     assert_allclose(solar.rayleigh_optical_depth(WAVELENGTHS_NM), hansen, rtol=5e-3)
@@ -210,7 +210,7 @@ def test_rayleigh_rejects_bad_input():
 # --------------------------------------------------------------------------- Earth-Sun
 
 @pytest.mark.parametrize("day, factor", [
-    # Ephemeris 2024 (REFERENCES.md, F): perihelion 3 Jan r = 0.983307 AU, (1/r)^2 = 1.03424;
+    # Ephemeris 2024 (docs/REFERENCES.md, F): perihelion 3 Jan r = 0.983307 AU, (1/r)^2 = 1.03424;
     # aphelion 5 Jul r = 1.016725 AU, (1/r)^2 = 0.96737.
     (date(2024, 1, 3), 1.03424), (date(2024, 7, 5), 0.96737),
 ])
@@ -220,8 +220,8 @@ def test_earth_sun_factor_at_apsides(day, factor):
 
 
 def test_earth_sun_factor_against_spencer_over_a_year():
-    # Spencer (1971), Search 2(5):172 (citation from memory; formula REFERENCES.md C).
-    # REFERENCES.md puts Spencer within 0.1 % of the ephemeris; against the SPA we find
+    # Spencer (1971), Search 2(5):172 (citation from memory; formula docs/REFERENCES.md C).
+    # docs/REFERENCES.md puts Spencer within 0.1 % of the ephemeris; against the SPA we find
     # up to 0.104 % in May-June 2024 (a leap year shifts Spencer's day angle), so the
     # tolerance is 0.15 %, still far inside the 7 % seasonal swing.
     days = pd.date_range("2024-01-01 12:00", periods=366, freq="D", tz="UTC")
