@@ -199,11 +199,13 @@ def _point_aod(p, channels: Sequence[Channel], config: Config, v0: Mapping[str, 
         cal = v0[c.name]
         total, aod = aerosol_optical_depth(ps.signal_v, cal["v0_1au"], esf, m,
                                            m if m_o3 is None else m_o3, tau_r, o3)
-        rel = cal.get("v0_1au_unc")
+        # A relative V0 error e gives an optical-depth error e/m (docs/REFERENCES.md).
+        v0_unc_v = cal.get("v0_1au_unc")
         out[c.name] = {
             "measurement_id": p.measurement_id, "channel": c.name,
             "calibration_id": calibration_id, "wavelength_nm": c.wavelength_nm,
-            "aod": aod, "aod_unc": (rel / cal["v0_1au"] / m) if rel is not None else None,
+            "aod": aod,
+            "aod_unc": (v0_unc_v / cal["v0_1au"] / m) if v0_unc_v is not None else None,
             "tau_total": total, "tau_rayleigh": tau_r, "tau_ozone": o3, "airmass": m,
             "ozone_airmass": m_o3, "pressure_hpa": pressure,
             "flag": "; ".join(flags) if flags else None,

@@ -8,6 +8,7 @@ and fit code as the service.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import json
 import os
@@ -78,6 +79,8 @@ def _read_endpoints(proc: subprocess.Popen) -> SimEndpoints:
         if proc.poll() is not None:
             break
     err = ""
+    with contextlib.suppress(subprocess.TimeoutExpired):
+        proc.wait(timeout=5)  # it closed its output: let it exit and say why
     if proc.poll() is not None:
         err = proc.stderr.read().strip()
     raise BenchError("the simulator did not start"

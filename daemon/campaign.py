@@ -289,6 +289,31 @@ def calibration_table(record: Mapping[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def _require_heliotrope_store(db: str) -> None:
+    """Refuse, before the writer migrates anything, a file that is not our store."""
+    import sqlite3
+
+    from daemon.cli import CommandError
+    from daemon.storeread import StoreReadError, open_readonly
+
+    try:
+        conn = open_readonly(db)
+        try:
+            found = conn.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND "
+                                 "name = 'session_results'").fetchone()
+        finally:
+            conn.close()
+    except StoreReadError as exc:  # says what the file is and what to pass instead
+        raise CommandError(str(exc), 66) from None
+    except sqlite3.DatabaseError as exc:
+        raise CommandError(f"{db}: cannot be read as a store ({exc}); pass --db with the "
+                           "path of the heliotrope store", 66) from None
+    if not found:
+        raise CommandError(f"{db}: not a heliotrope store (no session results table); "
+                           "nothing was changed. Pass --db with the store the service "
+                           "writes (store.path in its configuration)", 66)
+
+
 def calibrate_command(args: Any) -> int:
     """``heliotrope calibrate``: combine, store, compute AOD; print the record."""
     import os
@@ -308,6 +333,7 @@ def calibrate_command(args: Any) -> int:
     if not os.path.exists(db):
         raise CommandError(f"{db}: no store here; pass --db with the path of the heliotrope "
                            "store (store.path in the service's configuration)", 66)
+    _require_heliotrope_store(db)
     try:
         store = Store.open(db)
     except StoreError as exc:

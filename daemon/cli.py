@@ -166,6 +166,13 @@ def cmd_demo(args: argparse.Namespace) -> int:
     import tempfile
 
     from daemon.bench import BenchError, run_simulated_day
+    if args.config is None:
+        args.config = str(REPO_CONFIG / "pico-sereno.yaml")
+        if not Path(args.config).exists():
+            raise CommandError("the demo's site configuration comes from the source tree "
+                               f"({args.config}), which this installation does not have; "
+                               "pass --config with config/pico-sereno.yaml from a copy of "
+                               "the sources", EX_NOINPUT)
     cfg = _load_config(args.config)
     with tempfile.TemporaryDirectory(prefix="heliotrope-demo-") as tmp:
         store_path = Path(args.db) if args.db else Path(tmp) / "demo.db"
@@ -350,7 +357,8 @@ def build_parser() -> argparse.ArgumentParser:
     c.set_defaults(func=cmd_plan)
 
     c = sub.add_parser("demo", help="a simulated clear day on the bench, ending in the table")
-    c.add_argument("--config", default=str(REPO_CONFIG / "pico-sereno.yaml"))
+    c.add_argument("--config", help="site configuration (default: the source tree's "
+                   "config/pico-sereno.yaml)")
     c.add_argument("--scenario", default="pico-sereno-clear")
     c.add_argument("--date", type=_parse_date, default=date(2027, 2, 15),
                    help="simulated local date (default: %(default)s)")

@@ -21,9 +21,12 @@ BIN_WIDTH_NM = 10
 #: by the bin's lower edge [nm]. Data set: Serdyuchenko, A. et al. (2014), Atmos. Meas.
 #: Tech. 7:625-636, and Gorshelev, V. et al. (2014), Atmos. Meas. Tech. 7:609-624.
 #: Status: "C" bin means as listed in docs/REFERENCES.md (440, 490, 500, 600, 670);
-#: "S" secondary 10-nm means of the same data set, not checked against the original
-#: files; "M" from memory, order of magnitude only (weak Wulf bands: below 3e-4 in
-#: optical depth at 260 DU, so an error there is harmless).
+#: "S" bins are 10-nm means of the same 233 K data set as tabulated (in m^2) in
+#: E. Bruneton's precomputed atmospheric scattering demo (2017, demo.cc,
+#: kOzoneCrossSection); its 440/490/500/600/670 bins agree with docs/REFERENCES.md,
+#: the others were not checked against the original files; "M" from memory, order of
+#: magnitude only (weak Wulf bands: below 3e-4 in optical depth at 260 DU, so an error
+#: there is harmless).
 CROSS_SECTION_CM2: dict[int, tuple[float, str]] = {
     370: (2.182e-24, "S"),
     380: (2.818e-24, "S"),

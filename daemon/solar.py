@@ -441,6 +441,14 @@ def rayleigh_optical_depth(wavelength_nm: ArrayLike,
     Technology 16(11):1854-1861,
     :doi:`10.1175/1520-0426(1999)016<1854:ORODC>2.0.CO;2`, eq. 30 (360 ppm CO2,
     sea level, 45 degrees latitude).
+
+    Notes
+    -----
+    Only the pressure scaling is applied. The gravity term is left out: optical depth
+    goes as ``p / (m_a g)``, with ``g`` taken at the latitude and the mass-weighted
+    height of the air column (Bodhaine et al. 1999, eq. 22-23 and the ``m_a g`` term;
+    from memory). At 3650 m and 20 deg N, ``g`` is lower than at the 45 deg sea-level
+    reference, so this function gives tau_R about 0.3 % too small (estimate).
     """
     p = _positive("pressure_hpa", pressure_hpa, "hPa")
     wl = np.asarray(wavelength_nm, dtype=float)

@@ -21,6 +21,10 @@ from tests.langley_sessions import pico_config, simulate_session
 
 NOW = dt.datetime(2027, 2, 16, 3, 0, tzinfo=dt.UTC)
 DAY = dt.date(2027, 2, 15)
+# Rayleigh optical depth at 1013.25 hPa by channel [nm]: Bodhaine, B. A. et al. (1999),
+# J. Atmos. Oceanic Technol. 16:1854-1861, eq. 30, table in docs/REFERENCES.md (F).
+BODHAINE_1013_HPA = {380.0: 0.44618, 440.0: 0.24261, 500.0: 0.14335, 675.0: 0.04220,
+                     870.0: 0.01513, 1020.0: 0.00798}
 
 
 def test_aerosol_optical_depth_of_noise_free_beer_lambert():
@@ -107,8 +111,10 @@ def test_aod_is_stored_after_each_session_fit_once_a_calibration_exists(tmp_path
         # few seconds: about 0.1 % in m near m = 6).
         assert r["aod"] == pytest.approx(true, abs=3e-4)
         assert r["aod_unc"] == pytest.approx(0.001 / r["airmass"], rel=1e-9)
+        # Bodhaine et al. (1999) eq. 30 at 1013.25 hPa, 5-decimal table in
+        # docs/REFERENCES.md (F), scaled by p / 1013.25 hPa as that file says.
         assert r["tau_rayleigh"] == pytest.approx(
-            float(solar.rayleigh_optical_depth(r["wavelength_nm"], r["pressure_hpa"])))
+            BODHAINE_1013_HPA[r["wavelength_nm"]] * r["pressure_hpa"] / 1013.25, abs=4e-6)
         assert r["angstrom_alpha"] is not None
 
 

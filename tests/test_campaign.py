@@ -221,3 +221,19 @@ def test_calibrate_without_sessions_says_why(tmp_path, capsys):
             calibrate(store, pico_config(), "2027-02-01", "2027-02-02", NOW)
     finally:
         store.close()
+
+
+def test_calibrate_refuses_a_file_that_is_not_our_store_and_leaves_it_alone(tmp_path, capsys):
+    import hashlib
+    import sqlite3
+
+    foreign = tmp_path / "other.db"
+    conn = sqlite3.connect(foreign)
+    conn.execute("create table t (x)")
+    conn.commit()
+    conn.close()
+    digest = hashlib.sha256(foreign.read_bytes()).hexdigest()
+    assert main(["calibrate", "--from", "2027-01-01", "--to", "2027-01-02", "--db",
+                 str(foreign), "--config", str(CONFIG_PATH)]) == 66
+    assert "without heliotrope tables" in capsys.readouterr().err
+    assert hashlib.sha256(foreign.read_bytes()).hexdigest() == digest

@@ -81,3 +81,9 @@ def test_demo_over_tcp_prints_the_contract(tmp_path, capsys):
     for r in out["results"]:
         assert set(r) == CONTRACT_KEYS
         assert abs(r["v0_1au"] / out["truth"][r["channel"]]["v0_1au"] - 1) < 0.005
+
+
+def test_demo_says_why_the_simulator_did_not_start(capsys):
+    assert main(["demo", "--scenario", "no-such-scenario"]) == 69
+    err = capsys.readouterr().err
+    assert "the simulator did not start" in err and "'no-such-scenario' not found" in err

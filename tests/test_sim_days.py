@@ -75,5 +75,5 @@ def test_hazy_low_site_errs_more_than_the_mountain_yet_within_ten_percent(pico, 
     # fit's business, and its Langley is not straight by nature.)
     assert max(bw_window) > max(1.0e-2, 5 * max(pico_window))
     assert max(bw_window) < 0.10
-    assert max(pico_window) < 0.005
+    assert max(pico_window) < 0.001  # measured 0.04 % at worst on this seed
 
