@@ -81,7 +81,7 @@ def open_readonly(path: str | Path) -> sqlite3.Connection:
     p = Path(path).expanduser()
     if not p.exists():
         raise StoreReadError(f"{p}: no store here; pass --db with the path of the heliotrope store "
-                         "(store.path in the service's configuration)")
+                             "(store.path in the service's configuration)")
     if p.is_dir():
         raise StoreReadError(f"{p}: is a directory; pass --db with the path of the store file")
     uri = p.absolute().as_uri() + "?mode=ro"
@@ -89,7 +89,7 @@ def open_readonly(path: str | Path) -> sqlite3.Connection:
         conn = sqlite3.connect(uri, uri=True, timeout=2.0)
     except sqlite3.Error as exc:
         raise StoreReadError(f"{p}: cannot open the store read-only ({exc}); check that you may "
-                         "read the file and its directory") from None
+                             "read the file and its directory") from None
     try:
         conn.execute("PRAGMA query_only = ON")
         row = conn.execute("SELECT count(*) FROM sqlite_master "
@@ -97,12 +97,12 @@ def open_readonly(path: str | Path) -> sqlite3.Connection:
     except sqlite3.DatabaseError as exc:
         conn.close()
         raise StoreReadError(f"{p}: not a readable SQLite store ({exc}); pass --db with the path "
-                         "of the heliotrope store") from None
+                             "of the heliotrope store") from None
     if row[0] == 0:
         conn.close()
         raise StoreReadError(f"{p}: an SQLite file without heliotrope tables; pass --db with the "
-                         "path of the heliotrope store (the service creates its tables when "
-                         "it first starts)")
+                             "path of the heliotrope store (the service creates its tables when "
+                             "it first starts)")
     conn.row_factory = sqlite3.Row
     return conn
 

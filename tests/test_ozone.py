@@ -25,6 +25,8 @@ SERDYUCHENKO_BINS = [
 ]
 # 1 DU = 2.687e16 molecules cm^-2 (docs/REFERENCES.md, definition of the Dobson unit).
 DU_CM2 = 2.687e16
+# Cross-sections are ~1e-21 cm^2: pytest.approx's default abs=1e-12 would accept any of
+# them, so every comparison of one sets abs=0.
 
 
 @pytest.mark.parametrize(("edge_nm", "sigma_cm2", "tau_per_du", "tau_300"), SERDYUCHENKO_BINS)
@@ -33,7 +35,7 @@ def test_table_bins_match_serdyuchenko_2014(edge_nm, sigma_cm2, tau_per_du, tau_
     # them as "C" bins, to the 3 significant figures published.
     value, status = ozone.CROSS_SECTION_CM2[edge_nm]
     assert status == "C"
-    assert value == pytest.approx(sigma_cm2, rel=6e-3)
+    assert value == pytest.approx(sigma_cm2, rel=6e-3, abs=0.0)
 
 
 @pytest.mark.parametrize(("edge_nm", "sigma_cm2", "tau_per_du", "tau_300"), SERDYUCHENKO_BINS)
@@ -42,7 +44,7 @@ def test_a_band_on_one_bin_gives_the_published_tau_per_du(edge_nm, sigma_cm2, ta
     # A 10-nm band centred on a bin is exactly that bin; tau per DU and at 300 DU from
     # Serdyuchenko et al. 2014 with 1 DU = 2.687e16 cm^-2 (docs/REFERENCES.md, C).
     sigma = ozone.band_cross_section_cm2(edge_nm + 5.0, 10.0)
-    assert sigma == pytest.approx(sigma_cm2, rel=6e-3)
+    assert sigma == pytest.approx(sigma_cm2, rel=6e-3, abs=0.0)
     assert ozone.ozone_optical_depth(sigma, 1.0) == pytest.approx(tau_per_du, rel=6e-3)
     assert ozone.ozone_optical_depth(sigma, 300.0) == pytest.approx(tau_300, rel=4e-2)
 
@@ -59,14 +61,14 @@ def test_500_nm_channel_is_about_0_032_per_atm_cm():
     # is from memory, hence the loose tolerance on that one).
     ch = Channel("500", 500.0, 10.0)
     sigma = ozone.channel_cross_section_cm2(ch)
-    assert sigma == pytest.approx((9.02e-22 + 1.48e-21) / 2.0, rel=6e-3)
+    assert sigma == pytest.approx((9.02e-22 + 1.48e-21) / 2.0, rel=6e-3, abs=0.0)
     assert ozone.ozone_optical_depth(sigma, 1000.0) == pytest.approx(0.032, rel=3e-2)
 
 
 def test_675_nm_channel_is_the_670_680_bin():
     # Serdyuchenko et al. 2014, 670-680 nm bin mean 1.47e-21 cm^2 (docs/REFERENCES.md, C).
     assert ozone.channel_cross_section_cm2(Channel("675", 675.0, 10.0)) == pytest.approx(
-        1.47e-21, rel=6e-3)
+        1.47e-21, rel=6e-3, abs=0.0)
 
 
 @pytest.mark.parametrize("wavelength_nm", [870.0, 1020.0])
