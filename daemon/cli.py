@@ -287,19 +287,13 @@ def _add_operator_view(sub) -> None:
     c.set_defaults(func=cmd_status)
 
     c = sub.add_parser("results", help="session results of a range of dates")
-    c.add_argument("--from", dest="from_", type=_parse_date, required=True, metavar="D1",
-                   help="first local date, YYYY-MM-DD")
-    c.add_argument("--to", type=_parse_date, metavar="D2",
-                   help="last local date, inclusive (default: D1)")
+    _add_dates(c)
     c.add_argument("--db", default=_default_db(), help=db_help)
     c.add_argument("--json", action="store_true", help="print JSON")
     c.set_defaults(func=cmd_results)
 
     c = sub.add_parser("export", help="stored data as CSV or JSON, streamed")
-    c.add_argument("--from", dest="from_", type=_parse_date, required=True, metavar="D1",
-                   help="first local date, YYYY-MM-DD")
-    c.add_argument("--to", type=_parse_date, metavar="D2",
-                   help="last local date, inclusive (default: D1)")
+    _add_dates(c)
     c.add_argument("--what", required=True,
                    choices=("measurements", "samples", "results", "aod", "events"))
     c.add_argument("--format", default="csv", choices=("csv", "json"),
@@ -333,6 +327,15 @@ def _add_operator_view(sub) -> None:
 
 
 # --------------------------------------------------------------------------- parser
+
+def _add_dates(c: argparse.ArgumentParser, to_required: bool = False) -> None:
+    """``--from D1 [--to D2]``: a range of local dates at the site, inclusive."""
+    c.add_argument("--from", dest="from_", type=_parse_date, required=True, metavar="D1",
+                   help="first local date, YYYY-MM-DD")
+    c.add_argument("--to", type=_parse_date, required=to_required, metavar="D2",
+                   help="last local date, inclusive" + ("" if to_required else
+                                                        " (default: D1)"))
+
 
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="heliotrope", description=(
@@ -397,10 +400,7 @@ def build_parser() -> argparse.ArgumentParser:
         "calibration record and the aerosol optical depth of every measurement in the range "
         "is computed and stored. This command WRITES to the store: it opens it with the "
         "service's writer (safe while the service runs).")
-    c.add_argument("--from", dest="from_", type=_parse_date, required=True, metavar="D1",
-                   help="first local date, YYYY-MM-DD")
-    c.add_argument("--to", type=_parse_date, required=True, metavar="D2",
-                   help="last local date, inclusive")
+    _add_dates(c, to_required=True)
     c.add_argument("--config", default=os.environ.get("HELIOTROPE_CONFIG",
                                                       "/etc/heliotrope/heliotrope.yaml"),
                    metavar="FILE", help="configuration (default: %(default)s, from "
