@@ -95,8 +95,11 @@ def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[Sessio
     values : sequence of SessionV0
         The accepted sessions of the campaign.
     clip_sigma : float
-        A session further than this many standard deviations from the mean of the
-        others is flagged and left out.
+        A session further than this many spreads from the centre is flagged and left
+        out. The centre is the median of all sessions at first, then the mean of the
+        kept sessions; the spread is the normal-consistent MAD at first, then the sample
+        standard deviation of the kept sessions, never below the median stated
+        uncertainty.
     min_sessions : int
         Kept sessions the channel needs to be usable.
 
@@ -158,7 +161,7 @@ def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[Sessio
         if not k:
             entry["why"] = (f"V0 at 1 AU {s.v0_1au:.5f} V is {dev_pct:+.2f} % from the "
                             f"campaign mean, beyond {clip_sigma:g} times the spread of the "
-                            f"others ({100 * spread / mean:.2f} %)")
+                            f"kept sessions ({100 * spread / mean:.2f} %)")
         sessions.append(entry)
     drift = drift_unc = None
     t = np.array([_years(s.date, s.session) for s, k in zip(vals, keep, strict=True) if k])

@@ -649,8 +649,6 @@ ORDER BY m.time_utc, m.id
 """
 
 
-
-
 def _sample_rows(mid: int, rec: MeasurementRecord) -> Iterable[dict[str, Any]]:
     for kind, samples in (("sun", rec.sun), ("dark", rec.dark)):
         for i, values in enumerate(samples):
