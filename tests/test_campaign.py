@@ -52,7 +52,7 @@ def test_a_session_that_disagrees_is_flagged_and_left_out():
     flagged = [s for s in c.sessions if s["flagged"]]
     assert len(flagged) == 1 and flagged[0]["v0_1au"] == 1.47
     assert flagged[0]["why"].startswith("V0 at 1 AU 1.47000 V is -2.0")
-    assert "beyond 3 times the spread of the others" in flagged[0]["why"]
+    assert "beyond 3 times the spread of the kept sessions" in flagged[0]["why"]
 
 
 def test_the_spread_floor_keeps_an_honest_session_when_the_others_agree_too_well():
