@@ -29,7 +29,7 @@ sys.path.insert(0, str(ROOT))
 from daemon.acquisition import Station, local_midnight_utc, run_day  # noqa: E402
 from daemon.bench import bench_rig, quiet_site, simulator  # noqa: E402
 from daemon.clock import SimClock  # noqa: E402
-from daemon.config import load_config  # noqa: E402
+from daemon.config import load_config, parse_config  # noqa: E402
 from daemon.planner import Plan, PlannedTarget  # noqa: E402
 
 CONFIG = ROOT / "config" / "pico-sereno.yaml"
@@ -122,9 +122,21 @@ def target_latency(n: int) -> list[float]:
 
     from daemon.service import Service
 
-    with tempfile.TemporaryDirectory() as tmp, bench_rig(
-            load_config(CONFIG), Path(tmp) / "latency.db", "pico-sereno-clear", 1,
-            "tcp:0") as (cfg, store, radiometer, tracker):
+    # Move the site (daemon configuration and simulator scenario alike) to the longitude
+    # where it is about noon now, so the sun is up whatever the hour of the run.
+    now = datetime.now(UTC)
+    lon = ((12.0 - (now.hour + now.minute / 60)) * 15.0 + 180.0) % 360.0 - 180.0
+    tmp_dir = tempfile.TemporaryDirectory()
+    tmp = Path(tmp_dir.name)
+    scen = yaml.safe_load((ROOT / "sim_instrument" / "scenarios" /
+                           "pico-sereno-clear.yaml").read_text())
+    scen["site"]["longitude_deg"] = lon
+    (tmp / "noon.yaml").write_text(yaml.safe_dump(scen))
+    data = yaml.safe_load(CONFIG.read_text())
+    data["site"]["longitude_deg"], data["site"]["timezone"] = lon, "UTC"
+    site_cfg = parse_config(data)
+    with tmp_dir, bench_rig(site_cfg, tmp / "latency.db", str(tmp / "noon.yaml"), 1,
+                            "tcp:0") as (cfg, store, radiometer, tracker):
         timed = _Timed(radiometer)
         sched = BackgroundScheduler(timezone=UTC)
         svc = Service(cfg, store, timed, tracker, scheduler=sched)
