@@ -35,6 +35,7 @@ class SimEndpoints:
     radiometer: str
     tracker: str
     pid: int
+    site: dict | None = None  # the scenario's site, as the simulator reports it
 
 
 @contextmanager
@@ -72,7 +73,8 @@ def _read_endpoints(proc: subprocess.Popen) -> SimEndpoints:
                 break
             try:
                 info = json.loads(line)
-                return SimEndpoints(info["radiometer"], info["tracker"], int(info["pid"]))
+                return SimEndpoints(info["radiometer"], info["tracker"], int(info["pid"]),
+                                    info.get("site"))
             except (ValueError, KeyError) as exc:
                 raise BenchError(f"simulator printed {line.strip()!r}, expected its "
                                  f"endpoints as JSON ({exc})") from None
@@ -101,8 +103,26 @@ def _stop(proc: subprocess.Popen) -> None:
             stream.close()
 
 
+SITE_MATCH_DEG = 0.05  # about 5 km: the same site for the sun's position
+
+
 def with_ports(config: Config, endpoints: SimEndpoints) -> Config:
-    """The same configuration, pointed at the simulator's ports."""
+    """The same configuration, pointed at the simulator's ports.
+
+    Refuses a simulator whose scenario is at another site: the daemon would aim the
+    tracker at a sun that is elsewhere and log nothing but lost locks.
+    """
+    sim = endpoints.site
+    if sim is not None:
+        d_lat = abs(sim["latitude_deg"] - config.site.latitude_deg)
+        d_lon = abs((sim["longitude_deg"] - config.site.longitude_deg + 180) % 360 - 180)
+        if max(d_lat, d_lon) > SITE_MATCH_DEG:
+            raise BenchError(
+                f"the simulator's scenario is at {sim['name']} ({sim['latitude_deg']:.2f}, "
+                f"{sim['longitude_deg']:.2f}) but the configuration is for "
+                f"{config.site.name} ({config.site.latitude_deg:.2f}, "
+                f"{config.site.longitude_deg:.2f}); pick a scenario and a configuration "
+                "of the same site")
     return dataclasses.replace(
         config,
         radiometer=dataclasses.replace(config.radiometer, url=endpoints.radiometer),

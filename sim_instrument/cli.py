@@ -52,7 +52,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog="heliotrope-sim",
         description="Simulate a heliotrope station's radiometer and tracker on two serial "
                     "endpoints (pseudo-terminals or loopback TCP). Prints one JSON line "
-                    '{"radiometer": URL, "tracker": URL, "pid": N} once listening.',
+                    '{"radiometer": URL, "tracker": URL, "pid": N, "site": {...}} once '
+                    "listening.",
     )
     ap.add_argument("--scenario", required=True, metavar="FILE_OR_NAME",
                     help="scenario YAML file, or the name of a bundled scenario "
@@ -177,8 +178,12 @@ def main(argv: list[str] | None = None) -> int:
         return EX_CONFIG if endpoint == "tcp" else 1
     with server:
         urls = server.urls
+        site = scenario.site
         print(json.dumps({"radiometer": urls["radiometer"], "tracker": urls["tracker"],
-                          "pid": os.getpid()}), flush=True)
+                          "pid": os.getpid(),
+                          "site": {"name": site.name, "latitude_deg": site.latitude_deg,
+                                   "longitude_deg": site.longitude_deg,
+                                   "elevation_m": site.elevation_m}}), flush=True)
         why = _wait_for_stop(args.stdin_lifeline)
         log.info("stopping: %s", why)
     if args.truth is not None:

@@ -87,3 +87,10 @@ def test_demo_says_why_the_simulator_did_not_start(capsys):
     assert main(["demo", "--scenario", "no-such-scenario"]) == 69
     err = capsys.readouterr().err
     assert "the simulator did not start" in err and "'no-such-scenario' not found" in err
+
+
+def test_demo_refuses_a_scenario_at_another_site(capsys):
+    assert main(["demo", "--scenario", "brightwater-hazy"]) == 69
+    err = capsys.readouterr().err
+    assert "scenario is at Brightwater College roof" in err
+    assert "configuration is for Pico Sereno Station" in err

@@ -299,7 +299,8 @@ def _finish(proc: subprocess.Popen) -> tuple[int, str]:
 def test_cli_on_ptys_until_sigterm_writes_the_truth(tmp_path):
     truth = tmp_path / "truth.json"
     proc, info = _start_sim("--port", "pty", "--truth", str(truth))
-    assert set(info) == {"radiometer", "tracker", "pid"} and info["pid"] == proc.pid
+    assert set(info) == {"radiometer", "tracker", "pid", "site"} and info["pid"] == proc.pid
+    assert info["site"]["name"] == "Pico Sereno Station"
     radiometer = open_radiometer(info["radiometer"], timeout_s=2.0, retries=1)
     tracker = open_tracker(info["tracker"], timeout_s=2.0, retries=1)
     try:
