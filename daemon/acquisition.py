@@ -327,6 +327,15 @@ def run_day(station: Station, day: date, plan: Plan | None = None,
     return fits
 
 
+def open_devices(config: Config) -> tuple[Radiometer, Tracker]:
+    """The configured drivers on the configured ports (opened lazily, on first use)."""
+    from drivers import registry
+
+    r, t = config.radiometer, config.tracker
+    return (registry.open_radiometer(r.driver, r.url, r.baudrate, r.timeout_s, r.retries),
+            registry.open_tracker(t.driver, t.url, t.baudrate, t.timeout_s, t.retries))
+
+
 def local_midnight_utc(config: Config, day: date) -> datetime:
     """The start of ``day`` at the site, in UTC."""
     return datetime(day.year, day.month, day.day, tzinfo=config.tz).astimezone(UTC)

@@ -168,16 +168,14 @@ def bench_rig(config: Config, store_path: Path, scenario: str, seed: int, port: 
 
     Yields ``(config, store, radiometer, tracker)``; everything is closed on leaving.
     """
+    from daemon.acquisition import open_devices
     from daemon.store import Store
-    from drivers.reference import open_radiometer, open_tracker
 
     store = Store.open(store_path)
     try:
         with simulator(scenario, seed, port, truth_path) as ends:
             cfg = with_ports(config, ends)
-            r, t = cfg.radiometer, cfg.tracker
-            radiometer = open_radiometer(r.url, r.baudrate, r.timeout_s, r.retries)
-            tracker = open_tracker(t.url, t.baudrate, t.timeout_s, t.retries)
+            radiometer, tracker = open_devices(cfg)
             try:
                 yield cfg, store, radiometer, tracker
             finally:

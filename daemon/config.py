@@ -20,6 +20,8 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import yaml
 
+from drivers.registry import RADIOMETER_DRIVERS, TRACKER_DRIVERS
+
 EX_CONFIG = 78  # sysexits.h: configuration error
 # The longest one command may go unanswered, all retries included. With the slew and
 # lock limits this keeps a whole target well inside the unit's WatchdogSec (600 s).
@@ -64,6 +66,7 @@ class Port:
     baudrate: int = 19200
     timeout_s: float = 2.0
     retries: int = 3
+    driver: str = "reference"  # a name in drivers.registry
 
 
 @dataclass(frozen=True)
@@ -298,12 +301,15 @@ def _in_water_band(channel: Channel) -> bool:
             and channel.wavelength_nm - half < WATER_BAND_NM[1])
 
 
-def _read_port(s: _Section) -> Port:
+def _read_port(s: _Section, drivers: dict[str, str]) -> Port:
+    names = sorted(drivers)
     port = Port(
         url=s.string("port"),
         baudrate=s.integer("baudrate", 1200, 921600, default=19200),
         timeout_s=s.number("timeout_s", 0.05, 60, default=2.0, unit="s"),
         retries=s.integer("retries", 0, 10, default=3),
+        driver=s.string("driver", default="reference", pattern="|".join(map(re.escape, names)),
+                        hint=f"known drivers: {', '.join(names)}"),
     )
     worst = port.timeout_s * (port.retries + 1)
     if worst > MAX_EXCHANGE_S:
@@ -430,8 +436,8 @@ def parse_config(data: Any, source: str = "<memory>") -> Config:
     site = _read_site(top.section("site"))
     inst = top.section("instrument")
     channels = _read_channels(inst)
-    radiometer = _read_port(inst.section("radiometer"))
-    tracker = _read_port(inst.section("tracker"))
+    radiometer = _read_port(inst.section("radiometer"), RADIOMETER_DRIVERS)
+    tracker = _read_port(inst.section("tracker"), TRACKER_DRIVERS)
     inst.finish()
     plan = _read_plan(top.section("plan", required=False))
     acquisition = _read_acquisition(top.section("acquisition", required=False))

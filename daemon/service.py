@@ -290,17 +290,15 @@ def main(argv: list[str] | None = None) -> int:
         print(f"heliotroped: {exc}", file=sys.stderr)
         return EX_CONFIG
 
+    from daemon.acquisition import open_devices
     from daemon.store import Store, StoreError
-    from drivers.reference import open_radiometer, open_tracker
 
     try:
         store = Store.open(config.store_path)
     except StoreError as exc:
         print(f"heliotroped: {exc}", file=sys.stderr)
         return EX_IOERR
-    r, t = config.radiometer, config.tracker
-    radiometer = open_radiometer(r.url, r.baudrate, r.timeout_s, r.retries)
-    tracker = open_tracker(t.url, t.baudrate, t.timeout_s, t.retries)
+    radiometer, tracker = open_devices(config)
     service = Service(config, store, radiometer, tracker)
     finished = threading.Event()
     threading.Thread(target=_stop_on_signal, args=(service, finished), daemon=True,
