@@ -18,6 +18,7 @@ demo: $(STAMP)
 	$(BIN)/heliotrope demo
 
 test: $(STAMP)
+	$(BIN)/ruff check daemon drivers sim_instrument tests benchmarks
 	$(BIN)/python -m pytest -q
 
 lint: $(STAMP)
