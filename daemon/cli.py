@@ -337,6 +337,14 @@ def _add_dates(c: argparse.ArgumentParser, to_required: bool = False) -> None:
                                                         " (default: D1)"))
 
 
+def _add_service_config(c: argparse.ArgumentParser) -> None:
+    """``--config FILE``, defaulting to the service's own configuration."""
+    c.add_argument("--config", default=os.environ.get("HELIOTROPE_CONFIG",
+                                                      "/etc/heliotrope/heliotrope.yaml"),
+                   metavar="FILE", help="configuration file (default: %(default)s, from "
+                   "$HELIOTROPE_CONFIG when set)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="heliotrope", description=(
         "Operate a heliotrope sun-radiometer station: read results, plans and "
@@ -378,11 +386,7 @@ def build_parser() -> argparse.ArgumentParser:
         "It only reads: it never moves the tracker, never sets a clock, never resets a "
         "device. Stop the service first (it holds the ports). Exit 0 when everything "
         "answered, 69 otherwise.")
-    c.add_argument("--config", default=os.environ.get("HELIOTROPE_CONFIG",
-                                                      "/etc/heliotrope/heliotrope.yaml"),
-                   metavar="FILE",
-                   help="configuration file (default: %(default)s, from $HELIOTROPE_CONFIG "
-                        "when set)")
+    _add_service_config(c)
     c.add_argument("--radiometer-port", metavar="URL",
                    help="probe this port instead of the configured one "
                         "(e.g. socket://127.0.0.1:7001 for heliotrope-sim --port tcp:7001)")
@@ -401,10 +405,7 @@ def build_parser() -> argparse.ArgumentParser:
         "is computed and stored. This command WRITES to the store: it opens it with the "
         "service's writer (safe while the service runs).")
     _add_dates(c, to_required=True)
-    c.add_argument("--config", default=os.environ.get("HELIOTROPE_CONFIG",
-                                                      "/etc/heliotrope/heliotrope.yaml"),
-                   metavar="FILE", help="configuration (default: %(default)s, from "
-                   "$HELIOTROPE_CONFIG when set)")
+    _add_service_config(c)
     c.add_argument("--db", help="store path (default: $HELIOTROPE_DB, else the "
                    "configuration's store.path)")
     c.add_argument("--json", action="store_true", help="print JSON")
