@@ -47,13 +47,6 @@ def sd_notify(message: str) -> None:
         log.debug("sd_notify failed: %s", exc)
 
 
-def _item_key(day: date, item) -> tuple:
-    """Identity of a plan item, stable across re-plans of the same day."""
-    return (day, getattr(item, "session", None), getattr(item, "airmass", None),
-            getattr(item, "kind", None), item.time_utc if getattr(item, "session", None)
-            == "routine" else None)
-
-
 class Service:
     """The scheduler adapter. ``scheduler`` and ``clock`` are injectable for tests."""
 
@@ -111,7 +104,9 @@ class Service:
         now = self.clock.now()
         missed = 0
         for i, item in enumerate(plan.timeline()):
-            key = _item_key(day, item)
+            # Plan items are frozen values and the plan a pure function of (config, day),
+            # so a re-plan of the same day yields equal items: done ones are not repeated.
+            key = (day, item)
             if key in self.done:
                 continue
             if item.time_utc < now - timedelta(seconds=MISFIRE_GRACE_S):
@@ -145,7 +140,7 @@ class Service:
         """One plan item on the worker thread; nothing it raises stops the service."""
         from daemon.acquisition import perform
 
-        key = _item_key(day, item)
+        key = (day, item)
         if key in self.done or self.station.stopping.is_set():
             return
         self.done.add(key)
