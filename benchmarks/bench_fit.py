@@ -34,8 +34,8 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from daemon.langley import WINDOW_EDGE_TOLERANCE, fit_session  # noqa: E402
-from daemon.sessionfit import (  # noqa: E402
+from daemon.science.langley import WINDOW_EDGE_TOLERANCE, fit_session  # noqa: E402
+from daemon.science.sessionfit import (  # noqa: E402
     ChannelSeries,
     apply_day_check,
     drift_per_hour,

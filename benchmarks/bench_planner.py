@@ -3,7 +3,7 @@
 Prints the time to plan one day (median of repeated runs), the time to plan a whole
 year, and the worst air-mass miss at the planned times over that year, checked with
 an independent solar-position call (``pvlib.solarposition.spa_python`` through
-``daemon.solar.sun_position``). Budgets (DESIGN.md): one day under 50 ms, a year
+``daemon.science.solar.sun_position``). Budgets (DESIGN.md): one day under 50 ms, a year
 under 5 s. Exit status 1 when a budget or the 0.1 % accuracy is missed.
 
     .venv/bin/python benchmarks/bench_planner.py [--config FILE] [--year 2025]
@@ -20,9 +20,9 @@ from pathlib import Path
 
 import numpy as np
 
-from daemon import solar
-from daemon.config import load_config
-from daemon.planner import plan_day
+from daemon.config.settings import load_config
+from daemon.science import solar
+from daemon.station.planner import plan_day
 
 ROOT = Path(__file__).resolve().parents[1]
 DAY_BUDGET_S = 0.050

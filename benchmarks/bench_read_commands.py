@@ -1,7 +1,7 @@
 """Wall time of the operator's read commands, as a person over SSH would start them.
 
 Each command runs as a fresh process (the installed ``heliotrope`` script when it is
-there, else ``python -m daemon.cli``) against a synthetic clear day, and the median of
+there, else ``python -m daemon.commands.cli``) against a synthetic clear day, and the median of
 N runs is printed beside that of ``python3 -c pass`` (the interpreter's own start-up).
 Budget (DESIGN.md): ``heliotrope today --json`` under 150 ms on the development machine.
 
@@ -46,7 +46,7 @@ def main() -> int:
     from tests.synthetic_store import CONFIG_PATH, DAY, build_day
 
     script = Path(sys.executable).with_name("heliotrope")
-    base = [str(script)] if script.exists() else [sys.executable, "-m", "daemon.cli"]
+    base = [str(script)] if script.exists() else [sys.executable, "-m", "daemon.commands.cli"]
     d = DAY.isoformat()
     with tempfile.TemporaryDirectory() as tmp:
         db = Path(tmp) / "heliotrope.db"

@@ -26,11 +26,11 @@ import yaml
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from daemon.acquisition import Station, local_midnight_utc, run_day  # noqa: E402
-from daemon.bench import bench_rig, quiet_site, simulator  # noqa: E402
-from daemon.clock import SimClock  # noqa: E402
-from daemon.config import load_config, parse_config  # noqa: E402
-from daemon.planner import Plan, PlannedTarget  # noqa: E402
+from daemon.config.settings import load_config, parse_config  # noqa: E402
+from daemon.station.acquisition import Station, local_midnight_utc, run_day  # noqa: E402
+from daemon.station.bench import bench_rig, quiet_site, simulator  # noqa: E402
+from daemon.station.clock import SimClock  # noqa: E402
+from daemon.station.planner import Plan, PlannedTarget  # noqa: E402
 
 CONFIG = ROOT / "config" / "pico-sereno.yaml"
 
@@ -75,7 +75,7 @@ def idle_cpu(idle_s: float) -> tuple[float, float]:
         sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
         sock.bind(str(sock_path))
         sock.settimeout(60)
-        proc = subprocess.Popen([sys.executable, "-m", "daemon.service", "--config",
+        proc = subprocess.Popen([sys.executable, "-m", "daemon.station.service", "--config",
                                  str(cfg_path), "--log-level", "ERROR"],
                                 env=dict(os.environ, NOTIFY_SOCKET=str(sock_path)))
         try:
@@ -120,7 +120,7 @@ def target_latency(n: int) -> list[float]:
 
     from apscheduler.schedulers.background import BackgroundScheduler
 
-    from daemon.service import Service
+    from daemon.station.service import Service
 
     # Move the site (daemon configuration and simulator scenario alike) to the longitude
     # where it is about noon now, so the sun is up whatever the hour of the run.
@@ -146,7 +146,7 @@ def target_latency(n: int) -> list[float]:
         # path, not the sky.
         # Lock on the sun first, so the figure is the scheduler and acquisition path and
         # not the first slew. The simulator's sun is wherever the real hour puts it.
-        from daemon.solar import geometry_at
+        from daemon.science.solar import geometry_at
         aim = geometry_at(now, cfg.site)
         if aim.apparent_elevation_deg < 5:
             print("latency: the sun is down at the site now; run this in its daytime")

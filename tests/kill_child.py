@@ -10,10 +10,10 @@ import sys
 from datetime import date, timedelta
 from pathlib import Path
 
-from daemon.acquisition import Station, local_midnight_utc, run_day
-from daemon.clock import SimClock
-from daemon.config import load_config
-from daemon.store import Store
+from daemon.config.settings import load_config
+from daemon.station.acquisition import Station, local_midnight_utc, run_day
+from daemon.station.clock import SimClock
+from daemon.store.writer import Store
 from tests.fakes import FakeRadiometer, FakeTracker
 
 CONFIG = Path(__file__).resolve().parent.parent / "config" / "pico-sereno.yaml"

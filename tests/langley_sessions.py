@@ -5,7 +5,7 @@ Bodhaine Rayleigh at the pressure of the moment, Komhyr ozone air mass with the
 day's true ozone column, Angstrom aerosol, Kasten-Young air mass, SPA geometry and
 Earth-Sun distance) at the times the daemon's planner chooses, with the simulator's
 detector noise; the geometry stored with each measurement is the daemon's own
-(:mod:`daemon.solar`), as in the field. On top of the simulator's constant sky, a
+(:mod:`daemon.science.solar`), as in the field. On top of the simulator's constant sky, a
 "realistic" clear day has what a real one has: the aerosol wanders (a first-order
 autoregressive series), the ozone column is not the nominal one, and the pressure
 drifts with the weather and the daily tide.
@@ -33,10 +33,10 @@ from pathlib import Path
 
 import numpy as np
 
-from daemon import solar
-from daemon.config import Config, load_config
-from daemon.planner import plan_day
-from daemon.store import MeasurementRecord
+from daemon.config.settings import Config, load_config
+from daemon.science import solar
+from daemon.station.planner import plan_day
+from daemon.store.writer import MeasurementRecord
 from drivers.interfaces import Housekeeping
 from sim_instrument import sky
 from sim_instrument.scenario import load_scenario

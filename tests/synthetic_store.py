@@ -1,9 +1,9 @@
-"""A synthetic clear day at Pico Sereno written through daemon.store.Store, for the
+"""A synthetic clear day at Pico Sereno written through daemon.store.writer.Store, for the
 read-command tests (status, export, plot, report, ssh-gate, read path).
 
 Signals follow the Beer-Lambert-Bouguer law V = V0 exp(-tau m) (common practice, no
 source) with the plan's real targets and air masses; the session fit is the service's
-own (daemon.sessionfit). One morning point of every channel is dimmed by 3 % (a thin
+own (daemon.science.sessionfit). One morning point of every channel is dimmed by 3 % (a thin
 cloud with a steady burst: the fit must reject it), one morning point has no sun lock
 (screened), one target failed, and there are a few events.
 """
@@ -16,9 +16,9 @@ from pathlib import Path
 
 import numpy as np
 
-from daemon.config import load_config
-from daemon.planner import plan_day
-from daemon.store import MeasurementRecord, Store
+from daemon.config.settings import load_config
+from daemon.station.planner import plan_day
+from daemon.store.writer import MeasurementRecord, Store
 from drivers.interfaces import Housekeeping
 
 CONFIG_PATH = Path(__file__).resolve().parent.parent / "config" / "pico-sereno.yaml"
@@ -77,7 +77,7 @@ def _record(t, session, airmass, rng, channels, *, factor=1.0, locked=True,
 def build_day(path: Path, *, fit: bool = True, heartbeat: dt.datetime | None = None,
               events: bool = True) -> SyntheticDay:
     """Write the synthetic day into a new store at ``path`` and fit both sessions."""
-    from daemon.sessionfit import fit_stored_session
+    from daemon.station.fitting import fit_stored_session
 
     config = load_config(CONFIG_PATH)
     plan = plan_day(config, DAY)

@@ -9,11 +9,11 @@ from pathlib import Path
 
 import pytest
 
-from daemon.acquisition import Station, local_midnight_utc, perform, run_day
-from daemon.clock import SimClock
-from daemon.config import load_config
-from daemon.planner import plan_day
-from daemon.store import Store
+from daemon.config.settings import load_config
+from daemon.station.acquisition import Station, local_midnight_utc, perform, run_day
+from daemon.station.clock import SimClock
+from daemon.station.planner import plan_day
+from daemon.store.writer import Store
 from tests.fakes import FakeRadiometer, FakeTracker
 
 CONFIG = Path(__file__).resolve().parent.parent / "config" / "pico-sereno.yaml"

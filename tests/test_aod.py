@@ -10,13 +10,13 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from daemon import aod as aod_mod
-from daemon import solar
-from daemon.aod import aerosol_optical_depth, angstrom_exponent, angstrom_pair, update_aod
-from daemon.config import Channel
-from daemon.sessionfit import fit_stored_session
-from daemon.store import Store
-from daemon.storeread import aod_between, open_readonly, stored_calibration
+from daemon.config.settings import Channel
+from daemon.science import solar
+from daemon.science.aod import aerosol_optical_depth, angstrom_exponent, angstrom_pair
+from daemon.station import fitting as fitting_mod
+from daemon.station.fitting import fit_stored_session, update_aod
+from daemon.store.reader import aod_between, open_readonly, stored_calibration
+from daemon.store.writer import Store
 from tests.langley_sessions import pico_config, simulate_session
 
 NOW = dt.datetime(2027, 2, 16, 3, 0, tzinfo=dt.UTC)
@@ -172,7 +172,7 @@ def test_a_failing_aod_update_does_not_lose_the_fit(tmp_path, monkeypatch):
     def broken(*args, **kwargs):
         raise RuntimeError("disk full")
 
-    monkeypatch.setattr(aod_mod, "update_aod", broken)
+    monkeypatch.setattr(fitting_mod, "update_aod", broken)
     store = Store.open(tmp_path / "h.db")
     try:
         for rec in s.records():

@@ -12,11 +12,12 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from daemon.campaign import CalibrationError, SessionV0, calibrate, combine_sessions
-from daemon.cli import main
-from daemon.sessionfit import fit_stored_session
-from daemon.store import Store
-from daemon.storeread import aod_between, open_readonly, stored_calibration
+from daemon.commands.calibrate import calibrate
+from daemon.commands.cli import main
+from daemon.science.campaign import CalibrationError, SessionV0, combine_sessions
+from daemon.station.fitting import fit_stored_session
+from daemon.store.reader import aod_between, open_readonly, stored_calibration
+from daemon.store.writer import Store
 from tests.langley_sessions import CONFIG_PATH, days, pico_config, simulate_session
 
 NOW = dt.datetime(2027, 3, 1, 12, 0, tzinfo=dt.UTC)

@@ -7,7 +7,7 @@ from datetime import UTC, datetime, timedelta, timezone
 
 import pytest
 
-from daemon.clock import RealClock, SimClock, require_utc
+from daemon.station.clock import RealClock, SimClock, require_utc
 
 
 def test_sim_clock_jumps_to_the_next_event():
@@ -44,7 +44,7 @@ def test_real_clock_is_aware_utc_and_wakes_early():
 
 
 def test_step_detector_sees_steps_of_the_wall_clock_only():
-    from daemon.clock import StepDetector
+    from daemon.station.clock import StepDetector
 
     clock = SimClock(datetime(2027, 2, 15, 15, 0, tzinfo=UTC))
     watch = StepDetector(clock, threshold_s=60)

@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 import yaml
 
-from daemon.cli import main
-from daemon.config import EX_CONFIG, ConfigError, load_config, parse_config
+from daemon.commands.cli import main
+from daemon.config.settings import EX_CONFIG, ConfigError, load_config, parse_config
 
 CONFIG_DIR = Path(__file__).resolve().parent.parent / "config"
 EXAMPLES = sorted(CONFIG_DIR.glob("*.yaml"))

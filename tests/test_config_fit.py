@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from daemon.config import Channel, ConfigError, FitSettings, load_config, parse_config
+from daemon.config.settings import Channel, ConfigError, FitSettings, load_config, parse_config
 
 CONFIG = Path(__file__).resolve().parent.parent / "config" / "pico-sereno.yaml"
 NEW_FIT_KEYS = ("max_abs_residual", "max_residual_trend", "min_aerosol_optical_depth",

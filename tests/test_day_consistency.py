@@ -9,9 +9,10 @@ import sqlite3
 
 import pytest
 
-from daemon.config import FitSettings
-from daemon.sessionfit import day_disagreements, fit_stored_session
-from daemon.store import Store
+from daemon.config.settings import FitSettings
+from daemon.science.sessionfit import day_disagreements
+from daemon.station.fitting import fit_stored_session
+from daemon.store.writer import Store
 from tests.langley_sessions import pico_config, simulate_session
 
 WINDOW = ("380", "440", "500", "675", "870", "1020")

@@ -13,9 +13,9 @@ from pathlib import Path
 
 import pytest
 
-from daemon.bench import run_simulated_day
-from daemon.cli import main
-from daemon.config import load_config
+from daemon.commands.cli import main
+from daemon.config.settings import load_config
+from daemon.station.bench import run_simulated_day
 
 CONFIG = Path(__file__).resolve().parent.parent / "config" / "pico-sereno.yaml"
 DAY = date(2027, 2, 15)

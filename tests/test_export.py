@@ -11,9 +11,9 @@ import json
 import numpy as np
 import pytest
 
-from daemon import export as ex
-from daemon.cli import main
-from daemon.storeread import open_readonly, results_between
+from daemon.commands import export as ex
+from daemon.commands.cli import main
+from daemon.store.reader import open_readonly, results_between
 from tests.synthetic_store import DAY, build_day
 
 D = DAY.isoformat()
@@ -125,7 +125,7 @@ def test_empty_range_gives_a_header_or_an_empty_array(day, capsys):
 
 
 def test_aod_export_uses_the_calibration_table(tmp_path, capsys):
-    from daemon.store import Store
+    from daemon.store.writer import Store
 
     day = build_day(tmp_path / "aod.db", fit=False, events=False)
     mid = day.record_ids[("am", 0)]

@@ -11,8 +11,8 @@ from pathlib import Path
 
 import pytest
 
-from daemon.bench import run_simulated_day
-from daemon.config import load_config
+from daemon.config.settings import load_config
+from daemon.station.bench import run_simulated_day
 
 CONFIG = Path(__file__).resolve().parent.parent / "config" / "pico-sereno.yaml"
 

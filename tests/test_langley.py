@@ -11,8 +11,8 @@ import scipy.stats
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from daemon.config import FitSettings
-from daemon.langley import (
+from daemon.config.settings import FitSettings
+from daemon.science.langley import (
     drift_sensitivity,
     fit_line,
     fit_session,
@@ -262,12 +262,12 @@ def test_v0_at_1au_rejects_a_bad_factor(factor):
 # --------------------------------------------------------------------------- extinction
 
 # Geometry of a morning at Pico Sereno (3650 m): apparent zeniths for the default
-# targets, Kasten-Young air mass and Komhyr ozone air mass from daemon.solar.
+# targets, Kasten-Young air mass and Komhyr ozone air mass from daemon.science.solar.
 ZENITH = np.degrees(np.arccos(1.0 / AIRMASS))  # close enough to span m = 2 to 6
 
 
 def _airmasses():
-    from daemon import solar
+    from daemon.science import solar
     m = np.asarray(solar.relative_airmass(ZENITH), dtype=float)
     m_o3 = np.asarray(solar.ozone_airmass(ZENITH, 3650.0), dtype=float)
     return m, m_o3

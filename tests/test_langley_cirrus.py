@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from daemon.sessionfit import ChannelSeries, fit_series
+from daemon.science.sessionfit import ChannelSeries, fit_series
 from tests.langley_sessions import days, pico_config, simulate_session
 
 

@@ -9,10 +9,10 @@ from dataclasses import replace
 
 import pytest
 
-from daemon.config import Channel
-from daemon.lamp import astm_g173_band_mean_w_m2_nm, lamp_check, lamp_note
-from daemon.sessionfit import fit_stored_session
-from daemon.store import Store
+from daemon.config.settings import Channel
+from daemon.science.lamp import astm_g173_band_mean_w_m2_nm, lamp_check, lamp_note
+from daemon.station.fitting import fit_stored_session
+from daemon.store.writer import Store
 from tests.langley_sessions import pico_config, simulate_session
 
 

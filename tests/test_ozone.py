@@ -1,4 +1,4 @@
-"""The daemon's ozone cross-section table (daemon/ozone.py) against published values.
+"""The daemon's ozone cross-section table (daemon/science/ozone.py) against published values.
 
 Status letters as in docs/REFERENCES.md: C read in a published source, F computed from
 a confirmed published formula, M from memory (loose tolerance).
@@ -8,8 +8,8 @@ from __future__ import annotations
 
 import pytest
 
-from daemon import ozone
-from daemon.config import Channel
+from daemon.config.settings import Channel
+from daemon.science import ozone
 from sim_instrument import sky
 
 # 10-nm bin means of Serdyuchenko et al. (2014), Atmos. Meas. Tech. 7:625, and

@@ -15,9 +15,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from daemon import solar
-from daemon.config import Config, Site, load_config
-from daemon.planner import (
+from daemon.config.settings import Config, Site, load_config
+from daemon.science import solar
+from daemon.station.planner import (
     FIT_DELAY_S,
     REPLAN_AFTER_MIDNIGHT_S,
     SUNRISE_ZENITH_DEG,

@@ -14,9 +14,9 @@ from pathlib import Path
 
 import pytest
 
-from daemon import plot
-from daemon.cli import main
-from daemon.storeread import open_readonly, results_between, session_points_readonly
+from daemon.commands import plot
+from daemon.commands.cli import main
+from daemon.store.reader import open_readonly, results_between, session_points
 from tests.synthetic_store import CONFIG_PATH, DAY, EARTH_SUN_FACTOR, TAU, V0, build_day
 
 D = DAY.isoformat()
@@ -36,20 +36,20 @@ def conn(day):
 
 
 def test_readonly_points_equal_the_writers_aggregates(day, conn):
-    from daemon.store import Store
+    from daemon.store.writer import Store
 
     with Store.open(day.path) as store:
         for session in ("am", "pm"):
             want = store.session_points(D, session)
-            got = session_points_readonly(conn, D, session)
-            assert [p["measurement_id"] for p in got] == [p.measurement_id for p in want]
+            got = session_points(conn, D, session)
+            assert [p.measurement_id for p in got] == [p.measurement_id for p in want]
             for g, w in zip(got, want, strict=True):
-                assert g["locked"] == w.locked and g["airmass"] == w.airmass
+                assert g.locked == w.locked and g.airmass == w.airmass
                 for name, st in w.channels.items():
-                    mine = g["channels"][name]
-                    assert mine["sun_mean_v"] == pytest.approx(st.sun_mean_v, rel=1e-15)
-                    assert mine["sun_sd_v"] == pytest.approx(st.sun_sd_v, rel=1e-12)
-                    assert mine["dark_mean_v"] == pytest.approx(st.dark_mean_v, rel=1e-15)
+                    mine = g.channels[name]
+                    assert mine.sun_mean_v == pytest.approx(st.sun_mean_v, rel=1e-15)
+                    assert mine.sun_sd_v == pytest.approx(st.sun_sd_v, rel=1e-12)
+                    assert mine.dark_mean_v == pytest.approx(st.dark_mean_v, rel=1e-15)
 
 
 def test_marks_show_the_outlier_rejected_and_the_unlocked_point_screened(day, conn):
@@ -208,7 +208,7 @@ def test_plot_command_errors_are_clear(day, tmp_path, capsys):
 _NO_MPL = """
 import sys
 sys.modules["matplotlib"] = None  # as if the plot extra were not installed
-from daemon.cli import main
+from daemon.commands.cli import main
 sys.exit(main(sys.argv[1:]))
 """
 
@@ -236,8 +236,8 @@ def test_png_with_matplotlib(day, tmp_path):
 def test_marks_agree_with_the_service_on_a_simulated_day(tmp_path):
     # The real bench day (simulator process, real protocol): for every channel and
     # session the recomputed marks use as many points as the service's fit did.
-    from daemon.bench import run_simulated_day
-    from daemon.config import load_config
+    from daemon.config.settings import load_config
+    from daemon.station.bench import run_simulated_day
 
     cfg = load_config(CONFIG_PATH)
     run = run_simulated_day(cfg, date(2027, 2, 15), tmp_path / "sim.db",

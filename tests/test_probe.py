@@ -21,10 +21,8 @@ import pytest
 import serial
 import yaml
 
-from daemon import cli
-from daemon.bench import simulator
-from daemon.config import Port, load_config
-from daemon.probe import (
+from daemon.commands import cli
+from daemon.commands.probe import (
     CANNOT_CONNECT,
     DEVICE_ERROR,
     NO_ANSWER,
@@ -38,6 +36,8 @@ from daemon.probe import (
     format_report,
     probe_station,
 )
+from daemon.config.settings import Port, load_config
+from daemon.station.bench import simulator
 from drivers import protocol as p
 from drivers.interfaces import Burst, Housekeeping, Identity
 

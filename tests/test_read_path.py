@@ -18,8 +18,8 @@ from pathlib import Path
 
 import pytest
 
-from daemon import storeread
-from daemon.cli import main
+from daemon.commands.cli import main
+from daemon.store import reader as storeread
 from tests.synthetic_store import CONFIG_PATH, DAY, build_day
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -60,7 +60,7 @@ def _sha(path: Path) -> str:
 
 _PROBE = """
 import json, sys
-from daemon.cli import main
+from daemon.commands.cli import main
 import io, contextlib
 out = io.StringIO()
 with contextlib.redirect_stdout(out):

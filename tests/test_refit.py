@@ -9,11 +9,11 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from daemon.cli import main
-from daemon.refit import RefitError, read_readings, refit_file, refit_readings
-from daemon.sessionfit import fit_stored_session
-from daemon.store import Store
-from daemon.storeread import RESULT_KEYS
+from daemon.commands.cli import main
+from daemon.commands.refit import RefitError, read_readings, refit_file, refit_readings
+from daemon.station.fitting import fit_stored_session
+from daemon.store.reader import RESULT_KEYS
+from daemon.store.writer import Store
 from tests.langley_sessions import CONFIG_PATH, pico_config, simulate_session
 
 DAY = dt.date(2027, 2, 15)

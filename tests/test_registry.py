@@ -8,8 +8,8 @@ import sys
 import types
 from pathlib import Path
 
-from daemon.acquisition import open_devices
-from daemon.config import load_config
+from daemon.config.settings import load_config
+from daemon.station.acquisition import open_devices
 from drivers import registry
 from drivers.reference import SerialRadiometer, SerialTracker
 from tests.fakes import FakeRadiometer, FakeTracker

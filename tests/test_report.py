@@ -13,8 +13,8 @@ from pathlib import Path
 
 import pytest
 
-from daemon.cli import main
-from daemon.report import build_report, nice_ticks
+from daemon.commands.cli import main
+from daemon.commands.report import build_report, nice_ticks
 from tests.synthetic_store import CONFIG_PATH, DAY, build_day
 
 D = DAY.isoformat()

@@ -19,13 +19,13 @@ import pytest
 import yaml
 from apscheduler.schedulers.background import BackgroundScheduler
 
-from daemon.acquisition import local_midnight_utc
-from daemon.bench import quiet_site
-from daemon.clock import SimClock
-from daemon.config import load_config
-from daemon.planner import PlannedTarget, plan_day
-from daemon.service import Service
-from daemon.store import Store
+from daemon.config.settings import load_config
+from daemon.station.acquisition import local_midnight_utc
+from daemon.station.bench import quiet_site
+from daemon.station.clock import SimClock
+from daemon.station.planner import PlannedTarget, plan_day
+from daemon.station.service import Service
+from daemon.store.writer import Store
 from tests.fakes import FakeRadiometer, FakeTracker
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -153,7 +153,8 @@ def test_corrupt_store_is_reported_and_never_touched(tmp_path):
     db = tmp_path / "svc.db"
     db.write_bytes(os.urandom(8192))
     digest = hashlib.sha256(db.read_bytes()).hexdigest()
-    proc = subprocess.run([sys.executable, "-m", "daemon.service", "--config", str(cfg_path)],
+    proc = subprocess.run([sys.executable, "-m", "daemon.station.service",
+                           "--config", str(cfg_path)],
                           capture_output=True, text=True, timeout=60)
     assert proc.returncode == 74
     assert str(db) in proc.stderr and "Traceback" not in proc.stderr
@@ -164,7 +165,7 @@ def test_corrupt_store_is_reported_and_never_touched(tmp_path):
 def test_bad_config_exits_78(tmp_path):
     bad = tmp_path / "bad.yaml"
     bad.write_text("site: {}\n")
-    proc = subprocess.run([sys.executable, "-m", "daemon.service", "--config", str(bad)],
+    proc = subprocess.run([sys.executable, "-m", "daemon.station.service", "--config", str(bad)],
                           capture_output=True, text=True, timeout=60)
     assert proc.returncode == 78
     assert "site.name: required key is missing" in proc.stderr
@@ -185,7 +186,7 @@ def test_life_cycle_under_systemd_notify(tmp_path):
         sock.bind(str(notify_path))
         sock.settimeout(30)
         env = dict(os.environ, NOTIFY_SOCKET=str(notify_path))
-        svc = subprocess.Popen([sys.executable, "-m", "daemon.service", "--config",
+        svc = subprocess.Popen([sys.executable, "-m", "daemon.station.service", "--config",
                                 str(cfg_path)], env=env, stderr=subprocess.PIPE, text=True)
         got: list[str] = []
         while not ({"READY=1", "WATCHDOG=1"} <= set(got)):

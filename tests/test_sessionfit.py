@@ -10,10 +10,12 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from daemon import plot, storeread
-from daemon.config import Channel, parse_config
-from daemon.sessionfit import fit_stored_session, temperature_corrected
-from daemon.store import MeasurementRecord, Store
+from daemon.commands import plot
+from daemon.config.settings import Channel, parse_config
+from daemon.science.screening import temperature_corrected
+from daemon.station.fitting import fit_stored_session
+from daemon.store import reader as storeread
+from daemon.store.writer import MeasurementRecord, Store
 from drivers.interfaces import Housekeeping
 
 UTC = dt.UTC
@@ -266,7 +268,7 @@ def test_pressure_change_is_normalised_or_fails_the_blue_channels(tmp_path):
     # p/1013.25 scaling, docs/REFERENCES.md). A 6 hPa fall through the afternoon tilts the
     # 380 nm Langley plot; the BSRN manual (McArthur 2005, sec. 7.4.2.1) asks for
     # normalisation or dropping channels below 500 nm when p moves more than 1 hPa.
-    from daemon import solar
+    from daemon.science import solar
     config = make_config()
     store = Store.open(tmp_path / "h.db")
     pressures = np.linspace(652.0, 646.0, AIRMASS.size)
@@ -310,7 +312,7 @@ def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
     # Water-vapour transmission exp(-a (u m)^b), b = 0.6 (docs/REFERENCES.md, from memory);
     # the aerosol at 940 nm follows the Angstrom law between 870 and 1020 nm. Schmid
     # and Wehrli (1995) repeat the 0.94 um V0 to 1.0 % with a modified Langley.
-    from daemon import solar
+    from daemon.science import solar
     config = _water_config()
     v0_wv, a_ub = 1.05, 0.35
     aer = {n: TRUTH[n][1] - float(solar.rayleigh_optical_depth(WAVELENGTH[n], 650.0))

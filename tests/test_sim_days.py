@@ -1,6 +1,6 @@
 """Whole simulated days through the daemon: the simulator's scenarios seen end to end.
 
-Each day runs daemon.bench.run_simulated_day: the simulator as its own process on
+Each day runs daemon.station.bench.run_simulated_day: the simulator as its own process on
 pseudo-terminals, the real drivers, planner, acquisition, store and fit. The truth is
 the simulator's own V0 at 1 AU. (The fault-storm day through the daemon is
 tests/test_fault_storm.py; every fault against the drivers is tests/test_link_faults.py.)
@@ -13,8 +13,8 @@ from pathlib import Path
 
 import pytest
 
-from daemon.bench import run_simulated_day
-from daemon.config import load_config
+from daemon.config.settings import load_config
+from daemon.station.bench import run_simulated_day
 
 CONFIG_DIR = Path(__file__).resolve().parent.parent / "config"
 PICO_DAY = date(2027, 2, 15)

@@ -10,8 +10,8 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
 
-from daemon import solar
-from daemon.config import Site
+from daemon.config.settings import Site
+from daemon.science import solar
 
 # NREL SPA worked example inputs: Reda and Andreas (2004), NREL/TP-560-34302, Table A5.1.
 SPA_SITE = Site(name="SPA worked example", latitude_deg=39.742476, longitude_deg=-105.1786,

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from daemon import sshgate
+from daemon.commands import sshgate
 from tests.synthetic_store import CONFIG_PATH, DAY, build_day
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -105,7 +105,7 @@ def test_read_commands_pass_with_the_gates_own_store(line, argv, capsys):
 
 
 def test_help_lists_the_read_commands(capsys):
-    assert sshgate.run_gate("help", "x.db", None) == 0
+    assert sshgate.run_gate("help", "x.db", None, main=lambda argv: pytest.fail(argv)) == 0
     out = capsys.readouterr().out
     for command in sshgate.ALLOWED:
         assert f"  {command}" in out
@@ -113,7 +113,7 @@ def test_help_lists_the_read_commands(capsys):
 
 def _gate(env_line: str, day, cwd: Path) -> subprocess.CompletedProcess:
     env = {**os.environ, "SSH_ORIGINAL_COMMAND": env_line}
-    return subprocess.run([sys.executable, "-m", "daemon.cli", "ssh-gate", "--db",
+    return subprocess.run([sys.executable, "-m", "daemon.commands.cli", "ssh-gate", "--db",
                            str(day.path), "--config", str(CONFIG_PATH)], capture_output=True,
                           text=True, cwd=cwd, env={**env, "PYTHONPATH": str(ROOT)},
                           timeout=60)
@@ -139,7 +139,8 @@ def test_the_forced_command_end_to_end(day, tmp_path):
 
 def test_no_command_means_no_shell(day, tmp_path):
     env = {k: v for k, v in os.environ.items() if k != "SSH_ORIGINAL_COMMAND"}
-    r = subprocess.run([sys.executable, "-m", "daemon.cli", "ssh-gate", "--db", str(day.path)],
+    r = subprocess.run([sys.executable, "-m", "daemon.commands.cli", "ssh-gate",
+                        "--db", str(day.path)],
                        capture_output=True, text=True, cwd=tmp_path,
                        env={**env, "PYTHONPATH": str(ROOT)}, timeout=60)
     assert r.returncode == 77 and "no login shell" in r.stderr

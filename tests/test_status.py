@@ -9,9 +9,9 @@ from pathlib import Path
 
 import pytest
 
-from daemon.cli import main
-from daemon.status import CRITICAL, OK, WARNING, station_status, utc_local
-from daemon.store import Store
+from daemon.commands.cli import main
+from daemon.commands.status import CRITICAL, OK, WARNING, station_status, utc_local
+from daemon.store.writer import Store
 from tests.synthetic_store import DAY, build_day
 
 UTC = dt.UTC

@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import daemon.store as store_mod
-from daemon import storeread
-from daemon.store import MeasurementRecord, Store, StoreError
+import daemon.store.writer as store_mod
+from daemon.store import reader as storeread
+from daemon.store.writer import MeasurementRecord, Store, StoreError
 from drivers.interfaces import Housekeeping
 
 UTC = dt.UTC
@@ -495,7 +495,7 @@ def test_open_readonly_explains_a_missing_or_wrong_file(tmp_path):
 
 def test_storeread_imports_only_the_standard_library():
     # The operator's read path must start fast: no sqlite-utils, numpy, pandas or pvlib.
-    code = ("import sys, daemon.storeread; "
+    code = ("import sys, daemon.store.reader; "
             "heavy = {'sqlite_utils', 'numpy', 'pandas', 'pvlib', 'yaml', 'scipy'}; "
             "print(sorted(heavy & {m.split('.')[0] for m in sys.modules}))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
@@ -509,7 +509,7 @@ def test_committed_measurements_survive_a_kill_9(db_path):
         "import os, signal, sys\n"
         "sys.path.insert(0, 'tests')\n"
         "from test_store import make_record\n"
-        "from daemon.store import Store\n"
+        "from daemon.store.writer import Store\n"
         f"s = Store.open({str(db_path)!r})\n"
         "for i in range(3):\n"
         "    s.record_measurement(make_record(i))\n"

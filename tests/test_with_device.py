@@ -137,7 +137,7 @@ def test_link_stayed_clean(radiometer):
 def test_device_tests_pass_against_the_simulator(request):
     if request.config.getoption("--device-port"):
         pytest.skip("a device port was given: the device tests above ran against it")
-    from daemon.bench import simulator
+    from daemon.station.bench import simulator
 
     with simulator("pico-sereno-clear", seed=5, port="tcp:0") as ends:
         run = subprocess.run(

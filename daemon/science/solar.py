@@ -17,7 +17,6 @@ Conventions
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -28,32 +27,27 @@ import pandas as pd
 import pvlib
 import pvlib.spa
 
+from daemon.science.atmosphere import (  # noqa: F401 - part of this module's interface
+    STANDARD_PRESSURE_HPA,
+    ArrayLike,
+    like_input,
+    ozone_airmass,
+    positive,
+    rayleigh_optical_depth,
+)
+
 if TYPE_CHECKING:
-    from daemon.config import Site
-
-#: Standard sea-level pressure [hPa]; Bodhaine et al. (1999) tabulate at this pressure.
-STANDARD_PRESSURE_HPA = 1013.25
-
-#: Mean Earth radius used by Komhyr (1980) for the ozone air mass [km].
-EARTH_RADIUS_KM = 6371.229
+    from daemon.config.settings import Site
 
 #: Refraction at sunrise and sunset, the SPA input that decides below which elevation
 #: no refraction is applied [degrees]; the SPA's typical value (Reda and Andreas 2004,
 #: worked example inputs) and pvlib's default.
 SPA_HORIZON_REFRACTION_DEG = 0.5667
 
-ArrayLike = float | Sequence[float] | np.ndarray
 Times = datetime | Sequence[datetime] | pd.DatetimeIndex
 
 
 # --------------------------------------------------------------------------- inputs
-
-def _positive(name: str, value: float, unit: str) -> float:
-    value = float(value)
-    if not math.isfinite(value) or value <= 0:
-        raise ValueError(f"{name} must be a positive finite number of {unit}, got {value!r}")
-    return value
-
 
 def _to_utc_index(times_utc: Times) -> pd.DatetimeIndex:
     """A UTC ``DatetimeIndex`` from aware datetimes; naive input is refused."""
@@ -80,11 +74,6 @@ def _unix_seconds(index: pd.DatetimeIndex) -> np.ndarray:
     return index.as_unit("ns").asi8 / 1e9
 
 
-def _like_input(value: ArrayLike, result: np.ndarray) -> float | np.ndarray:
-    """Return a float for scalar input, an array otherwise."""
-    return float(result) if np.ndim(value) == 0 else np.asarray(result, dtype=float)
-
-
 # --------------------------------------------------------------------------- pressure
 
 def site_pressure_hpa(site: Site) -> float:
@@ -92,7 +81,7 @@ def site_pressure_hpa(site: Site) -> float:
 
     Parameters
     ----------
-    site : daemon.config.Site
+    site : daemon.config.settings.Site
         ``site.pressure_hpa`` is used when set; otherwise the pressure follows from
         ``site.elevation_m`` through the standard atmosphere.
 
@@ -152,7 +141,7 @@ def sun_position(times_utc: Times, site: Site, pressure_hpa: float | None = None
     ----------
     times_utc : datetime, sequence of datetime or pandas.DatetimeIndex
         Timezone-aware instants (any zone; converted to UTC). Naive input is refused.
-    site : daemon.config.Site
+    site : daemon.config.settings.Site
         Latitude, longitude [degrees, east positive] and elevation [m].
     pressure_hpa : float, optional
         Pressure for the refraction correction [hPa]; default
@@ -177,7 +166,7 @@ def sun_position(times_utc: Times, site: Site, pressure_hpa: float | None = None
     """
     index = _to_utc_index(times_utc)
     p_hpa = site_pressure_hpa(site) if pressure_hpa is None else pressure_hpa
-    p_hpa = _positive("pressure_hpa", p_hpa, "hPa")
+    p_hpa = positive("pressure_hpa", p_hpa, "hPa")
     temp_c = site.temperature_c if temperature_c is None else float(temperature_c)
     frame = pvlib.solarposition.spa_python(
         index, site.latitude_deg, site.longitude_deg, altitude=site.elevation_m,
@@ -199,7 +188,7 @@ def sun_position_unix(unix_s: np.ndarray, site: Site, pressure_hpa: float,
     ----------
     unix_s : numpy.ndarray
         Instants as seconds since 1970-01-01 UTC [s].
-    site : daemon.config.Site
+    site : daemon.config.settings.Site
     pressure_hpa : float
         Pressure for refraction [hPa].
     temperature_c : float
@@ -268,7 +257,7 @@ def relative_airmass(apparent_zenith_deg: ArrayLike) -> float | np.ndarray:
     """
     z = np.asarray(apparent_zenith_deg, dtype=float)
     am = pvlib.atmosphere.get_relative_airmass(z, model="kastenyoung1989")
-    return _like_input(apparent_zenith_deg, am)
+    return like_input(apparent_zenith_deg, am)
 
 
 #: Kasten-Young air mass with the sun's centre on the apparent horizon (about 37.92).
@@ -304,7 +293,7 @@ def apparent_zenith_from_airmass(airmass: ArrayLike) -> float | np.ndarray:
         lo = np.where(above, lo, mid)
     z = 0.5 * (lo + hi)
     z = np.where((m >= relative_airmass(0.0)) & (m <= HORIZON_AIRMASS), z, np.nan)
-    return _like_input(airmass, z if np.ndim(airmass) else z[0])
+    return like_input(airmass, z if np.ndim(airmass) else z[0])
 
 
 def absolute_airmass(relative: ArrayLike, pressure_hpa: float) -> float | np.ndarray:
@@ -323,49 +312,9 @@ def absolute_airmass(relative: ArrayLike, pressure_hpa: float) -> float | np.nda
     float or numpy.ndarray
         ``relative * pressure_hpa / 1013.25`` [dimensionless].
     """
-    p = _positive("pressure_hpa", pressure_hpa, "hPa")
+    p = positive("pressure_hpa", pressure_hpa, "hPa")
     am = pvlib.atmosphere.get_absolute_airmass(np.asarray(relative, dtype=float), p * 100.0)
-    return _like_input(relative, am)
-
-
-def ozone_airmass(apparent_zenith_deg: ArrayLike, station_height_m: float,
-                  layer_height_km: float = 22.0) -> float | np.ndarray:
-    """Air mass of a thin ozone layer over a spherical Earth (Komhyr 1980).
-
-    ``mu = (R + h) / sqrt((R + h)^2 - (R + r)^2 sin^2 z)``, with R = 6371.229 km,
-    h the layer height and r the station height.
-
-    Parameters
-    ----------
-    apparent_zenith_deg : float or array_like
-        Refracted solar zenith angle at the station [degrees].
-    station_height_m : float
-        Station height above sea level [m].
-    layer_height_km : float, default 22.0
-        Height of the effective ozone layer above sea level [km].
-
-    Returns
-    -------
-    float or numpy.ndarray
-        Ozone air mass [dimensionless]; NaN where the apparent zenith exceeds 90
-        degrees, as for :func:`relative_airmass`.
-
-    References
-    ----------
-    Komhyr, W. D. (1980), "Operations handbook - ozone observations with a Dobson
-    spectrophotometer", WMO Global Ozone Research and Monitoring Project Report
-    No. 6 (citation from memory; formula as given in docs/REFERENCES.md).
-    """
-    r_km = float(station_height_m) / 1000.0
-    h_km = _positive("layer_height_km", layer_height_km, "km")
-    if r_km >= h_km:
-        raise ValueError(f"station_height_m ({station_height_m:g} m) must lie below the ozone "
-                         f"layer ({h_km:g} km)")
-    z = np.asarray(apparent_zenith_deg, dtype=float)
-    outer = EARTH_RADIUS_KM + h_km
-    inner = (EARTH_RADIUS_KM + r_km) * np.sin(np.radians(z))
-    mu = outer / np.sqrt(outer**2 - inner**2)
-    return _like_input(apparent_zenith_deg, np.where(z > 90.0, np.nan, mu))
+    return like_input(relative, am)
 
 
 # --------------------------------------------------------------------------- Earth-Sun
@@ -416,51 +365,6 @@ def earth_sun_factor(times_utc: Times, delta_t_s: float | None = None) -> float 
     return 1.0 / (r * r) if isinstance(r, float) else 1.0 / np.square(r)
 
 
-# --------------------------------------------------------------------------- Rayleigh
-
-def rayleigh_optical_depth(wavelength_nm: ArrayLike,
-                           pressure_hpa: float = STANDARD_PRESSURE_HPA) -> float | np.ndarray:
-    """Rayleigh optical depth of a dry standard atmosphere (Bodhaine et al. 1999).
-
-    Parameters
-    ----------
-    wavelength_nm : float or array_like
-        Wavelength [nm], positive.
-    pressure_hpa : float, default 1013.25
-        Station pressure [hPa]; the sea-level value is scaled by ``p / 1013.25``.
-
-    Returns
-    -------
-    float or numpy.ndarray
-        Vertical Rayleigh optical depth [dimensionless].
-
-    References
-    ----------
-    Bodhaine, B. A., Wood, N. B., Dutton, E. G. and Slusser, J. R. (1999), "On
-    Rayleigh optical depth calculations", Journal of Atmospheric and Oceanic
-    Technology 16(11):1854-1861,
-    :doi:`10.1175/1520-0426(1999)016<1854:ORODC>2.0.CO;2`, eq. 30 (360 ppm CO2,
-    sea level, 45 degrees latitude).
-
-    Notes
-    -----
-    Only the pressure scaling is applied. The gravity term is left out: optical depth
-    goes as ``p / (m_a g)``, with ``g`` taken at the latitude and the mass-weighted
-    height of the air column (Bodhaine et al. 1999, eq. 22-23 and the ``m_a g`` term;
-    from memory). At 3650 m and 20 deg N, ``g`` is lower than at the 45 deg sea-level
-    reference, so this function gives tau_R about 0.3 % too small (estimate).
-    """
-    p = _positive("pressure_hpa", pressure_hpa, "hPa")
-    wl = np.asarray(wavelength_nm, dtype=float)
-    if not np.all(np.isfinite(wl) & (wl > 0)):
-        raise ValueError(f"wavelength_nm must be positive finite numbers of nm, "
-                         f"got {wavelength_nm!r}")
-    um2 = (wl / 1000.0) ** 2
-    tau = (0.0021520 * (1.0455996 - 341.29061 / um2 - 0.90230850 * um2)
-           / (1.0 + 0.0027059889 / um2 - 85.968563 * um2))
-    return _like_input(wavelength_nm, tau * (p / STANDARD_PRESSURE_HPA))
-
-
 # --------------------------------------------------------------------------- one instant
 
 @dataclass(frozen=True)
@@ -503,7 +407,7 @@ def geometry_at(when_utc: datetime, site: Site, pressure_hpa: float | None = Non
     ----------
     when_utc : datetime
         Timezone-aware instant (converted to UTC).
-    site : daemon.config.Site
+    site : daemon.config.settings.Site
     pressure_hpa : float, optional
         Measured station pressure [hPa]; default :func:`site_pressure_hpa`. Used for
         refraction and reported back.
@@ -514,7 +418,7 @@ def geometry_at(when_utc: datetime, site: Site, pressure_hpa: float | None = Non
     """
     index = _to_utc_index(when_utc)
     p_hpa = site_pressure_hpa(site) if pressure_hpa is None else pressure_hpa
-    p_hpa = _positive("pressure_hpa", p_hpa, "hPa")
+    p_hpa = positive("pressure_hpa", p_hpa, "hPa")
     pos = sun_position(index, site, p_hpa)
     z = float(pos.apparent_zenith_deg[0])
     r = float(earth_sun_distance_au(index)[0])

@@ -12,7 +12,7 @@ minute), the board at the site runs from a solar battery and an SD card, and a l
 measurement near air mass 6 cannot be taken again that day, so the extra fsync is
 worth its few milliseconds.
 
-The operator's commands never use this module: see :mod:`daemon.storeread`.
+The operator's commands never use this module: see :mod:`daemon.store.reader`.
 """
 
 from __future__ import annotations
@@ -23,21 +23,27 @@ import math
 import sqlite3
 import threading
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
-from daemon.storeread import FIT_POINT_ROLES, SESSION_STATS_SQL, StoreError, check_plan_date
+from daemon.science.points import ChannelStats, SessionPoint
+from daemon.store.reader import (
+    FIT_POINT_ROLES,
+    FIT_SESSIONS,
+    SESSIONS,
+    StoreError,
+    check_plan_date,
+    session_points,
+)
 from drivers.interfaces import Housekeeping
 
 __all__ = ["ChannelStats", "MeasurementRecord", "SessionPoint", "Store", "StoreError",
            "utc_iso"]
 
-SESSIONS = ("am", "pm", "routine")
-FIT_SESSIONS = ("am", "pm")
 STATUSES = ("ok", "failed")
 EVENT_LEVELS = ("debug", "info", "warning", "error", "critical")
 BUSY_TIMEOUT_S = 5.0
@@ -230,38 +236,6 @@ class MeasurementRecord:
     housekeeping: Housekeeping | None = None
 
 
-@dataclass(frozen=True)
-class ChannelStats:
-    """Per-channel aggregates of one measurement's raw samples [V]."""
-
-    sun_mean_v: float | None
-    sun_sd_v: float | None  # sample standard deviation; None with fewer than 2 samples
-    n_sun: int
-    dark_mean_v: float | None  # None when no dark samples were read
-    n_dark: int
-    saturated: bool
-
-
-@dataclass(frozen=True)
-class SessionPoint:
-    """One 'ok' measurement of a session, reduced for the Langley fit."""
-
-    measurement_id: int
-    time_utc: _dt.datetime
-    target_airmass: float | None
-    apparent_zenith_deg: float | None
-    azimuth_deg: float | None
-    airmass: float | None
-    ozone_airmass: float | None
-    earth_sun_factor: float | None
-    pressure_hpa: float | None
-    pointing_error_deg: float | None
-    locked: bool
-    duration_s: float | None
-    housekeeping: Housekeeping | None
-    channels: dict[str, ChannelStats] = field(default_factory=dict)
-
-
 def _check_record(rec: MeasurementRecord) -> None:
     """Reject a malformed record before anything is written."""
     if rec.session not in SESSIONS:
@@ -303,7 +277,7 @@ class Store:
 
     @property
     def conn(self) -> sqlite3.Connection:
-        """The underlying connection (for :mod:`daemon.storeread` queries and tests)."""
+        """The underlying connection (for :mod:`daemon.store.reader` queries and tests)."""
         return self.db.conn
 
     # ------------------------------------------------------------------ opening
@@ -450,7 +424,7 @@ class Store:
         ``airmass_min``, ``airmass_max``, ``accepted`` and ``reasons``, and may carry
         ``notes``, ``earth_sun_factor``, ``residual_sd``, ``fitted_utc`` and
         ``fit_points`` (dicts with ``measurement_id``, ``x``, ``y``, ``role`` from
-        :data:`daemon.storeread.FIT_POINT_ROLES` and ``reason``, the screening key of
+        :data:`daemon.store.reader.FIT_POINT_ROLES` and ``reason``, the screening key of
         a 'screened' point). NaN is stored as NULL. ``fitted_utc`` defaults to the
         system clock. In one transaction with the results, the stored fit points of
         every channel saved are replaced by the row's ``fit_points`` (none when the
@@ -513,7 +487,7 @@ class Store:
         """Store one calibration record with its per-channel rows; return its id.
 
         Each channel row carries the columns of ``calibration_channels`` (see
-        :func:`daemon.storeread.stored_calibration`); ``sessions`` and ``reasons``
+        :func:`daemon.store.reader.stored_calibration`); ``sessions`` and ``reasons``
         are stored as JSON, NaN as NULL.
         """
         cal = {"created_utc": utc_iso(created_utc), "first_date": check_plan_date(first_date),
@@ -580,35 +554,9 @@ class Store:
         the raw samples (two passes: the mean first, then squared deviations from
         it, which avoids the cancellation of the sum-of-squares formula).
         """
-        date = check_plan_date(plan_date)
-        if session not in SESSIONS:
-            raise ValueError(f"session must be one of {', '.join(SESSIONS)}; got {session!r}")
         with self._lock:
-            conn = self.db.conn
-            meas = conn.execute(_POINTS_SQL, (date, session)).fetchall()
-            stats = conn.execute(SESSION_STATS_SQL, (date, session)).fetchall()
-        by_id: dict[int, dict[str, ChannelStats]] = {}
-        for mid, channel, saturated, sun_mean, n_sun, sun_ss, dark_mean, n_dark in stats:
-            n_sun = int(n_sun or 0)
-            sd = math.sqrt(sun_ss / (n_sun - 1)) if n_sun >= 2 and sun_ss is not None else None
-            by_id.setdefault(mid, {})[channel] = ChannelStats(
-                sun_mean_v=sun_mean, sun_sd_v=sd, n_sun=n_sun,
-                dark_mean_v=dark_mean if n_dark else None, n_dark=int(n_dark or 0),
-                saturated=bool(saturated))
-        points = []
-        for r in meas:
-            hk = None
-            if r[13]:
-                hk = Housekeeping(detector_temp_c=_nan(r[14]), case_temp_c=_nan(r[15]),
-                                  ambient_temp_c=_nan(r[16]), supply_v=_nan(r[17]),
-                                  humidity_pct=_nan(r[18]), pressure_hpa=r[19])
-            points.append(SessionPoint(
-                measurement_id=r[0], time_utc=_dt.datetime.fromisoformat(r[1]),
-                target_airmass=r[2], apparent_zenith_deg=r[3], azimuth_deg=r[4],
-                airmass=r[5], ozone_airmass=r[6], earth_sun_factor=r[7], pressure_hpa=r[8],
-                pointing_error_deg=r[9], locked=bool(r[10]), duration_s=r[11],
-                housekeeping=hk, channels=by_id.get(r[0], {})))
-        return points
+            return session_points(self.db.conn, plan_date, session)
+
 
 
 def _fit_point_rows(date: str, session: str, channel: str,
@@ -634,19 +582,8 @@ def _fit_point_rows(date: str, session: str, channel: str,
     return out
 
 
-def _nan(value: float | None) -> float:
-    return math.nan if value is None else value
 
 
-_POINTS_SQL = """
-SELECT m.id, m.time_utc, m.target_airmass, m.apparent_zenith_deg, m.azimuth_deg, m.airmass,
-       m.ozone_airmass, m.earth_sun_factor, m.pressure_hpa, m.pointing_error_deg, m.locked,
-       m.duration_s, m.n_samples, h.measurement_id IS NOT NULL, h.detector_temp_c,
-       h.case_temp_c, h.ambient_temp_c, h.supply_v, h.humidity_pct, h.pressure_hpa
-FROM measurements m LEFT JOIN housekeeping h ON h.measurement_id = m.id
-WHERE m.plan_date = ? AND m.session = ? AND m.status = 'ok'
-ORDER BY m.time_utc, m.id
-"""
 
 
 def _sample_rows(mid: int, rec: MeasurementRecord) -> Iterable[dict[str, Any]]:

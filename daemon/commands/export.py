@@ -38,7 +38,8 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import IO, Any
 
-from daemon.storeread import sample_stats_cte
+from daemon.commands.output import OutputPathError, check_out_path
+from daemon.store.reader import sample_stats_cte
 
 # (column, unit); unit None for text, flags and counts, "1" for dimensionless numbers.
 MEASUREMENT_COLUMNS: tuple[tuple[str, str | None], ...] = (
@@ -77,7 +78,6 @@ COLUMNS = {"measurements": MEASUREMENT_COLUMNS, "samples": SAMPLE_COLUMNS,
            "results": RESULT_COLUMNS, "aod": AOD_COLUMNS, "events": EVENT_COLUMNS}
 WHATS = tuple(COLUMNS)
 FORMATS = ("csv", "json")
-EX_CANTCREAT = 73  # sysexits.h: cannot create the output file
 
 _MEASUREMENTS_SQL = sample_stats_cte(
     "SELECT id FROM measurements WHERE plan_date BETWEEN ?1 AND ?2") + """
@@ -114,7 +114,7 @@ ORDER BY plan_date, session, wavelength_nm, channel
 """
 
 
-class ExportError(Exception):
+class ExportError(OutputPathError):
     """The export cannot be made as asked; the message says why and what to do."""
 
 
@@ -144,7 +144,7 @@ def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dic
 
 def result_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
     """Session results in the JSON contract of ``today``, plus ``fitted_utc``."""
-    from daemon.storeread import result_row_to_contract
+    from daemon.store.reader import result_row_to_contract
 
     for r in conn.execute(_RESULTS_SQL, (first, last)):
         row = dict(zip(("plan_date", "session", "channel", "wavelength_nm", "v0", "v0_1au",
@@ -158,8 +158,8 @@ def result_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dic
 
 def event_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
     """Events from local midnight of ``first`` to local midnight after ``last``."""
-    from daemon.status import site_zone
-    from daemon.storeread import stored_plan
+    from daemon.commands.status import site_zone
+    from daemon.store.reader import stored_plan
 
     plan = stored_plan(conn)
     tz = site_zone((plan or {}).get("timezone"))
@@ -177,8 +177,8 @@ def event_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict
 
 
 def aod_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
-    """Aerosol optical depths from :func:`daemon.storeread.aod_between`."""
-    from daemon.storeread import aod_between
+    """Aerosol optical depths from :func:`daemon.store.reader.aod_between`."""
+    from daemon.store.reader import aod_between
 
     yield from aod_between(conn, first, last)
 
@@ -190,7 +190,7 @@ SOURCES = {"measurements": measurement_rows, "samples": sample_rows, "results": 
 def export_rows(conn: sqlite3.Connection, what: str, first: str | _dt.date,
                 last: str | _dt.date) -> Iterator[dict]:
     """Rows of one kind for local dates ``first`` to ``last`` (inclusive), lazily."""
-    from daemon.storeread import check_plan_date
+    from daemon.store.reader import check_plan_date
 
     if what not in SOURCES:
         raise ExportError(f"cannot export {what!r}; choose one of {', '.join(WHATS)}")
@@ -269,42 +269,19 @@ def export(conn: sqlite3.Connection, what: str, first: str | _dt.date, last: str
 
 # --------------------------------------------------------------------------- command
 
-def publish(tmp: str | Path, out: Path) -> None:
-    """Give a finished temporary file the usual permissions and move it onto ``out``."""
-    mask = os.umask(0)
-    os.umask(mask)  # mkstemp makes 0600 files; an export is as readable as any new file
-    os.chmod(tmp, 0o666 & ~mask)
-    os.replace(tmp, out)
-
-
-def _check_out_path(out: Path, db: Path) -> None:
-    if out.is_dir():
-        raise ExportError(f"--out {out}: is a directory; name a file")
-    if not out.parent.is_dir():
-        raise ExportError(f"--out {out}: the directory {out.parent} does not exist; create "
-                          "it first")
-    for suffix in ("", "-wal", "-shm", "-journal"):
-        candidate = Path(str(db) + suffix)
-        try:
-            same = out.exists() and candidate.exists() and out.samefile(candidate)
-        except OSError:
-            same = False
-        if same or out.resolve() == candidate.resolve():
-            raise ExportError(f"--out {out}: that is the store itself; choose another file")
-
-
 def cmd_export(args: argparse.Namespace) -> int:
-    from daemon.cli import EX_NOINPUT, EX_USAGE, CommandError
-    from daemon.storeread import StoreReadError, open_readonly
+    from daemon.commands.errors import EX_CANTCREAT, EX_NOINPUT, EX_USAGE, CommandError
+    from daemon.commands.output import publish
+    from daemon.store.reader import StoreReadError, open_readonly
 
     last = args.to or args.from_
     db = Path(args.db).expanduser()
     out_path = Path(args.out).expanduser() if args.out else None
     try:
         if out_path is not None:
-            _check_out_path(out_path, db)
+            check_out_path(out_path, db)
         conn = open_readonly(db)
-    except ExportError as exc:
+    except OutputPathError as exc:
         raise CommandError(str(exc), EX_USAGE) from None
     except StoreReadError as exc:
         raise CommandError(str(exc), EX_NOINPUT) from None
@@ -328,7 +305,7 @@ def cmd_export(args: argparse.Namespace) -> int:
             raise CommandError(f"--out {out_path}: cannot write ({exc})", EX_CANTCREAT) from None
         finally:
             Path(tmp).unlink(missing_ok=True)
-    except ExportError as exc:
+    except OutputPathError as exc:
         raise CommandError(str(exc), EX_USAGE) from None
     finally:
         conn.close()

@@ -2,7 +2,7 @@
 
 The simulator is started as its own process (``python -m sim_instrument``), exactly
 as a technician would start ``heliotrope-sim``; the daemon never imports it. The day
-then runs on a :class:`~daemon.clock.SimClock` with the same plan, acquisition, store
+then runs on a :class:`~daemon.station.clock.SimClock` with the same plan, acquisition, store
 and fit code as the service.
 """
 
@@ -21,7 +21,7 @@ from dataclasses import dataclass
 from datetime import date, datetime
 from pathlib import Path
 
-from daemon.config import Config
+from daemon.config.settings import Config
 
 SIM_START_TIMEOUT_S = 30.0
 
@@ -136,8 +136,8 @@ def quiet_site(data: dict, now: datetime, margin_s: float = 900) -> dict:
     life cycle, idle CPU) must not depend on the hour they happen to run at."""
     import copy
 
-    from daemon.config import parse_config
-    from daemon.planner import plan_day
+    from daemon.config.settings import parse_config
+    from daemon.station.planner import plan_day
 
     cfg = parse_config(data)
     plan = plan_day(cfg, now.astimezone(cfg.tz).date())
@@ -168,8 +168,8 @@ def bench_rig(config: Config, store_path: Path, scenario: str, seed: int, port: 
 
     Yields ``(config, store, radiometer, tracker)``; everything is closed on leaving.
     """
-    from daemon.acquisition import open_devices
-    from daemon.store import Store
+    from daemon.station.acquisition import open_devices
+    from daemon.store.writer import Store
 
     store = Store.open(store_path)
     try:
@@ -188,9 +188,9 @@ def bench_rig(config: Config, store_path: Path, scenario: str, seed: int, port: 
 def run_simulated_day(config: Config, day: date, store_path: Path, scenario: str,
                       seed: int, port: str = "pty", work_dir: Path | None = None) -> DayRun:
     """Plan ``day``, start the simulator, acquire the whole day and fit both sessions."""
-    from daemon.acquisition import Station, local_midnight_utc, run_day
-    from daemon.clock import SimClock
-    from daemon.planner import plan_day
+    from daemon.station.acquisition import Station, local_midnight_utc, run_day
+    from daemon.station.clock import SimClock
+    from daemon.station.planner import plan_day
 
     t0 = time.perf_counter()
     work_dir = work_dir or store_path.parent

@@ -18,12 +18,12 @@ import threading
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta
 
-from daemon import solar
-from daemon.clock import Clock
-from daemon.config import Config
-from daemon.planner import Plan, PlanEvent, PlannedTarget, plan_day
-from daemon.sessionfit import fit_stored_session
-from daemon.store import MeasurementRecord, Store
+from daemon.config.settings import Config
+from daemon.science import solar
+from daemon.station.clock import Clock
+from daemon.station.fitting import fit_stored_session
+from daemon.station.planner import Plan, PlanEvent, PlannedTarget, plan_day
+from daemon.store.writer import MeasurementRecord, Store
 from drivers.interfaces import (
     Burst,
     DeviceError,

@@ -13,9 +13,10 @@ and ``m_O3`` the ozone air mass of a layer at 22 km. The Angstrom exponent of a
 measurement comes from a pair of channels: ``alpha = -ln(tau_1/tau_2) / ln(l_1/l_2)``
 (Angstrom, A. 1929, Geogr. Ann. 11:156-166).
 
-The pure functions here do the arithmetic; :func:`update_aod` reads measurements from
-the store and writes the ``aod`` and ``aod_angstrom`` tables that
-:func:`daemon.storeread.aod_between` reads.
+The functions here do the arithmetic on one measurement's points;
+:func:`daemon.station.fitting.update_aod` reads measurements from the store and writes
+the ``aod`` and ``aod_angstrom`` tables that :func:`daemon.store.reader.aod_between`
+reads.
 """
 
 from __future__ import annotations
@@ -24,12 +25,9 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from daemon import solar
-from daemon.config import Channel, Config
-from daemon.ozone import channel_cross_section_cm2, ozone_optical_depth
-from daemon.sessionfit import point_signal
-from daemon.store import SESSIONS, Store
-from daemon.storeread import check_plan_date, stored_calibration
+from daemon.config.settings import Channel, Config
+from daemon.science import solar
+from daemon.science.screening import point_signal
 
 #: Wavelengths [nm] the default Angstrom pair is chosen near (common practice, no source).
 DEFAULT_ANGSTROM_NM = (440.0, 870.0)
@@ -99,74 +97,7 @@ def angstrom_pair(config: Config) -> tuple[Channel, Channel] | None:
     return (a, b) if a.wavelength_nm < b.wavelength_nm else (b, a)
 
 
-def _sessions_in(store: Store, first: str, last: str,
-                 sessions: Sequence[str]) -> list[tuple[str, str]]:
-    rows = store.conn.execute(
-        "SELECT DISTINCT plan_date, session FROM measurements WHERE status = 'ok' "
-        "AND plan_date BETWEEN ? AND ? ORDER BY plan_date, session", (first, last)).fetchall()
-    return [(d, s) for d, s in rows if s in sessions]
-
-
-def update_aod(store: Store, config: Config, first: str, last: str,
-               sessions: Sequence[str] = SESSIONS,
-               calibration: Mapping[str, Any] | None = None) -> int:
-    """Compute and store the AOD of every measurement from ``first`` to ``last``.
-
-    Parameters
-    ----------
-    store : Store
-        The service's store (written).
-    config : Config
-        Channels, ozone column, nominal pressure, screening limits.
-    first, last : str
-        Plan dates, inclusive (YYYY-MM-DD).
-    sessions : sequence of str
-        Which sessions: 'am', 'pm', 'routine'.
-    calibration : mapping, optional
-        A record as :func:`daemon.storeread.stored_calibration` returns it; default
-        the newest stored one. Without any calibration nothing is done.
-
-    Returns
-    -------
-    int
-        The number of (measurement, channel) values stored.
-
-    Notes
-    -----
-    A measurement without a confirmed lock, saturated, or without a positive signal
-    gets no AOD; a burst too variable to be clear sky gets one with a ``flag``.
-    Water-vapour channels and channels the calibration cannot use are left out.
-    """
-    d1, d2 = check_plan_date(first), check_plan_date(last)
-    cal = calibration if calibration is not None else stored_calibration(store.conn)
-    if cal is None:
-        return 0
-    v0 = {c["channel"]: c for c in cal["channels"]
-          if c["usable"] and c["v0_1au"] is not None and c["v0_1au"] > 0}
-    channels = [c for c in config.channels if c.name in v0 and not c.water_vapour]
-    if not channels:
-        return 0
-    nominal_p = solar.site_pressure_hpa(config.site)
-    tau_o3 = {}
-    for c in channels:
-        sigma = channel_cross_section_cm2(c)
-        tau_o3[c.name] = None if sigma is None else ozone_optical_depth(sigma,
-                                                                        config.site.ozone_du)
-    pair = angstrom_pair(config)
-    rows: list[dict[str, Any]] = []
-    alphas: list[dict[str, Any]] = []
-    for date, session in _sessions_in(store, d1, d2, sessions):
-        for p in store.session_points(date, session):
-            per_channel = _point_aod(p, channels, config, v0, tau_o3, nominal_p, cal["id"])
-            rows.extend(per_channel.values())
-            if pair is not None:
-                alpha = _point_alpha(p.measurement_id, per_channel, pair, cal["id"])
-                if alpha is not None:
-                    alphas.append(alpha)
-    return store.save_aod(rows, alphas)
-
-
-def _point_aod(p, channels: Sequence[Channel], config: Config, v0: Mapping[str, Any],
+def point_aod(p, channels: Sequence[Channel], config: Config, v0: Mapping[str, Any],
                tau_o3: Mapping[str, float | None], nominal_p: float,
                calibration_id: int) -> dict[str, dict[str, Any]]:
     out: dict[str, dict[str, Any]] = {}
@@ -213,7 +144,7 @@ def _point_aod(p, channels: Sequence[Channel], config: Config, v0: Mapping[str, 
     return out
 
 
-def _point_alpha(measurement_id: int, per_channel: Mapping[str, Mapping[str, Any]],
+def point_alpha(measurement_id: int, per_channel: Mapping[str, Mapping[str, Any]],
                  pair: tuple[Channel, Channel], calibration_id: int) -> dict[str, Any] | None:
     a, b = (per_channel.get(c.name) for c in pair)
     if a is None or b is None or a["flag"] or b["flag"]:

@@ -1,8 +1,8 @@
 """``heliotrope plot``: the Langley plot of one channel and session, in the terminal.
 
-The session fit (:mod:`daemon.sessionfit`) stores, beside its result, every point of
+The session fit (:mod:`daemon.science.sessionfit`) stores, beside its result, every point of
 the session as it fitted it (the ``fit_points`` table, read with
-:func:`daemon.storeread.fit_points`): the regressor x (air mass, or ``m^b`` for a
+:func:`daemon.store.reader.fit_points`): the regressor x (air mass, or ``m^b`` for a
 water-vapour channel), y (ln V after the dark, temperature, ozone and pressure
 corrections, and for a water-vapour channel the known extinctions) and the point's
 role (used, rejected as an outlier, outside the window, screened). The plot draws
@@ -14,7 +14,7 @@ is ordinary least squares on those very points).
 A store written before the per-point records existed has no ``fit_points`` for its
 sessions. The session fit cannot run here (its corrections import pvlib, which the
 read commands never do), so for those the points are screened again and marked
-used or rejected by fitting them again with :func:`daemon.langley.fit_session` and
+used or rejected by fitting them again with :func:`daemon.science.langley.fit_session` and
 the service's fit settings, without the small ozone and pressure corrections; a note
 says so, and another when the recomputed number of points used differs from the
 stored one. Without a stored result the recomputed line is drawn.
@@ -43,7 +43,7 @@ AIRMASS_LABEL = "air mass"
 LN_V_LABEL = "ln V"
 MARKS_STORED = "stored fit points"
 MARKS_RECOMPUTED = "recomputed here"
-# Stored roles (daemon.storeread.FIT_POINT_ROLES) as the plot marks them, and why.
+# Stored roles (daemon.store.reader.FIT_POINT_ROLES) as the plot marks them, and why.
 _STORED_ROLES = {"used": (USED, None),
                  "rejected": (REJECTED, "rejected by the fit as an outlier"),
                  "outside": (EXCLUDED, "outside the fit's air-mass window, or no finite value"),
@@ -146,47 +146,30 @@ class SessionView:
 
 # --------------------------------------------------------------------------- recompute
 
-def _temperature_corrected(signal_v: float, detector_temp_c: float | None, channel) -> float:
-    # Same correction as daemon.sessionfit.temperature_corrected (which cannot be imported
-    # here: it pulls in sqlite-utils through daemon.store).
-    if (channel.temp_coeff_per_k == 0.0 or detector_temp_c is None
-            or not math.isfinite(detector_temp_c)):
-        return signal_v
-    return signal_v / (1.0 + channel.temp_coeff_per_k
-                       * (detector_temp_c - channel.reference_temp_c))
+def _time_text(p) -> str:
+    return p.time_utc.isoformat(timespec="microseconds")
 
 
-def _screen(points: list[dict], channel, config) -> tuple[list[dict], list[PlotPoint]]:
-    """Split the session's points as daemon.sessionfit screens them: the fit's inputs
-    (dicts with airmass and signal), and the screened-out points."""
-    max_cv = config.fit.max_cv
-    max_pointing = config.acquisition.max_pointing_error_deg
+def _screen(points: list, channel, config) -> tuple[list[dict], list[PlotPoint]]:
+    """Split the session's points as the session fit screens them
+    (:func:`daemon.science.screening.point_signal`): the fit's inputs (dicts with the
+    point, its air mass and its corrected signal), and the screened-out points."""
+    from daemon.science.screening import point_signal, screened_signal
+
     kept: list[dict] = []
     screened: list[PlotPoint] = []
     for p in points:
-        st = p["channels"].get(channel.name)
-        if st is None or st["n_sun"] == 0 or st["sun_mean_v"] is None:
+        ps = point_signal(p, channel, config)
+        if ps.screened == "missing":
             continue
-        net = st["sun_mean_v"] - (st["dark_mean_v"] or 0.0)
-
-        def out(why: str, value: float = net, p: dict = p) -> None:
-            screened.append(PlotPoint(p["measurement_id"], p["time_utc"], p["airmass"],
-                                      value, EXCLUDED, why))
-
-        pointing = p["pointing_error_deg"]
-        if not p["locked"] or (pointing is not None and pointing > max_pointing):
-            out("sun lock not confirmed or pointing error too large")
+        if ps.screened is not None:
+            why = (f"cloudy: burst coefficient of variation above {config.fit.max_cv:g}"
+                   if ps.screened == "cloudy" else _SCREENING_WHY[ps.screened])
+            screened.append(PlotPoint(p.measurement_id, _time_text(p), p.airmass,
+                                      screened_signal(p, channel), EXCLUDED, why))
             continue
-        if st["saturated"]:
-            out("saturated")
-            continue
-        if st["sun_sd_v"] is not None and net > 0.0 and st["sun_sd_v"] / net > max_cv:
-            out(f"cloudy: burst coefficient of variation above {max_cv:g}")
-            continue
-        if p["has_housekeeping"]:
-            net = _temperature_corrected(net, p["detector_temp_c"], channel)
-        kept.append({"p": p, "airmass": math.nan if p["airmass"] is None else p["airmass"],
-                     "signal": net})
+        kept.append({"p": p, "airmass": math.nan if p.airmass is None else p.airmass,
+                     "signal": ps.signal_v})
     return kept, screened
 
 
@@ -200,8 +183,8 @@ def langley_view(conn, config, plan_date: str, session: str, channel_name: str) 
     Parameters
     ----------
     conn : sqlite3.Connection
-        A read-only store connection (:func:`daemon.storeread.open_readonly`).
-    config : daemon.config.Config
+        A read-only store connection (:func:`daemon.store.reader.open_readonly`).
+    config : daemon.config.settings.Config
         The service's configuration: channels, screening limits and fit settings.
     plan_date : str
         Local date of the plan, YYYY-MM-DD.
@@ -210,10 +193,10 @@ def langley_view(conn, config, plan_date: str, session: str, channel_name: str) 
     channel_name : str
         A channel named in the configuration.
     """
-    from daemon.storeread import fit_points, results_between, session_points_readonly
+    from daemon.store.reader import fit_points, results_between, session_points
 
     channel = config.channel(channel_name)
-    raw = session_points_readonly(conn, plan_date, session)
+    raw = session_points(conn, plan_date, session)
     stored = next((r for r in results_between(conn, plan_date, plan_date)
                    if r["session"] == session and r["channel"] == channel_name), None)
     records = fit_points(conn, plan_date, session, channel_name)
@@ -250,13 +233,13 @@ def _regressor_label(points: list[PlotPoint]) -> str:
     return f"{AIRMASS_LABEL}^{exponents[len(exponents) // 2]:.3g}"
 
 
-def _stored_view(raw: list[dict], records: list[dict], stored: dict | None, channel, config,
+def _stored_view(raw: list, records: list[dict], stored: dict | None, channel, config,
                  plan_date: str, session: str) -> SessionView:
     """The view from the stored fit points: exact marks, y as the fit used it."""
     kept, screened = _screen(raw, channel, config)
-    signal = {k["p"]["measurement_id"]: k["signal"] for k in kept}
+    signal = {k["p"].measurement_id: k["signal"] for k in kept}
     signal.update({q.measurement_id: q.signal_v for q in screened})
-    by_id = {p["measurement_id"]: p for p in raw}
+    by_id = {p.measurement_id: p for p in raw}
     points = []
     for r in records:
         mid = r["measurement_id"]
@@ -264,14 +247,14 @@ def _stored_view(raw: list[dict], records: list[dict], stored: dict | None, chan
             role, why = EXCLUDED, _SCREENING_WHY.get(r["reason"], f"screened: {r['reason']}")
         else:
             role, why = _STORED_ROLES.get(r["role"], (EXCLUDED, r["role"]))
-        p = by_id.get(mid, {})
-        points.append(PlotPoint(mid, p.get("time_utc") or "", p.get("airmass"),
+        p = by_id.get(mid)
+        points.append(PlotPoint(mid, _time_text(p) if p else "", p.airmass if p else None,
                                 signal.get(mid), role, why, fitted=True, x=r["x"], y=r["y"]))
     known = {r["measurement_id"] for r in records}
-    late = [p for p in raw if p["measurement_id"] not in known]
+    late = [p for p in raw if p.measurement_id not in known]
     for p in late:
-        points.append(PlotPoint(p["measurement_id"], p["time_utc"], p["airmass"],
-                                signal.get(p["measurement_id"]), EXCLUDED,
+        points.append(PlotPoint(p.measurement_id, _time_text(p), p.airmass,
+                                signal.get(p.measurement_id), EXCLUDED,
                                 "not in the stored fit", fitted=True))
     points.sort(key=lambda q: (q.time_utc, q.measurement_id))
     n_used = sum(1 for q in points if q.role == USED)
@@ -308,12 +291,12 @@ def _stored_view(raw: list[dict], records: list[dict], stored: dict | None, chan
     return view
 
 
-def _recomputed_view(raw: list[dict], stored: dict | None, channel, config, plan_date: str,
+def _recomputed_view(raw: list, stored: dict | None, channel, config, plan_date: str,
                      session: str) -> SessionView:
     """The view of a session fitted before fit points were stored: marks recomputed."""
     import numpy as np
 
-    from daemon.langley import WINDOW_EDGE_TOLERANCE, fit_session
+    from daemon.science.langley import WINDOW_EDGE_TOLERANCE, fit_session
 
     kept, screened = _screen(raw, channel, config)
     fit = fit_session(np.array([k["airmass"] for k in kept], dtype=float),
@@ -331,7 +314,7 @@ def _recomputed_view(raw: list[dict], stored: dict | None, channel, config, plan
             role, why = EXCLUDED, "signal zero or negative"
         else:
             role, why = REJECTED, "rejected by the fit as an outlier"
-        points.append(PlotPoint(p["measurement_id"], p["time_utc"], p["airmass"], v, role, why))
+        points.append(PlotPoint(p.measurement_id, _time_text(p), p.airmass, v, role, why))
     points.sort(key=lambda q: (q.time_utc, q.measurement_id))
     view = SessionView(
         plan_date=plan_date, session=session, channel=channel.name,
@@ -525,8 +508,8 @@ def render_png(views: list[SessionView], path: Path) -> None:
 
 def service_config(path: str | None):
     """The service's configuration for the plot and the report (CommandError if bad)."""
-    from daemon.cli import EX_CONFIG, CommandError
-    from daemon.config import ConfigError, load_config
+    from daemon.commands.errors import EX_CONFIG, CommandError
+    from daemon.config.settings import ConfigError, load_config
 
     path = path or os.environ.get("HELIOTROPE_CONFIG") or DEFAULT_CONFIG
     try:
@@ -540,7 +523,7 @@ def service_config(path: str | None):
 def session_views(db: str | Path, config, plan_date: str, channel: str,
                   sessions: tuple[str, ...]) -> list[SessionView]:
     """The views of one channel for the given sessions that have points, from a store."""
-    from daemon.storeread import open_readonly, stored_plan
+    from daemon.store.reader import open_readonly, stored_plan
 
     conn = open_readonly(db)
     try:
@@ -557,9 +540,9 @@ def session_views(db: str | Path, config, plan_date: str, channel: str,
 
 
 def cmd_plot(args: argparse.Namespace) -> int:
-    from daemon.cli import EX_NOINPUT, EX_UNAVAILABLE, EX_USAGE, CommandError
-    from daemon.storeread import StoreReadError
-    from daemon.tables import dumps
+    from daemon.commands.errors import EX_NOINPUT, EX_UNAVAILABLE, EX_USAGE, CommandError
+    from daemon.commands.tables import dumps
+    from daemon.store.reader import StoreReadError
 
     config = service_config(args.config)
     names = [ch.name for ch in config.channels]
@@ -571,10 +554,10 @@ def cmd_plot(args: argparse.Namespace) -> int:
         import importlib.util
         if importlib.util.find_spec("matplotlib") is None:
             raise CommandError(PLOT_EXTRA_HINT, EX_UNAVAILABLE)
-        from daemon.export import ExportError, _check_out_path
+        from daemon.commands.output import OutputPathError, check_out_path
         try:
-            _check_out_path(png, Path(args.db).expanduser())
-        except ExportError as exc:
+            check_out_path(png, Path(args.db).expanduser())
+        except OutputPathError as exc:
             raise CommandError(str(exc).replace("--out", "--png"), EX_USAGE) from None
     sessions = (args.session,) if args.session else ("am", "pm")
     try:

@@ -66,7 +66,7 @@ def lamp_check(v0_1au_v: float, channel) -> tuple[float, float, float] | None:
     ----------
     v0_1au_v : float
         V0 at 1 AU [V].
-    channel : daemon.config.Channel
+    channel : daemon.config.settings.Channel
         ``responsivity_v_per_w_m2_nm`` [V per W m^-2 nm^-1], ``wavelength_nm`` and
         ``bandwidth_nm`` [nm].
 

@@ -47,3 +47,28 @@ def _clean(obj: Any) -> Any:
 def dumps(obj: Any) -> str:
     """JSON with NaN and infinities as null (strict JSON parsers reject NaN)."""
     return json.dumps(_clean(obj), indent=2, allow_nan=False)
+
+
+def results_table(rows: Sequence[dict], truth: dict | None = None) -> str:
+    """The per-channel, per-session table of the demo and of ``today``."""
+    headers = ["channel", "sess", "V0 1AU [V]"]
+    if truth is not None:
+        headers += ["truth [V]", "diff [%]"]
+    headers += ["unc [%]", "tau", "used", "ok"]
+    body = []
+    for r in rows:
+        line = [r["channel"], r["session"], fmt(r["v0_1au"], ".5f")]
+        if truth is not None:
+            true_v0 = truth.get(r["channel"], {}).get("v0_1au")
+            diff = (100.0 * (r["v0_1au"] / true_v0 - 1.0)
+                    if true_v0 and r["v0_1au"] is not None else None)
+            line += [fmt(true_v0, ".5f"), fmt(diff, "+.3f")]
+        unc = r["v0_rel_unc"] * 100 if r["v0_rel_unc"] is not None else None
+        line += [fmt(unc, ".3f"), fmt(r["tau"], ".4f"), f"{r['n_used']}/{r['n_total']}",
+                 fmt(bool(r["accepted"]))]
+        body.append(line)
+    right = [False, False] + [True] * (len(headers) - 3) + [False]
+    text = table(headers, body, right)
+    notes = [f"  {r['channel']} {r['session']}: {'; '.join(r['reasons'])}"
+             for r in rows if r["reasons"]]
+    return text + ("\nnot accepted:\n" + "\n".join(notes) if notes else "")

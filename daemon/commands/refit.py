@@ -11,9 +11,9 @@ channel name of the configuration, ``signal`` the dark-corrected direct-sun sign
 ``detector_temp_c`` [degC] the detector-temperature correction (an empty cell is
 "not known"). The columns may come in any order. Air masses, the ozone air mass
 and the Earth-Sun factor are computed from the configuration's site
-(:mod:`daemon.solar`); readings are grouped into local plan dates and morning or
+(:mod:`daemon.science.solar`); readings are grouped into local plan dates and morning or
 afternoon by the local apparent solar time, and every group is fitted exactly as
-the service fits a stored session (:func:`daemon.sessionfit.fit_series`).
+the service fits a stored session (:func:`daemon.science.sessionfit.fit_series`).
 
 A malformed file raises :class:`RefitError` naming the line and what is wrong.
 Values the fit can judge (NaN, zero or negative signals, the sun below the
@@ -34,15 +34,15 @@ from typing import Any
 
 import numpy as np
 
-from daemon import solar
-from daemon.config import Config
-from daemon.sessionfit import (
+from daemon.config.settings import Config
+from daemon.science import solar
+from daemon.science.sessionfit import (
     ChannelSeries,
     apply_day_check,
-    contract,
     fit_series,
     temperature_corrected,
 )
+from daemon.store.reader import result_contract
 
 REQUIRED_COLUMNS = ("time_utc", "channel", "signal")
 OPTIONAL_COLUMNS = ("pressure_hpa", "detector_temp_c")
@@ -194,7 +194,7 @@ def refit_readings(readings: list[Reading], config: Config) -> dict[str, Any]:
     Returns
     -------
     dict
-        ``results``: rows in the JSON contract (:data:`daemon.storeread.RESULT_KEYS`),
+        ``results``: rows in the JSON contract (:data:`daemon.store.reader.RESULT_KEYS`),
         ordered by date, session and configuration order; ``details``: per row its
         ``notes``, ``tau_aerosol``, ``tau_rayleigh``, ``tau_ozone``, ``residual_sd``,
         ``e0_1au_w_m2_nm`` and ``astm_ratio``; ``readings``: how many were read.
@@ -233,7 +233,7 @@ def refit_readings(readings: list[Reading], config: Config) -> dict[str, Any]:
                 signal_v=signal, earth_sun_factor=esf[idx], n_total=len(rs), notes=[],
                 hours=np.array([r.time_utc.timestamp() / 3600.0 for r in rs], dtype=float))
         for row in fit_series(series, config, date, session):
-            results.append(contract(row))
+            results.append(result_contract(row))
             details.append({k: (None if isinstance(v, float) and not math.isfinite(v) else v)
                             for k, v in row.items()
                             if k in ("date", "session", "channel", "notes", "tau_aerosol",
@@ -272,9 +272,9 @@ def refit_file(path: str | Path, config: Config) -> dict[str, Any]:
 
 def refit_command(args: Any) -> int:
     """``heliotrope refit``: fit a readings CSV offline and print the results."""
-    from daemon.cli import EX_CONFIG, EX_DATAERR, EX_NOINPUT, CommandError, results_table
-    from daemon.config import ConfigError, load_config
-    from daemon.tables import dumps
+    from daemon.commands.errors import EX_CONFIG, EX_DATAERR, EX_NOINPUT, CommandError
+    from daemon.commands.tables import dumps, results_table
+    from daemon.config.settings import ConfigError, load_config
 
     try:
         config = load_config(args.config)

@@ -30,8 +30,8 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from daemon.config import Port
-from daemon.tables import dumps, table
+from daemon.commands.tables import dumps, table
+from daemon.config.settings import Port
 from drivers import protocol as p
 from drivers.interfaces import DeviceError, LinkError
 from drivers.reference import SerialRadiometer, SerialTracker

@@ -20,11 +20,15 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+import math
 import re
 import sqlite3
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
+
+from daemon.science.points import FIT_POINT_ROLES, ChannelStats, SessionPoint  # noqa: F401
+from drivers.interfaces import Housekeeping
 
 
 class StoreError(Exception):
@@ -34,6 +38,10 @@ class StoreError(Exception):
 class StoreReadError(StoreError):
     """The operator's command cannot read the store (missing, wrong or unreadable file)."""
 
+
+#: The sessions of a plan day, and those that get a fit.
+SESSIONS = ("am", "pm", "routine")
+FIT_SESSIONS = ("am", "pm")
 
 RESULT_KEYS = ("date", "session", "channel", "wavelength_nm", "v0", "v0_1au", "v0_rel_unc",
                "tau", "n_used", "n_total", "airmass_min", "airmass_max", "accepted", "reasons")
@@ -105,6 +113,18 @@ def open_readonly(path: str | Path) -> sqlite3.Connection:
                              "it first starts)")
     conn.row_factory = sqlite3.Row
     return conn
+
+
+def result_contract(row: Mapping[str, Any]) -> dict[str, Any]:
+    """The JSON-contract keys of a result row, with non-finite numbers as None."""
+    out = {}
+    for key in RESULT_KEYS:
+        value = row[key]
+        if isinstance(value, float) and not math.isfinite(value):
+            value = None
+        out[key] = value
+    return out
+
 
 
 def result_row_to_contract(row: Mapping[str, Any]) -> dict[str, Any]:
@@ -196,7 +216,7 @@ def day_measurements(conn: sqlite3.Connection, plan_date: str | _dt.date) -> lis
 
 
 # --------------------------------------------------------------------------- operator's view
-# Readers for status, plot, report and export (daemon/status.py and friends).
+# Readers for status, plot, report and export (daemon/commands/status.py and friends).
 
 HOUSEKEEPING_KEYS = ("detector_temp_c", "case_temp_c", "ambient_temp_c", "supply_v",
                      "humidity_pct", "pressure_hpa")
@@ -294,15 +314,8 @@ def store_files_size(path: str | Path) -> int:
     return total
 
 
-# The read-only plot and report use the same aggregates as daemon.store.Store.
+# The read-only plot and report use the same aggregates as daemon.store.writer.Store.
 # session_points (SESSION_STATS_SQL below); tests/test_plot.py checks that both agree.
-_RO_POINTS_SQL = """
-SELECT m.id, m.time_utc, m.airmass, m.earth_sun_factor, m.pressure_hpa,
-       m.pointing_error_deg, m.locked, h.measurement_id IS NOT NULL, h.detector_temp_c
-FROM measurements m LEFT JOIN housekeeping h ON h.measurement_id = m.id
-WHERE m.plan_date = ? AND m.session = ? AND m.status = 'ok'
-ORDER BY m.time_utc, m.id
-"""
 
 def sample_stats_cte(selection: str) -> str:
     """The WITH clause that aggregates raw samples of the measurements ``selection``
@@ -342,44 +355,61 @@ ORDER BY mc.measurement_id, mc.channel_index
 """
 
 
-def session_points_readonly(conn: sqlite3.Connection, plan_date: str | _dt.date,
-                            session: str) -> list[dict[str, Any]]:
+_POINTS_SQL = """
+SELECT m.id, m.time_utc, m.target_airmass, m.apparent_zenith_deg, m.azimuth_deg, m.airmass,
+       m.ozone_airmass, m.earth_sun_factor, m.pressure_hpa, m.pointing_error_deg, m.locked,
+       m.duration_s, m.n_samples, h.measurement_id IS NOT NULL, h.detector_temp_c,
+       h.case_temp_c, h.ambient_temp_c, h.supply_v, h.humidity_pct, h.pressure_hpa
+FROM measurements m LEFT JOIN housekeeping h ON h.measurement_id = m.id
+WHERE m.plan_date = ? AND m.session = ? AND m.status = 'ok'
+ORDER BY m.time_utc, m.id
+"""
+
+
+def session_points(conn: sqlite3.Connection, plan_date: str | _dt.date,
+                   session: str) -> list[SessionPoint]:
     """The 'ok' measurements of one session with per-channel sample aggregates.
 
-    One dict per measurement in time order: ``measurement_id``, ``time_utc``,
-    ``airmass``, ``earth_sun_factor``, ``pressure_hpa`` [hPa], ``pointing_error_deg``
-    [deg], ``locked`` (bool), ``detector_temp_c`` [degC] (None without housekeeping),
-    ``has_housekeeping`` and ``channels``: channel name -> ``sun_mean_v`` [V],
-    ``sun_sd_v`` [V] (sample SD, None below 2 samples), ``n_sun``, ``dark_mean_v`` [V]
-    (None without dark samples), ``n_dark``, ``saturated`` (bool).
+    Means, sample standard deviations and counts come from SQL aggregates over the
+    raw samples (two passes: the mean first, then squared deviations from it, which
+    avoids the cancellation of the sum-of-squares formula). The service's writer and
+    the read-only commands both read points through here.
     """
     date = check_plan_date(plan_date)
-    stats: dict[int, dict[str, dict[str, Any]]] = {}
+    if session not in SESSIONS:
+        raise ValueError(f"session must be one of {', '.join(SESSIONS)}; got {session!r}")
+    meas = conn.execute(_POINTS_SQL, (date, session)).fetchall()
+    by_id: dict[int, dict[str, ChannelStats]] = {}
     for mid, channel, saturated, sun_mean, n_sun, sun_ss, dark_mean, n_dark in conn.execute(
             SESSION_STATS_SQL, (date, session)).fetchall():
         n_sun = int(n_sun or 0)
-        sd = (sun_ss / (n_sun - 1)) ** 0.5 if n_sun >= 2 and sun_ss is not None else None
-        stats.setdefault(mid, {})[channel] = {
-            "sun_mean_v": sun_mean, "sun_sd_v": sd, "n_sun": n_sun,
-            "dark_mean_v": dark_mean if n_dark else None, "n_dark": int(n_dark or 0),
-            "saturated": bool(saturated)}
+        sd = math.sqrt(sun_ss / (n_sun - 1)) if n_sun >= 2 and sun_ss is not None else None
+        by_id.setdefault(mid, {})[channel] = ChannelStats(
+            sun_mean_v=sun_mean, sun_sd_v=sd, n_sun=n_sun,
+            dark_mean_v=dark_mean if n_dark else None, n_dark=int(n_dark or 0),
+            saturated=bool(saturated))
     points = []
-    for r in conn.execute(_RO_POINTS_SQL, (date, session)).fetchall():
-        points.append({"measurement_id": r[0], "time_utc": r[1], "airmass": r[2],
-                       "earth_sun_factor": r[3], "pressure_hpa": r[4],
-                       "pointing_error_deg": r[5], "locked": bool(r[6]),
-                       "has_housekeeping": bool(r[7]), "detector_temp_c": r[8],
-                       "channels": stats.get(r[0], {})})
+    for r in meas:
+        hk = None
+        if r[13]:
+            hk = Housekeeping(detector_temp_c=_nan(r[14]), case_temp_c=_nan(r[15]),
+                              ambient_temp_c=_nan(r[16]), supply_v=_nan(r[17]),
+                              humidity_pct=_nan(r[18]), pressure_hpa=r[19])
+        points.append(SessionPoint(
+            measurement_id=r[0], time_utc=_dt.datetime.fromisoformat(r[1]),
+            target_airmass=r[2], apparent_zenith_deg=r[3], azimuth_deg=r[4],
+            airmass=r[5], ozone_airmass=r[6], earth_sun_factor=r[7], pressure_hpa=r[8],
+            pointing_error_deg=r[9], locked=bool(r[10]), duration_s=r[11],
+            housekeeping=hk, channels=by_id.get(r[0], {})))
     return points
+
+
+def _nan(value: float | None) -> float:
+    return math.nan if value is None else value
 
 
 # --------------------------------------------------------------------------- fit points
 
-#: Roles of a point in a stored session fit: in the final line; a candidate the fit
-#: clipped as an outlier; outside the air-mass window or without a finite x or y;
-#: screened out before the fit (``reason`` names the rule: missing, unlocked,
-#: saturated, cloudy); a candidate of a channel that got no line.
-FIT_POINT_ROLES = ("used", "rejected", "outside", "screened", "unfitted")
 
 
 def fit_points(conn: sqlite3.Connection, plan_date: str | _dt.date, session: str,
@@ -448,7 +478,7 @@ def aod_between(conn: sqlite3.Connection, first: str | _dt.date,
     """Stored aerosol optical depths of the measurements with ``first <= plan_date <= last``.
 
     One dict per measurement and channel, in time order (then wavelength). AOD is
-    computed and stored by the service (:mod:`daemon.aod`) once a calibration exists:
+    computed and stored by the service (:mod:`daemon.science.aod`) once a calibration exists:
     for every measurement of the calibration's date range when the calibration is
     stored, and for each new session after its fit. Stores written before AOD existed,
     and dates without a calibration, give nothing.
@@ -538,7 +568,7 @@ def stored_calibration(conn: sqlite3.Connection,
     of per-channel dicts (``channel``, ``wavelength_nm``, ``v0_1au`` [V],
     ``v0_1au_unc`` [V], ``repeatability_pct``, ``n_sessions``, ``n_flagged``,
     ``drift_pct_per_year``, ``drift_unc_pct_per_year``, ``e0_1au_w_m2_nm``,
-    ``astm_ratio``, ``usable``, ``sessions``, ``reasons``); see :mod:`daemon.campaign`.
+    ``astm_ratio``, ``usable``, ``sessions``, ``reasons``); see :mod:`daemon.science.campaign`.
     """
     if not _has_table(conn, "calibrations"):
         return None

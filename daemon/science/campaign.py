@@ -6,7 +6,7 @@ mean of many accepted sessions, with their repeatability (the percent rms spread
 Optics 34(21):4500-4512), the sessions that disagree flagged, and the drift of V0
 over the campaign. :func:`combine_sessions` is the pure part; :func:`calibrate`
 reads the session results, stores the calibration record and computes the aerosol
-optical depth of the campaign's measurements (:mod:`daemon.aod`).
+optical depth of the campaign's measurements (:mod:`daemon.science.aod`).
 """
 
 from __future__ import annotations
@@ -14,16 +14,14 @@ from __future__ import annotations
 import datetime as _dt
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-from daemon.config import Config
-from daemon.lamp import lamp_check
-from daemon.langley import fit_line
-from daemon.store import Store
-from daemon.storeread import check_plan_date, results_between
+from daemon.config.settings import Config
+from daemon.science.lamp import lamp_check
+from daemon.science.langley import fit_line
 
 #: Normal-consistent scale of the median absolute deviation (common practice, no source).
 MAD_TO_SD = 1.4826
@@ -206,157 +204,3 @@ def campaign(results: Sequence[Mapping[str, Any]], config: Config,
             cal.e0_1au_w_m2_nm, cal.astm_ratio = check[0], check[2]
         out.append(cal)
     return out
-
-
-def calibrate(store: Store, config: Config, first: str | _dt.date, last: str | _dt.date,
-              created_utc: _dt.datetime) -> dict[str, Any]:
-    """Combine a campaign's accepted sessions, store the calibration, compute its AOD.
-
-    Parameters
-    ----------
-    store : Store
-        The service's store, opened with the writer.
-    config : Config
-        Channels and campaign settings (``fit.campaign_clip_sigma``,
-        ``fit.campaign_min_sessions``).
-    first, last : str or date
-        Campaign plan dates, inclusive.
-    created_utc : datetime
-        Aware UTC time of the record.
-
-    Returns
-    -------
-    dict
-        ``id``, ``from``, ``to``, ``created_utc``, ``sessions_found``,
-        ``aod_values`` (AOD values stored) and ``channels`` (one dict per channel,
-        the fields of :class:`ChannelCalibration`).
-
-    Raises
-    ------
-    CalibrationError
-        No channel has enough accepted sessions; nothing is stored.
-    """
-    d1, d2 = check_plan_date(first), check_plan_date(last)
-    if d2 < d1:
-        raise CalibrationError(f"the end date {d2} is before the start date {d1}; swap them")
-    results = results_between(store.conn, d1, d2)
-    sessions_found = len({(r["date"], r["session"]) for r in results})
-    notes: list[str] = []
-    channels = campaign(results, config, notes)
-    if not any(c.usable for c in channels):
-        why = "; ".join(f"{c.channel}: {c.reasons[0]}" for c in channels if c.reasons)
-        raise CalibrationError(
-            f"no channel has enough accepted sessions from {d1} to {d2} "
-            f"({sessions_found} session{'s' if sessions_found != 1 else ''} found; {why}); "
-            "widen the dates or lower fit.campaign_min_sessions")
-    settings = {"campaign_clip_sigma": config.fit.campaign_clip_sigma,
-                "campaign_min_sessions": config.fit.campaign_min_sessions,
-                "config": config.source}
-    rows = [asdict(c) for c in channels]
-    cid = store.save_calibration(created_utc, d1, d2, config.site.name, settings, notes, rows)
-    from daemon.aod import update_aod
-    from daemon.storeread import stored_calibration
-
-    record = stored_calibration(store.conn, cid)
-    n_aod = update_aod(store, config, d1, d2, calibration=record)
-    return {"id": cid, "from": d1, "to": d2, "created_utc": record["created_utc"],
-            "site_name": config.site.name, "sessions_found": sessions_found,
-            "aod_values": n_aod, "notes": notes, "channels": rows}
-
-
-# --------------------------------------------------------------------------- command
-
-def calibration_table(record: Mapping[str, Any]) -> str:
-    """The per-channel calibration as an aligned table for an 80-column terminal."""
-    from daemon.tables import fmt, table
-
-    body = []
-    for c in record["channels"]:
-        v0, unc = c["v0_1au"], c["v0_1au_unc"]
-        body.append([c["channel"], fmt(v0, ".5f"),
-                     fmt(100 * unc / v0 if v0 and unc is not None else None, ".3f"),
-                     fmt(c["repeatability_pct"], ".3f"), c["n_sessions"], c["n_flagged"],
-                     fmt(c["drift_pct_per_year"], "+.2f"), fmt(c["astm_ratio"], ".4f"),
-                     fmt(bool(c["usable"]))])
-    text = table(["channel", "V0 1AU [V]", "unc [%]", "rms [%]", "n", "flagged",
-                  "drift [%/yr]", "lamp", "ok"], body,
-                 [False, True, True, True, True, True, True, True, False])
-    lines = [text]
-    for c in record["channels"]:
-        for s in c["sessions"]:
-            if s["flagged"]:
-                lines.append(f"  {c['channel']} {s['date']} {s['session']} flagged: {s['why']}")
-        for r in c["reasons"]:
-            lines.append(f"  {c['channel']} not usable: {r}")
-    lines += [f"  note: {n}" for n in record.get("notes", [])]
-    return "\n".join(lines)
-
-
-def _require_heliotrope_store(db: str) -> None:
-    """Refuse, before the writer migrates anything, a file that is not our store."""
-    import sqlite3
-
-    from daemon.cli import CommandError
-    from daemon.storeread import StoreReadError, open_readonly
-
-    try:
-        conn = open_readonly(db)
-        try:
-            found = conn.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND "
-                                 "name = 'session_results'").fetchone()
-        finally:
-            conn.close()
-    except StoreReadError as exc:  # says what the file is and what to pass instead
-        raise CommandError(str(exc), 66) from None
-    except sqlite3.DatabaseError as exc:
-        raise CommandError(f"{db}: cannot be read as a store ({exc}); pass --db with the "
-                           "path of the heliotrope store", 66) from None
-    if not found:
-        raise CommandError(f"{db}: not a heliotrope store (no session results table); "
-                           "nothing was changed. Pass --db with the store the service "
-                           "writes (store.path in its configuration)", 66)
-
-
-def calibrate_command(args: Any) -> int:
-    """``heliotrope calibrate``: combine, store, compute AOD; print the record."""
-    import os
-
-    from daemon.cli import EX_CONFIG, EX_DATAERR, CommandError
-    from daemon.config import ConfigError, load_config
-    from daemon.store import StoreError
-    from daemon.tables import dumps
-
-    try:
-        config = load_config(args.config)
-    except ConfigError as exc:
-        raise CommandError(str(exc), EX_CONFIG) from None
-    db = args.db or os.environ.get("HELIOTROPE_DB") or config.store_path
-    if args.to < args.from_:
-        raise CommandError(f"--to {args.to} is before --from {args.from_}; swap them", 64)
-    if not os.path.exists(db):
-        raise CommandError(f"{db}: no store here; pass --db with the path of the heliotrope "
-                           "store (store.path in the service's configuration)", 66)
-    _require_heliotrope_store(db)
-    try:
-        store = Store.open(db)
-    except StoreError as exc:
-        raise CommandError(str(exc), 74) from None
-    try:
-        record = calibrate(store, config, args.from_, args.to,
-                           _dt.datetime.now(_dt.UTC))
-    except CalibrationError as exc:
-        raise CommandError(str(exc), 1) from None
-    except ValueError as exc:
-        raise CommandError(str(exc), EX_DATAERR) from None
-    finally:
-        store.close()
-    if args.json:
-        print(dumps(record))
-        return 0
-    print(f"calibration {record['id']}: {record['from']} to {record['to']}, "
-          f"{record['sessions_found']} sessions, V0 at 1 AU")
-    print(calibration_table(record))
-    print(f"aerosol optical depth computed for {record['aod_values']} values "
-          "(heliotrope export --what aod)")
-    print(f"stored in {db}")
-    return 0

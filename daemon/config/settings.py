@@ -51,7 +51,7 @@ class Channel:
     bandwidth_nm: float
     temp_coeff_per_k: float = 0.0  # relative responsivity change per kelvin
     reference_temp_c: float = 25.0
-    # Band-mean ozone absorption cross-section [cm^2]; None = daemon.ozone's table.
+    # Band-mean ozone absorption cross-section [cm^2]; None = daemon.science.ozone's table.
     ozone_cross_section_cm2: float | None = None
     # Absolute responsivity [V per W m^-2 nm^-1] from a lamp calibration; None = unknown.
     responsivity_v_per_w_m2_nm: float | None = None

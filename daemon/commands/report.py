@@ -2,13 +2,13 @@
 
 The page needs no other file, script or font: styles are inline in the head and the
 charts are inline SVG. It shows a summary, the session results, a Langley plot per
-channel (both sessions, as :mod:`daemon.plot` marks the points), the housekeeping
+channel (both sessions, as :mod:`daemon.commands.plot` marks the points), the housekeeping
 temperatures and supply voltage through the day, and the day's events. Times are UTC
 with the site's local time beside them.
 
 Read-only and free of heavy imports apart from numpy. The Langley plots show the
 points exactly as the session fit used them (the stored fit points, see
-:mod:`daemon.plot`); numpy is needed only to mark the points of sessions fitted
+:mod:`daemon.commands.plot`); numpy is needed only to mark the points of sessions fitted
 before those were stored, by fitting them again.
 """
 
@@ -201,7 +201,7 @@ def _marker(kind: str, x: float, y: float, colour: str) -> str:
 
 def langley_svg(views: Sequence[Any], channel: str, wavelength_nm: float) -> str:
     """Both sessions of one channel: points by role, the fitted lines back to m = 0."""
-    from daemon.plot import EXCLUDED, REJECTED, USED
+    from daemon.commands.plot import EXCLUDED, REJECTED, USED
 
     series: list[dict[str, Any]] = []
     excluded: list[list[tuple[float, float]]] = []
@@ -243,7 +243,7 @@ def langley_svg(views: Sequence[Any], channel: str, wavelength_nm: float) -> str
 def housekeeping_svg(rows: Sequence[dict], tz, keys: Sequence[tuple[str, str, str]],
                      y_label: str, title: str) -> str:
     """Housekeeping values against the site's local time of day."""
-    from daemon.status import parse_utc
+    from daemon.commands.status import parse_utc
 
     def hours(iso: str) -> float:
         t = parse_utc(iso).astimezone(tz)
@@ -296,9 +296,10 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[Any]],
 
 def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> str:
     """The HTML page for one local date, from the store at ``db`` (read-only)."""
-    from daemon.plot import langley_view
-    from daemon.status import site_zone, software_version, utc_local
-    from daemon.storeread import (
+    from daemon.commands.plot import langley_view
+    from daemon.commands.status import site_zone, software_version, utc_local
+    from daemon.commands.tables import fmt
+    from daemon.store.reader import (
         day_housekeeping,
         day_measurements,
         events_between,
@@ -306,7 +307,6 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         results_between,
         stored_plan,
     )
-    from daemon.tables import fmt
 
     conn = open_readonly(db)
     try:
@@ -416,17 +416,17 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from daemon.cli import EX_NOINPUT, EX_USAGE, CommandError
-    from daemon.export import EX_CANTCREAT, ExportError, _check_out_path, publish
-    from daemon.plot import service_config
-    from daemon.storeread import StoreReadError
+    from daemon.commands.errors import EX_CANTCREAT, EX_NOINPUT, EX_USAGE, CommandError
+    from daemon.commands.output import OutputPathError, check_out_path, publish
+    from daemon.commands.plot import service_config
+    from daemon.store.reader import StoreReadError
 
     config = service_config(args.config)
     out = Path(args.out).expanduser() if args.out else None
     if out is not None:
         try:
-            _check_out_path(out, Path(args.db).expanduser())
-        except ExportError as exc:
+            check_out_path(out, Path(args.db).expanduser())
+        except OutputPathError as exc:
             raise CommandError(str(exc), EX_USAGE) from None
     try:
         page = build_report(args.db, config, args.date.isoformat(), _dt.datetime.now(_dt.UTC))

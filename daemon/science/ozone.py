@@ -81,7 +81,7 @@ def channel_cross_section_cm2(channel) -> float | None:
 
     Parameters
     ----------
-    channel : daemon.config.Channel
+    channel : daemon.config.settings.Channel
         ``ozone_cross_section_cm2`` [cm^2] wins when set; otherwise
         ``wavelength_nm`` and ``bandwidth_nm`` [nm] look the band up in the table.
     """

@@ -8,7 +8,7 @@ path of the program and of the store in practice; see README.md, "Over SSH")::
 sshd then runs this gate whatever the client asked for, and puts the client's command
 line in ``SSH_ORIGINAL_COMMAND``. The gate lets through only the read commands and
 their read-only options, each value checked against a strict pattern, and runs them
-in this process through :func:`daemon.cli.main` with an argument list it builds
+in this process through :func:`daemon.commands.cli.main` with an argument list it builds
 itself. No shell is ever started; the command line is split with :mod:`shlex` after
 a character check that already refuses every shell metacharacter. Options that
 write files (``--out``, ``--png``) or pick another store or configuration (``--db``,
@@ -86,7 +86,7 @@ def vet(command_line: str | None) -> list[str]:
     Returns
     -------
     list of str
-        A new argument list for :func:`daemon.cli.main`, built from the allowed
+        A new argument list for :func:`daemon.commands.cli.main`, built from the allowed
         command and checked options only.
 
     Raises
@@ -172,8 +172,10 @@ def help_text() -> str:
 
 
 def run_gate(command_line: str | None, db: str, config: str | None,
-             main: Callable[[Sequence[str]], int] | None = None) -> int:
-    """Vet ``command_line`` and run it with :func:`daemon.cli.main`; return the exit code."""
+             main: Callable[[Sequence[str]], int]) -> int:
+    """Vet ``command_line`` and run it with ``main`` (the parser's
+    :func:`daemon.commands.cli.main`, passed in so the gate does not import the parser
+    that dispatches to it); return the exit code."""
     try:
         argv = vet(command_line)
     except Refused as exc:
@@ -185,13 +187,11 @@ def run_gate(command_line: str | None, db: str, config: str | None,
     argv += ["--db", db]
     if argv[0] in NEEDS_CONFIG and config:
         argv += ["--config", config]
-    if main is None:
-        from daemon.cli import main
     try:
         return main(argv)
     except SystemExit as exc:  # argparse, should the vetting ever let a bad value through
         return exc.code if isinstance(exc.code, int) else 64
 
 
-def cmd_ssh_gate(args: argparse.Namespace) -> int:
-    return run_gate(os.environ.get("SSH_ORIGINAL_COMMAND"), args.db, args.config)
+def cmd_ssh_gate(args: argparse.Namespace, main: Callable[[Sequence[str]], int]) -> int:
+    return run_gate(os.environ.get("SSH_ORIGINAL_COMMAND"), args.db, args.config, main)

@@ -45,8 +45,8 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pvlib
 
-from daemon.config import Config
-from daemon.solar import (
+from daemon.config.settings import Config
+from daemon.science.solar import (
     HORIZON_AIRMASS,
     apparent_zenith_from_airmass,
     delta_t_estimate_s,
@@ -359,7 +359,7 @@ def plan_day(config: Config, day: date) -> Plan:
 
     Parameters
     ----------
-    config : daemon.config.Config
+    config : daemon.config.settings.Config
         Site (position, time zone, nominal pressure and temperature for refraction)
         and plan settings (target air masses, routine cadence, parking delay).
     day : datetime.date

@@ -7,10 +7,10 @@ Before the fit ln V is corrected for what the Kasten-Young air mass does not
 describe (:func:`extinction_corrections`): ozone sits in a layer near 22 km and has
 an air mass of its own, and a pressure change through the session changes the
 Rayleigh optical depth. Window channels are fitted with ln V against air mass
-(:func:`daemon.langley.fit_session`); a water-vapour channel near 940 nm with the
+(:func:`daemon.science.langley.fit_session`); a water-vapour channel near 940 nm with the
 modified Langley, once the window channels have given the aerosol. V0 is normalised
 to 1 AU with the mean Earth-Sun factor of the points used, and the rows are saved
-to the store and returned in the JSON contract of :mod:`daemon.storeread`.
+to the store and returned in the JSON contract of :mod:`daemon.store.reader`.
 
 Every row also carries ``fit_points``: per measurement of the session the (x, y) the
 fit used and the point's role (:func:`fit_point_records`). The store keeps them
@@ -22,24 +22,28 @@ without importing this module (which needs pvlib).
 
 from __future__ import annotations
 
-import datetime as _dt
-import logging
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
 
-from daemon import solar
-from daemon.config import Channel, Config, FitSettings
-from daemon.lamp import lamp_check, lamp_note
-from daemon.langley import FitResult, fit_coordinates, fit_session, v0_at_1au
-from daemon.ozone import channel_cross_section_cm2, ozone_optical_depth
-from daemon.store import FIT_SESSIONS, SessionPoint, Store
-from daemon.storeread import FIT_POINT_ROLES, RESULT_KEYS, check_plan_date, results_between
-
-log = logging.getLogger(__name__)
+from daemon.config.settings import Channel, Config, FitSettings
+from daemon.science import solar
+from daemon.science.lamp import lamp_check, lamp_note
+from daemon.science.langley import FitResult, fit_coordinates, fit_session, v0_at_1au
+from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
+from daemon.science.points import FIT_POINT_ROLES
+from daemon.science.screening import (  # noqa: F401 - the fit's inputs, named here too
+    SCREENING_KEYS,
+    ChannelSeries,
+    PointSignal,
+    ScreenedPoints,
+    point_signal,
+    screen_channel,
+    temperature_corrected,
+)
 
 #: Channels below this wavelength [nm] need the pressure normalisation when the
 #: pressure moves more than ``fit.max_pressure_change_hpa`` (BSRN Operations Manual,
@@ -47,211 +51,12 @@ log = logging.getLogger(__name__)
 PRESSURE_SENSITIVE_BELOW_NM = 500.0
 
 
-def temperature_corrected(signal_v: float, detector_temp_c: float, channel: Channel) -> float:
-    """Refer a signal to the channel's reference detector temperature.
-
-    Parameters
-    ----------
-    signal_v : float
-        Dark-corrected signal [V] at detector temperature ``detector_temp_c`` [degC].
-    detector_temp_c : float
-        Detector temperature from housekeeping [degC]; NaN leaves the signal as is.
-    channel : Channel
-        ``temp_coeff_per_k`` is the relative responsivity change per kelvin
-        [1/K]; ``reference_temp_c`` [degC] the temperature V0 refers to.
-
-    Returns
-    -------
-    float
-        ``V / (1 + temp_coeff_per_k * (T_det - reference_temp_c))`` [V].
-    """
-    if channel.temp_coeff_per_k == 0.0 or not math.isfinite(detector_temp_c):
-        return signal_v
-    delta_k = detector_temp_c - channel.reference_temp_c
-    return signal_v / (1.0 + channel.temp_coeff_per_k * delta_k)
-
-
-# --------------------------------------------------------------------------- series
-
-#: Keys of the screening rules, in the order they are tried (:func:`point_signal`).
-SCREENING_KEYS = ("missing", "unlocked", "saturated", "cloudy")
-
 #: Roles of a point in a stored session fit (the ``fit_points`` table): in the final
 #: line; a candidate clipped as an outlier; outside the air-mass window or without a
 #: finite x or y; dropped by screening (``reason`` says which rule); a candidate of a
 #: channel that got no line (too few points, or a water-vapour channel without the
 #: aerosol it needs).
 ROLE_USED, ROLE_REJECTED, ROLE_OUTSIDE, ROLE_SCREENED, ROLE_UNFITTED = FIT_POINT_ROLES
-
-
-@dataclass
-class ScreenedPoints:
-    """The measurements screening dropped from one channel's series, kept for display.
-
-    ``reasons`` holds one key of :data:`SCREENING_KEYS` per point; ``signal_v`` is the
-    dark-subtracted, temperature-corrected signal [V] (NaN without samples).
-    """
-
-    measurement_ids: np.ndarray
-    reasons: tuple[str, ...]
-    airmass: np.ndarray
-    ozone_airmass: np.ndarray
-    pressure_hpa: np.ndarray
-    signal_v: np.ndarray
-
-
-@dataclass
-class ChannelSeries:
-    """One channel's screened, corrected points of one session, ready to fit.
-
-    Every array has one value per point; NaN marks a value that is not known.
-    ``n_total`` counts the session's measurements (screened ones included) and
-    ``notes`` says what the screening dropped or assumed. ``measurement_ids`` (one
-    per point) and ``screened`` come from the store (:func:`screen_channel`); a series
-    built elsewhere (the offline refit) may leave them out.
-    """
-
-    airmass: np.ndarray
-    ozone_airmass: np.ndarray
-    pressure_hpa: np.ndarray
-    signal_v: np.ndarray  # dark-subtracted, temperature-corrected [V]
-    earth_sun_factor: np.ndarray
-    n_total: int
-    notes: list[str] = field(default_factory=list)
-    hours: np.ndarray | None = None  # time of each point [h], any origin
-    measurement_ids: np.ndarray | None = None
-    screened: ScreenedPoints | None = None
-
-
-@dataclass(frozen=True)
-class PointSignal:
-    """What one measurement gives one channel: a net signal or the reason it has none."""
-
-    signal_v: float | None  # dark-subtracted, temperature-corrected [V]
-    screened: str | None  # key of the screening rule that dropped it
-    cv: float | None  # burst coefficient of variation
-    no_dark: bool = False
-    no_housekeeping: bool = False
-
-
-def point_signal(p: SessionPoint, channel: Channel, config: Config) -> PointSignal:
-    """Screen one measurement for one channel and correct its signal.
-
-    Screening keys: ``missing`` (no samples of the channel), ``unlocked`` (sun lock
-    not confirmed or pointing error above ``acquisition.max_pointing_error_deg``),
-    ``saturated``, ``cloudy`` (burst coefficient of variation above ``fit.max_cv``).
-    """
-    st = p.channels.get(channel.name)
-    if st is None or st.n_sun == 0 or st.sun_mean_v is None:
-        return PointSignal(None, "missing", None)
-    max_pointing = config.acquisition.max_pointing_error_deg
-    pointing_ok = p.pointing_error_deg is None or p.pointing_error_deg <= max_pointing
-    if not p.locked or not pointing_ok:
-        return PointSignal(None, "unlocked", None)
-    if st.saturated:
-        return PointSignal(None, "saturated", None)
-    dark = st.dark_mean_v
-    no_dark = dark is None
-    net = st.sun_mean_v - (0.0 if dark is None else dark)
-    cv = st.sun_sd_v / net if st.sun_sd_v is not None and net > 0.0 else None
-    # The spread of a clear-sky burst is detector noise; a cloud edge or thin
-    # cirrus passing through the field of view makes it jump.
-    if cv is not None and cv > config.fit.max_cv:
-        return PointSignal(net, "cloudy", cv, no_dark)
-    hk = p.housekeeping
-    no_hk = False
-    if hk is not None:
-        net = temperature_corrected(net, hk.detector_temp_c, channel)
-    elif channel.temp_coeff_per_k != 0.0:
-        no_hk = True
-    return PointSignal(net, None, cv, no_dark, no_hk)
-
-
-def _count(n: int, what: str) -> str:
-    return f"{n} burst{'s' if n != 1 else ''} {what}"
-
-
-def _screened_signal(p: SessionPoint, channel: Channel) -> float:
-    """The corrected signal of a screened measurement [V], for display; NaN without samples."""
-    st = p.channels.get(channel.name)
-    if st is None or st.n_sun == 0 or st.sun_mean_v is None:
-        return math.nan
-    net = st.sun_mean_v - (0.0 if st.dark_mean_v is None else st.dark_mean_v)
-    if p.housekeeping is not None:
-        net = temperature_corrected(net, p.housekeeping.detector_temp_c, channel)
-    return float(net)
-
-
-def _point_pressure(p: SessionPoint) -> float:
-    if p.housekeeping is not None and p.housekeeping.pressure_hpa is not None:
-        value = p.housekeeping.pressure_hpa
-    else:
-        value = p.pressure_hpa
-    return math.nan if value is None or not math.isfinite(value) else float(value)
-
-
-def _point_ozone_airmass(p: SessionPoint, config: Config) -> float:
-    if p.ozone_airmass is not None:
-        return float(p.ozone_airmass)
-    if p.apparent_zenith_deg is not None:
-        return float(solar.ozone_airmass(p.apparent_zenith_deg, config.site.elevation_m))
-    return math.nan
-
-
-def screen_channel(points: Sequence[SessionPoint], channel: Channel,
-                   config: Config) -> ChannelSeries:
-    """The screened, dark-subtracted, temperature-corrected points of one channel."""
-    max_cv = config.fit.max_cv
-    max_pointing = config.acquisition.max_pointing_error_deg
-    rows: list[tuple[float, float, float, float, float, float]] = []
-    ids: list[int] = []
-    dropped: list[tuple[float, float, float, float]] = []
-    dropped_ids: list[int] = []
-    dropped_why: list[str] = []
-    counts = dict.fromkeys(SCREENING_KEYS, 0)
-    no_dark = no_hk = 0
-    for p in points:
-        ps = point_signal(p, channel, config)
-        airmass = math.nan if p.airmass is None else p.airmass
-        if ps.screened is not None:
-            counts[ps.screened] += 1
-            dropped_ids.append(p.measurement_id)
-            dropped_why.append(ps.screened)
-            dropped.append((airmass, _point_ozone_airmass(p, config), _point_pressure(p),
-                            _screened_signal(p, channel)))
-            continue
-        no_dark += ps.no_dark
-        no_hk += ps.no_housekeeping
-        ids.append(p.measurement_id)
-        rows.append((airmass,
-                     _point_ozone_airmass(p, config), _point_pressure(p), ps.signal_v,
-                     math.nan if p.earth_sun_factor is None else p.earth_sun_factor,
-                     p.time_utc.timestamp() / 3600.0))
-    notes = []
-    if counts["missing"]:
-        notes.append(_count(counts["missing"], f"without samples of channel {channel.name}"))
-    if counts["unlocked"]:
-        notes.append(_count(counts["unlocked"], "screened: sun lock not confirmed or pointing "
-                                                f"error above {max_pointing:g} degrees"))
-    if counts["saturated"]:
-        notes.append(_count(counts["saturated"], "screened: saturated"))
-    if counts["cloudy"]:
-        notes.append(_count(counts["cloudy"], f"screened as cloudy: burst coefficient of "
-                                              f"variation above {max_cv:g}"))
-    if no_dark:
-        notes.append(_count(no_dark, "without a dark reading: dark taken as 0 V"))
-    if no_hk:
-        notes.append(_count(no_hk, "without housekeeping: no detector-temperature correction"))
-    arr = np.array(rows, dtype=float).reshape(-1, 6)
-    out = np.array(dropped, dtype=float).reshape(-1, 4)
-    screened = ScreenedPoints(measurement_ids=np.array(dropped_ids, dtype=np.int64),
-                              reasons=tuple(dropped_why), airmass=out[:, 0],
-                              ozone_airmass=out[:, 1], pressure_hpa=out[:, 2],
-                              signal_v=out[:, 3])
-    return ChannelSeries(airmass=arr[:, 0], ozone_airmass=arr[:, 1], pressure_hpa=arr[:, 2],
-                         signal_v=arr[:, 3], earth_sun_factor=arr[:, 4],
-                         n_total=len(points), notes=notes, hours=arr[:, 5],
-                         measurement_ids=np.array(ids, dtype=np.int64), screened=screened)
 
 
 # --------------------------------------------------------------------------- corrections
@@ -320,7 +125,7 @@ def extinction_corrections(series: ChannelSeries, channel: Channel,
     path is not proportional to ``m``, so ln V is slightly curved in ``m`` and the
     intercept of a straight line is biased (about -0.2 % at 500 and 675 nm at
     3650 m with 260 DU). Adding ``tau_O3 (m_O3 - m)`` straightens it; ``tau_O3`` is
-    the nominal column times the band's cross-section (:mod:`daemon.ozone`), and a
+    the nominal column times the band's cross-section (:mod:`daemon.science.ozone`), and a
     10 % error in the column leaves a tenth of the bias.
 
     Rayleigh scattering by a pressure ``p`` has optical depth ``tau_R(p)``
@@ -485,7 +290,7 @@ def fit_point_records(s: ChannelSeries, fit: FitResult | None, x: np.ndarray, y:
         The fit of ``s`` (None: the channel was not fitted at all).
     x, y : ndarray
         Regressor (air mass, or ``m^b``) and ``ln V`` plus the corrections, one per
-        point of ``s``, as :func:`daemon.langley.fit_coordinates` gives them for the
+        point of ``s``, as :func:`daemon.science.langley.fit_coordinates` gives them for the
         arguments of the fit [ln V]; NaN where not finite.
     screened_x, screened_y : ndarray
         The same for the screened points of ``s``, with the same corrections.
@@ -530,17 +335,6 @@ def _screened_arrays(s: ChannelSeries) -> ScreenedPoints:
     return ScreenedPoints(np.empty(0, dtype=np.int64), (), empty, empty, empty, empty)
 
 
-def contract(row: Mapping[str, Any]) -> dict[str, Any]:
-    """The JSON-contract keys of a result row, with non-finite numbers as None."""
-    out = {}
-    for key in RESULT_KEYS:
-        value = row[key]
-        if isinstance(value, float) and not math.isfinite(value):
-            value = None
-        out[key] = value
-    return out
-
-
 def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: str,
                session: str) -> list[dict[str, Any]]:
     """Fit every configured channel of one session from its screened series.
@@ -560,7 +354,7 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
     -------
     list of dict
         One row per configured channel in configuration order: the contract keys
-        (:data:`daemon.storeread.RESULT_KEYS`) plus ``notes``, ``earth_sun_factor``,
+        (:data:`daemon.store.reader.RESULT_KEYS`) plus ``notes``, ``earth_sun_factor``,
         ``residual_sd``, ``tau_aerosol``, ``tau_rayleigh``, ``tau_ozone``,
         ``e0_1au_w_m2_nm`` and ``astm_ratio`` (NaN where not computed), and
         ``fit_points`` (:func:`fit_point_records`).
@@ -700,63 +494,3 @@ def apply_day_check(am_rows: Sequence[dict[str, Any]], pm_rows: Sequence[dict[st
         else:
             row["reasons"] = [*row["reasons"], reason]
     return found
-
-
-# --------------------------------------------------------------------------- store
-
-def fit_stored_session(store: Store, config: Config, plan_date: str | _dt.date, session: str,
-                       fitted_utc: _dt.datetime) -> list[dict[str, Any]]:
-    """Fit every configured channel of one stored session, save and return the results.
-
-    Parameters
-    ----------
-    store : Store
-        The open store holding the session's measurements.
-    config : Config
-        Channels (order, wavelength, temperature coefficient), fit settings and the
-        pointing limit used for screening.
-    plan_date : str or date
-        Local civil date of the plan, YYYY-MM-DD.
-    session : str
-        'am' or 'pm'.
-    fitted_utc : datetime
-        Aware UTC time of the fit (from the injected clock).
-
-    Returns
-    -------
-    list of dict
-        One row per channel in configuration order, in the JSON contract
-        (:data:`daemon.storeread.RESULT_KEYS`); numbers that could not be computed
-        are None. A re-fit replaces the stored rows of the same channels, and with
-        them, in the same transaction, the per-point records of the fit
-        (``fit_points``, see :func:`fit_point_records`). When a calibration is
-        stored, the session's aerosol optical depths are computed and stored too
-        (:func:`daemon.aod.update_aod`).
-    """
-    date = check_plan_date(plan_date)
-    if session not in FIT_SESSIONS:
-        raise ValueError(f"only 'am' and 'pm' sessions are fitted; got {session!r}")
-    points = store.session_points(date, session)
-    series = {ch.name: screen_channel(points, ch, config) for ch in config.channels}
-    rows = fit_series(series, config, date, session)
-    if session == "pm":
-        am_rows = [r for r in results_between(store.conn, date, date) if r["session"] == "am"]
-        am_accepted = {r["channel"] for r in am_rows if r["accepted"]}
-        for channel, reason in apply_day_check(am_rows, rows, config.fit).items():
-            if channel in am_accepted:  # stored this morning as accepted: no longer
-                store.refuse_session_result(date, "am", channel, reason)
-    store.save_session_results(date, session, rows, fitted_utc=fitted_utc)
-    _update_aod(store, config, date, session, fitted_utc)
-    return [contract(r) for r in rows]
-
-
-def _update_aod(store: Store, config: Config, date: str, session: str,
-                now: _dt.datetime) -> None:
-    from daemon.aod import update_aod
-
-    try:
-        update_aod(store, config, date, date, sessions=(session,))
-    except Exception as exc:  # noqa: BLE001 - the fit is saved; AOD must not stop the day
-        log.exception("AOD update failed")
-        store.record_event(now, "error", "aod", f"{date} {session}: aerosol optical depth "
-                           f"not computed ({exc})")

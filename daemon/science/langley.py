@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike
 
-from daemon.config import FitSettings
+from daemon.config.settings import FitSettings
 
 # Fewer points leave no degree of freedom for a residual SD.
 MIN_FIT_POINTS = 3

@@ -21,7 +21,7 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from daemon.tables import dumps, fmt, table
+from daemon.commands.tables import dumps, fmt, table
 
 OK, WARNING, CRITICAL = 0, 1, 2
 STATE_NAMES = {OK: "OK", WARNING: "WARNING", CRITICAL: "CRITICAL"}
@@ -191,7 +191,7 @@ def station_status(db_path: str | Path, now: _dt.datetime,
         sections ``service``, ``last_measurement``, ``next_target``, ``tracker``,
         ``housekeeping``, ``faults_24h``, ``disk``, ``store`` and ``version``.
     """
-    from daemon import storeread
+    from daemon.store import reader as storeread
 
     path = Path(db_path).expanduser()
     problems: list[tuple[int, str]] = []
@@ -222,7 +222,7 @@ def station_status(db_path: str | Path, now: _dt.datetime,
 
 def _collect(conn, now: _dt.datetime, out: dict, problems: list,
              warn_min: float, crit_min: float) -> None:
-    from daemon import storeread
+    from daemon.store import reader as storeread
 
     beat = storeread.last_heartbeat(conn)
     age = None if beat is None else (now - beat).total_seconds()
@@ -359,7 +359,7 @@ def _clip(line: str, width: int = 80) -> str:
 def cmd_status(args: argparse.Namespace) -> int:
     now = _dt.datetime.now(_dt.UTC)
     if args.warn_minutes <= 0 or args.crit_minutes < args.warn_minutes:
-        from daemon.cli import EX_USAGE, CommandError
+        from daemon.commands.errors import EX_USAGE, CommandError
         raise CommandError(f"--warn-minutes {args.warn_minutes:g} and --crit-minutes "
                            f"{args.crit_minutes:g}: both must be positive and the critical "
                            "age at least the warning age", EX_USAGE)

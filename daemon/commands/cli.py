@@ -19,19 +19,17 @@ from collections.abc import Sequence
 from datetime import date
 from pathlib import Path
 
-from daemon.tables import dumps, fmt, table
+from daemon.commands.errors import (
+    EX_CONFIG,
+    EX_NOINPUT,
+    EX_UNAVAILABLE,
+    EX_USAGE,
+    CommandError,
+)
+from daemon.commands.tables import dumps, results_table, table
 
-EX_USAGE, EX_DATAERR, EX_NOINPUT, EX_UNAVAILABLE, EX_CONFIG = 64, 65, 66, 69, 78
 DEFAULT_DB = "/var/lib/heliotrope/heliotrope.db"
-REPO_CONFIG = Path(__file__).resolve().parent.parent / "config"
-
-
-class CommandError(Exception):
-    """A failure with a message for the operator and an exit code."""
-
-    def __init__(self, message: str, code: int):
-        super().__init__(message)
-        self.code = code
+REPO_CONFIG = Path(__file__).resolve().parents[2] / "config"
 
 
 def _default_db() -> str:
@@ -46,7 +44,7 @@ def _parse_date(text: str) -> date:
 
 
 def _load_config(path: str):
-    from daemon.config import ConfigError, load_config
+    from daemon.config.settings import ConfigError, load_config
     try:
         return load_config(path)
     except ConfigError as exc:
@@ -64,7 +62,7 @@ def cmd_check_config(args: argparse.Namespace) -> int:
 
 
 def cmd_today(args: argparse.Namespace) -> int:
-    from daemon.storeread import StoreReadError, latest_results, open_readonly
+    from daemon.store.reader import StoreReadError, latest_results, open_readonly
     try:
         conn = open_readonly(args.db)
     except StoreReadError as exc:
@@ -84,36 +82,11 @@ def cmd_today(args: argparse.Namespace) -> int:
     return 0
 
 
-def results_table(rows: Sequence[dict], truth: dict | None = None) -> str:
-    """The per-channel, per-session table of the demo and of ``today``."""
-    headers = ["channel", "sess", "V0 1AU [V]"]
-    if truth is not None:
-        headers += ["truth [V]", "diff [%]"]
-    headers += ["unc [%]", "tau", "used", "ok"]
-    body = []
-    for r in rows:
-        line = [r["channel"], r["session"], fmt(r["v0_1au"], ".5f")]
-        if truth is not None:
-            true_v0 = truth.get(r["channel"], {}).get("v0_1au")
-            diff = (100.0 * (r["v0_1au"] / true_v0 - 1.0)
-                    if true_v0 and r["v0_1au"] is not None else None)
-            line += [fmt(true_v0, ".5f"), fmt(diff, "+.3f")]
-        unc = r["v0_rel_unc"] * 100 if r["v0_rel_unc"] is not None else None
-        line += [fmt(unc, ".3f"), fmt(r["tau"], ".4f"), f"{r['n_used']}/{r['n_total']}",
-                 fmt(bool(r["accepted"]))]
-        body.append(line)
-    right = [False, False] + [True] * (len(headers) - 3) + [False]
-    text = table(headers, body, right)
-    notes = [f"  {r['channel']} {r['session']}: {'; '.join(r['reasons'])}"
-             for r in rows if r["reasons"]]
-    return text + ("\nnot accepted:\n" + "\n".join(notes) if notes else "")
-
-
 def cmd_plan(args: argparse.Namespace) -> int:
     day = args.date
     plan_dict = None
     if args.config is None and Path(args.db).exists():
-        from daemon.storeread import StoreReadError, open_readonly, stored_plan
+        from daemon.store.reader import StoreReadError, open_readonly, stored_plan
         try:
             conn = open_readonly(args.db)
             try:
@@ -126,7 +99,7 @@ def cmd_plan(args: argparse.Namespace) -> int:
         if args.config is None:
             raise CommandError(f"no stored plan{' for ' + str(day) if day else ''} in "
                                f"{args.db}; pass --config FILE to compute one", EX_NOINPUT)
-        from daemon.planner import plan_day
+        from daemon.station.planner import plan_day
         cfg = _load_config(args.config)
         plan_dict = plan_day(cfg, day or date.today()).to_dict()
     if args.json:
@@ -165,7 +138,7 @@ def plan_table(plan: dict) -> str:
 def cmd_demo(args: argparse.Namespace) -> int:
     import tempfile
 
-    from daemon.bench import BenchError, run_simulated_day
+    from daemon.station.bench import BenchError, run_simulated_day
     if args.config is None:
         args.config = str(REPO_CONFIG / "pico-sereno.yaml")
         if not Path(args.config).exists():
@@ -203,17 +176,17 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def cmd_probe(args: argparse.Namespace) -> int:
-    from daemon.probe import run
+    from daemon.commands.probe import run
     return run(args, _load_config(args.config))
 
 
 def cmd_calibrate(args: argparse.Namespace) -> int:
-    from daemon.campaign import calibrate_command
+    from daemon.commands.calibrate import calibrate_command
     return calibrate_command(args)
 
 
 def cmd_refit(args: argparse.Namespace) -> int:
-    from daemon.refit import refit_command
+    from daemon.commands.refit import refit_command
     return refit_command(args)
 
 
@@ -222,7 +195,7 @@ def cmd_refit(args: argparse.Namespace) -> int:
 # only when the command runs, so `today` and the others start fast.
 
 def cmd_results(args: argparse.Namespace) -> int:
-    from daemon.storeread import StoreReadError, open_readonly, results_between
+    from daemon.store.reader import StoreReadError, open_readonly, results_between
     last = args.to or args.from_
     if last < args.from_:
         raise CommandError(f"--to {last} is before --from {args.from_}; swap them", EX_USAGE)
@@ -247,28 +220,28 @@ def cmd_results(args: argparse.Namespace) -> int:
 
 
 def cmd_status(args: argparse.Namespace) -> int:
-    from daemon.status import cmd_status as run
+    from daemon.commands.status import cmd_status as run
     return run(args)
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    from daemon.export import cmd_export as run
+    from daemon.commands.export import cmd_export as run
     return run(args)
 
 
 def cmd_plot(args: argparse.Namespace) -> int:
-    from daemon.plot import cmd_plot as run
+    from daemon.commands.plot import cmd_plot as run
     return run(args)
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from daemon.report import cmd_report as run
+    from daemon.commands.report import cmd_report as run
     return run(args)
 
 
 def cmd_ssh_gate(args: argparse.Namespace) -> int:
-    from daemon.sshgate import cmd_ssh_gate as run
-    return run(args)
+    from daemon.commands.sshgate import cmd_ssh_gate as run
+    return run(args, main)
 
 
 def _add_operator_view(sub) -> None:

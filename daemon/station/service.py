@@ -2,7 +2,7 @@
 
 APScheduler (3.x, BlockingScheduler in UTC) is only the alarm clock here: each item
 of the day's plan becomes a one-shot job that calls the same
-:func:`daemon.acquisition.perform` the simulated day uses. All jobs run on one worker
+:func:`daemon.station.acquisition.perform` the simulated day uses. All jobs run on one worker
 thread, so two targets never fight over the serial ports, and the once-a-minute
 ``tick`` (heartbeat, systemd watchdog, clock-step check) runs on that same worker: a
 worker stuck in a hung call stops the watchdog pings and systemd restarts the service.
@@ -22,7 +22,7 @@ import sys
 import threading
 from datetime import UTC, date, datetime, timedelta
 
-from daemon.config import EX_CONFIG, Config, ConfigError, load_config
+from daemon.config.settings import EX_CONFIG, Config, ConfigError, load_config
 
 log = logging.getLogger("heliotroped")
 
@@ -56,8 +56,8 @@ class Service:
         from apscheduler.executors.pool import ThreadPoolExecutor
         from apscheduler.schedulers.blocking import BlockingScheduler
 
-        from daemon.acquisition import Station
-        from daemon.clock import RealClock, StepDetector
+        from daemon.station.acquisition import Station
+        from daemon.station.clock import RealClock, StepDetector
 
         self.clock = clock or RealClock()
         self.station = Station(config, radiometer, tracker, store, self.clock)
@@ -84,7 +84,7 @@ class Service:
 
     def schedule_day(self, day: date) -> None:
         """Plan ``day`` and turn every item still ahead into a job."""
-        from daemon.planner import plan_day
+        from daemon.station.planner import plan_day
 
         plan = plan_day(self.station.config, day)
         self.station.store.save_plan(day.isoformat(), plan.to_dict())
@@ -94,7 +94,7 @@ class Service:
         """Jobs for the items of ``plan`` that are still ahead. Items already past (a
         restart or a clock step in mid-session) are recorded as missed targets; items
         already carried out are not repeated."""
-        from daemon.planner import PlannedTarget
+        from daemon.station.planner import PlannedTarget
 
         for job in self.scheduler.get_jobs():
             if job.id.startswith("plan-"):
@@ -138,7 +138,7 @@ class Service:
 
     def run_item(self, item, day: date) -> None:
         """One plan item on the worker thread; nothing it raises stops the service."""
-        from daemon.acquisition import perform
+        from daemon.station.acquisition import perform
 
         key = (day, item)
         if key in self.done or self.station.stopping.is_set():
@@ -285,8 +285,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f"heliotroped: {exc}", file=sys.stderr)
         return EX_CONFIG
 
-    from daemon.acquisition import open_devices
-    from daemon.store import Store, StoreError
+    from daemon.station.acquisition import open_devices
+    from daemon.store.writer import Store, StoreError
 
     try:
         store = Store.open(config.store_path)

@@ -1,0 +1,120 @@
+"""Extinction formulas of the atmosphere that need no solar position: pure numpy.
+
+Komhyr's ozone air mass and Bodhaine's Rayleigh optical depth are short published
+formulas pvlib does not carry. They live apart from :mod:`daemon.science.solar` (which
+imports pvlib and pandas) so the screening of a session, which the read-only commands
+reuse, can call them without the heavy imports. Angles in degrees, pressures in hPa.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+
+#: Standard sea-level pressure [hPa]; Bodhaine et al. (1999) tabulate at this pressure.
+STANDARD_PRESSURE_HPA = 1013.25
+
+#: Mean Earth radius used by Komhyr (1980) for the ozone air mass [km].
+EARTH_RADIUS_KM = 6371.229
+
+ArrayLike = float | Sequence[float] | np.ndarray
+
+
+def positive(name: str, value: float, unit: str) -> float:
+    """``value`` as a float; ValueError naming it unless positive and finite."""
+    value = float(value)
+    if not math.isfinite(value) or value <= 0:
+        raise ValueError(f"{name} must be a positive finite number of {unit}, got {value!r}")
+    return value
+
+
+def like_input(value: ArrayLike, result: np.ndarray) -> float | np.ndarray:
+    """Return a float for scalar input, an array otherwise."""
+    return float(result) if np.ndim(value) == 0 else np.asarray(result, dtype=float)
+
+
+def ozone_airmass(apparent_zenith_deg: ArrayLike, station_height_m: float,
+                  layer_height_km: float = 22.0) -> float | np.ndarray:
+    """Air mass of a thin ozone layer over a spherical Earth (Komhyr 1980).
+
+    ``mu = (R + h) / sqrt((R + h)^2 - (R + r)^2 sin^2 z)``, with R = 6371.229 km,
+    h the layer height and r the station height.
+
+    Parameters
+    ----------
+    apparent_zenith_deg : float or array_like
+        Refracted solar zenith angle at the station [degrees].
+    station_height_m : float
+        Station height above sea level [m].
+    layer_height_km : float, default 22.0
+        Height of the effective ozone layer above sea level [km].
+
+    Returns
+    -------
+    float or numpy.ndarray
+        Ozone air mass [dimensionless]; NaN where the apparent zenith exceeds 90
+        degrees, as for :func:`relative_airmass`.
+
+    References
+    ----------
+    Komhyr, W. D. (1980), "Operations handbook - ozone observations with a Dobson
+    spectrophotometer", WMO Global Ozone Research and Monitoring Project Report
+    No. 6 (citation from memory; formula as given in docs/REFERENCES.md).
+    """
+    r_km = float(station_height_m) / 1000.0
+    h_km = positive("layer_height_km", layer_height_km, "km")
+    if r_km >= h_km:
+        raise ValueError(f"station_height_m ({station_height_m:g} m) must lie below the ozone "
+                         f"layer ({h_km:g} km)")
+    z = np.asarray(apparent_zenith_deg, dtype=float)
+    outer = EARTH_RADIUS_KM + h_km
+    inner = (EARTH_RADIUS_KM + r_km) * np.sin(np.radians(z))
+    mu = outer / np.sqrt(outer**2 - inner**2)
+    return like_input(apparent_zenith_deg, np.where(z > 90.0, np.nan, mu))
+
+
+# --------------------------------------------------------------------------- Rayleigh
+
+def rayleigh_optical_depth(wavelength_nm: ArrayLike,
+                           pressure_hpa: float = STANDARD_PRESSURE_HPA) -> float | np.ndarray:
+    """Rayleigh optical depth of a dry standard atmosphere (Bodhaine et al. 1999).
+
+    Parameters
+    ----------
+    wavelength_nm : float or array_like
+        Wavelength [nm], positive.
+    pressure_hpa : float, default 1013.25
+        Station pressure [hPa]; the sea-level value is scaled by ``p / 1013.25``.
+
+    Returns
+    -------
+    float or numpy.ndarray
+        Vertical Rayleigh optical depth [dimensionless].
+
+    References
+    ----------
+    Bodhaine, B. A., Wood, N. B., Dutton, E. G. and Slusser, J. R. (1999), "On
+    Rayleigh optical depth calculations", Journal of Atmospheric and Oceanic
+    Technology 16(11):1854-1861,
+    :doi:`10.1175/1520-0426(1999)016<1854:ORODC>2.0.CO;2`, eq. 30 (360 ppm CO2,
+    sea level, 45 degrees latitude).
+
+    Notes
+    -----
+    Only the pressure scaling is applied. The gravity term is left out: optical depth
+    goes as ``p / (m_a g)``, with ``g`` taken at the latitude and the mass-weighted
+    height of the air column (Bodhaine et al. 1999, eq. 22-23 and the ``m_a g`` term;
+    from memory). At 3650 m and 20 deg N, ``g`` is lower than at the 45 deg sea-level
+    reference, so this function gives tau_R about 0.3 % too small (estimate).
+    """
+    p = positive("pressure_hpa", pressure_hpa, "hPa")
+    wl = np.asarray(wavelength_nm, dtype=float)
+    if not np.all(np.isfinite(wl) & (wl > 0)):
+        raise ValueError(f"wavelength_nm must be positive finite numbers of nm, "
+                         f"got {wavelength_nm!r}")
+    um2 = (wl / 1000.0) ** 2
+    tau = (0.0021520 * (1.0455996 - 341.29061 / um2 - 0.90230850 * um2)
+           / (1.0 + 0.0027059889 / um2 - 85.968563 * um2))
+    return like_input(wavelength_nm, tau * (p / STANDARD_PRESSURE_HPA))
