@@ -47,13 +47,7 @@ def _set_clock(transport: Transport, when: datetime) -> None:
 
 
 def _read_clock(transport: Transport) -> datetime:
-    fields = transport.exchange(p.CLK)
-    if len(fields) != 1:
-        raise p.BadPayload(f"CLK reply has {len(fields)} fields, expected 1")
-    try:
-        return p.parse_time(fields[0])
-    except ValueError as exc:
-        raise p.BadPayload(str(exc)) from None
+    return p.parse_clock(transport.exchange(p.CLK))
 
 
 class SerialRadiometer(Radiometer):
