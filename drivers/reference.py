@@ -111,6 +111,9 @@ class SerialRadiometer(Radiometer):
     def close(self) -> None:
         self.transport.close()
 
+    def shutdown(self, timeout_s: float = 1.0) -> None:
+        self.transport.shutdown(timeout_s)
+
 
 class SerialTracker(Tracker):
     """A two-axis sun tracker speaking the heliotrope line protocol."""
@@ -146,11 +149,21 @@ class SerialTracker(Tracker):
     def park(self) -> None:
         self.transport.exchange(p.PARK)
 
+    def park_once(self, timeout_s: float = 2.0) -> None:
+        """One PARK, no retry, no back-off, within about ``timeout_s`` [s].
+
+        PARK alone also stops following the sun (PROTOCOL.md, tracker commands), so
+        the stop path needs no SUN 0 before it."""
+        self.transport.exchange_once(p.PARK, timeout_s=timeout_s)
+
     def link_counters(self) -> dict[str, int]:
         return dataclasses.asdict(self.transport.counters)
 
     def close(self) -> None:
         self.transport.close()
+
+    def shutdown(self, timeout_s: float = 1.0) -> None:
+        self.transport.shutdown(timeout_s)
 
 
 def open_radiometer(
