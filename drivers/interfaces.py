@@ -93,6 +93,14 @@ class Radiometer(abc.ABC):
     @abc.abstractmethod
     def close(self) -> None: ...
 
+    def shutdown(self, timeout_s: float = 1.0) -> None:
+        """Close for good within about ``timeout_s`` [s], even with a command in
+        progress in another thread (which then fails with a LinkError).
+
+        For the stop path. Drivers whose close can block longer override this; the
+        default is :meth:`close`."""
+        self.close()
+
 
 class Tracker(abc.ABC):
     @abc.abstractmethod
@@ -115,6 +123,15 @@ class Tracker(abc.ABC):
     @abc.abstractmethod
     def park(self) -> None: ...
 
+    def park_once(self, timeout_s: float = 2.0) -> None:
+        """Park with one try within about ``timeout_s`` [s]: no retry, no back-off.
+
+        For the stop path, where a dead link must not hold up the exit. Drivers whose
+        :meth:`park` retries override this; the default is :meth:`park`.
+
+        Raises LinkError or DeviceError as :meth:`park` does."""
+        self.park()
+
     def link_counters(self) -> dict[str, int]:
         """Link faults seen so far (timeouts, bad checksums, reconnects...), by kind.
 
@@ -123,3 +140,11 @@ class Tracker(abc.ABC):
 
     @abc.abstractmethod
     def close(self) -> None: ...
+
+    def shutdown(self, timeout_s: float = 1.0) -> None:
+        """Close for good within about ``timeout_s`` [s], even with a command in
+        progress in another thread (which then fails with a LinkError).
+
+        For the stop path. Drivers whose close can block longer override this; the
+        default is :meth:`close`."""
+        self.close()

@@ -57,6 +57,17 @@ RID_MAX = 65535
 #: Longest line either side will accept [bytes]; a burst of MAX_SAMPLES on 16 channels
 #: fits with room to spare.
 MAX_LINE_BYTES = 200_000
+#: Longest request a device accepts [bytes, without the end of line].
+MAX_REQUEST_BYTES = 256
+#: Longest field of an OK reply [characters]. The longest the protocol sends is a time
+#: (24); the rest is room for long model or firmware names. A longer field is a frame
+#: error, so no number of thousands of digits ever reaches int() or float().
+MAX_FIELD_CHARS = 64
+#: Most digits of a whole-number field: 18 fit in a signed 64-bit integer, and any
+#: such count converts to a float exactly enough.
+MAX_INT_DIGITS = 18
+#: Longest ERR text kept [characters]; a longer one is cut (the code is what counts).
+MAX_ERROR_TEXT_CHARS = 200
 #: Longest burst or dark a device accepts [samples].
 MAX_SAMPLES = 1000
 #: Slowest sample period a device may have; drivers size their timeouts from it [s].
@@ -118,6 +129,11 @@ RETRYABLE_CODES = frozenset({Code.SYNTAX, Code.CHECKSUM, Code.BUSY})
 _RID_RE = re.compile(r"#(\d{1,5})")
 _CMD_RE = re.compile(r"[A-Z][A-Z0-9]{0,11}")
 _CRC_RE = re.compile(r"[0-9A-Fa-f]{4}")
+_ERR_CODE_RE = re.compile(r"[0-9]{1,5}")
+_INT_RE = re.compile(rf"[0-9]{{1,{MAX_INT_DIGITS}}}")
+# Plain decimal as PROTOCOL.md writes numbers: no digit separators ('1_0.5' is not
+# 10.5), no 'nan' or 'inf' spellings, no hexadecimal, at most a 3-digit exponent.
+_FLOAT_RE = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]{1,3})?")
 
 # ---------------------------------------------------------------------------- exceptions
 
@@ -298,6 +314,10 @@ def decode_request(line: bytes | str) -> Request:
     """
     raw = _strip_eol(line)
     salvaged = _salvage_rid(raw)
+    if len(raw) > MAX_REQUEST_BYTES:
+        raise BadRequest(
+            Code.SYNTAX, f"request longer than {MAX_REQUEST_BYTES} bytes; shorten it", salvaged
+        )
     try:
         body, digits = _split_crc(raw)
     except ValueError as exc:
@@ -345,7 +365,9 @@ def decode_reply(line: bytes | str, expected_rid: int, expected_cmd: str | None 
     Raises
     ------
     FrameError
-        Not a well-formed reply (or an OK for a different command than ``expected_cmd``).
+        Not a well-formed reply (or an OK for a different command than ``expected_cmd``),
+        including a line longer than ``MAX_LINE_BYTES``, a field of an OK reply longer
+        than ``MAX_FIELD_CHARS`` and an ERR code that is not 1 to 5 digits.
     ChecksumError
         The checksum does not match.
     StaleReply
@@ -354,6 +376,10 @@ def decode_reply(line: bytes | str, expected_rid: int, expected_cmd: str | None 
         A good ``ERR`` reply to this request.
     """
     raw = _strip_eol(line)
+    if len(raw) > MAX_LINE_BYTES:
+        raise FrameError(
+            f"not a reply line: {len(raw)} bytes, longer than {MAX_LINE_BYTES}", raw[:80]
+        )
     try:
         body, digits = _split_crc(raw)
     except ValueError as exc:
@@ -379,11 +405,19 @@ def decode_reply(line: bytes | str, expected_rid: int, expected_cmd: str | None 
         raise StaleReply(rid, expected_rid, raw)
     status = words[1]
     if status == "ERR":
-        if not words[2].isdigit():
-            raise FrameError(f"error reply with a non-numeric code {words[2]!r}", raw)
-        raise ErrorReply(rid, int(words[2]), " ".join(words[3:]))
+        if not _ERR_CODE_RE.fullmatch(words[2]):
+            raise FrameError(f"error reply with a code {words[2][:20]!r} that is not "
+                             "1 to 5 digits", raw)
+        text = " ".join(words[3:])
+        if len(text) > MAX_ERROR_TEXT_CHARS:
+            text = f"{text[:MAX_ERROR_TEXT_CHARS]}... (cut from {len(text)} characters)"
+        raise ErrorReply(rid, int(words[2]), text)
     if status != "OK" or not _CMD_RE.fullmatch(words[2]) or "" in words:
         raise FrameError("not a reply line: expected '#<id> OK <CMD> <fields>'", raw)
+    longest = max(len(w) for w in words)
+    if longest > MAX_FIELD_CHARS:
+        raise FrameError(f"not a reply line: a field of {longest} characters, longer than "
+                         f"{MAX_FIELD_CHARS}", raw)
     if expected_cmd is not None and words[2] != expected_cmd:
         raise FrameError(f"reply is for {words[2]}, the request was {expected_cmd}", raw)
     return Reply(rid, words[2], tuple(words[3:]))
@@ -395,19 +429,26 @@ def decode_reply(line: bytes | str, expected_rid: int, expected_cmd: str | None 
 # lives here only.
 
 
+def _shown(text: str) -> str:
+    """``text`` for a message: a field from a hostile device may be any length."""
+    return repr(text) if len(text) <= MAX_FIELD_CHARS else f"{text[:20]!r}... ({len(text)} chars)"
+
+
 def _float(text: str, what: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise BadPayload(f"{what} {text!r} is not a number") from None
+    # Checked here as well as in decode_reply: other drivers call the parsers with
+    # fields of their own.
+    if len(text) > MAX_FIELD_CHARS or not _FLOAT_RE.fullmatch(text):
+        raise BadPayload(f"{what} {_shown(text)} is not a plain decimal number")
+    value = float(text)
     if not math.isfinite(value):
-        raise BadPayload(f"{what} {text!r} is not a finite number")
+        raise BadPayload(f"{what} {_shown(text)} is too large for a number")
     return value
 
 
 def _int(text: str, what: str) -> int:
-    if not text.isdigit():
-        raise BadPayload(f"{what} {text!r} is not a whole number")
+    if not _INT_RE.fullmatch(text):
+        raise BadPayload(f"{what} {_shown(text)} is not a whole number of 1 to "
+                         f"{MAX_INT_DIGITS} digits")
     return int(text)
 
 
@@ -445,6 +486,16 @@ def parse_time(text: str) -> datetime:
     if when.utcoffset().total_seconds() != 0:
         raise ValueError(f"time {text!r} is not UTC; give it in UTC ending with Z")
     return when.astimezone(UTC)
+
+
+def parse_clock(fields: Sequence[str]) -> datetime:
+    """The time of a CLK reply (UTC). Raises BadPayload when it is not one ISO 8601 UTC time."""
+    _need(fields, 1, "CLK")
+    try:
+        return parse_time(fields[0])
+    except (ValueError, OverflowError) as exc:
+        # OverflowError: a year at the edge of datetime's range cannot be moved to UTC.
+        raise BadPayload(f"CLK reply: {exc}") from None
 
 
 def identity_fields(kind: str, identity: Identity, channel_count: int | None = None) -> list[str]:
@@ -592,7 +643,7 @@ def _arg_error(req: Request, text: str) -> BadRequest:
 
 def parse_samples_arg(req: Request) -> int:
     """``BURST <n>`` / ``DARK <n>``: 1 <= n <= MAX_SAMPLES."""
-    if len(req.args) != 1 or not req.args[0].isdigit():
+    if len(req.args) != 1 or not _INT_RE.fullmatch(req.args[0]):
         raise _arg_error(req, f"usage: {req.cmd} <samples 1-{MAX_SAMPLES}>")
     n = int(req.args[0])
     if not 1 <= n <= MAX_SAMPLES:
@@ -615,12 +666,11 @@ def parse_clock_arg(req: Request) -> datetime | None:
 def parse_goto_args(req: Request) -> tuple[float, float]:
     """``GOTO <azimuth deg> <elevation deg>``, range-checked."""
     usage = "usage: GOTO <azimuth 0-360 deg> <elevation 0-90 deg>"
-    if len(req.args) != 2:
+    if len(req.args) != 2 or not all(
+        len(a) <= MAX_FIELD_CHARS and _FLOAT_RE.fullmatch(a) for a in req.args
+    ):
         raise _arg_error(req, usage)
-    try:
-        az, el = float(req.args[0]), float(req.args[1])
-    except ValueError:
-        raise _arg_error(req, usage) from None
+    az, el = float(req.args[0]), float(req.args[1])
     if not (AZIMUTH_RANGE_DEG[0] <= az < AZIMUTH_RANGE_DEG[1]):
         raise _arg_error(req, f"azimuth {req.args[0]} outside 0 <= az < 360 deg")
     if not (ELEVATION_RANGE_DEG[0] <= el <= ELEVATION_RANGE_DEG[1]):

@@ -47,13 +47,7 @@ def _set_clock(transport: Transport, when: datetime) -> None:
 
 
 def _read_clock(transport: Transport) -> datetime:
-    fields = transport.exchange(p.CLK)
-    if len(fields) != 1:
-        raise p.BadPayload(f"CLK reply has {len(fields)} fields, expected 1")
-    try:
-        return p.parse_time(fields[0])
-    except ValueError as exc:
-        raise p.BadPayload(str(exc)) from None
+    return p.parse_clock(transport.exchange(p.CLK))
 
 
 class SerialRadiometer(Radiometer):
@@ -117,6 +111,9 @@ class SerialRadiometer(Radiometer):
     def close(self) -> None:
         self.transport.close()
 
+    def shutdown(self, timeout_s: float = 1.0) -> None:
+        self.transport.shutdown(timeout_s)
+
 
 class SerialTracker(Tracker):
     """A two-axis sun tracker speaking the heliotrope line protocol."""
@@ -152,11 +149,21 @@ class SerialTracker(Tracker):
     def park(self) -> None:
         self.transport.exchange(p.PARK)
 
+    def park_once(self, timeout_s: float = 2.0) -> None:
+        """One PARK, no retry, no back-off, within about ``timeout_s`` [s].
+
+        PARK alone also stops following the sun (PROTOCOL.md, tracker commands), so
+        the stop path needs no SUN 0 before it."""
+        self.transport.exchange_once(p.PARK, timeout_s=timeout_s)
+
     def link_counters(self) -> dict[str, int]:
         return dataclasses.asdict(self.transport.counters)
 
     def close(self) -> None:
         self.transport.close()
+
+    def shutdown(self, timeout_s: float = 1.0) -> None:
+        self.transport.shutdown(timeout_s)
 
 
 def open_radiometer(

@@ -51,10 +51,18 @@ log = logging.getLogger(__name__)
 #: Longest single wait inside read_until; bounds how far a read can overrun its deadline
 #: (pyserial's read_until may wait one full port timeout past its own).
 READ_SLICE_S = 0.1
+#: Most doublings of the reopen back-off. 2**64 takes any sensible first wait past the
+#: longest; the cap keeps 0.25 * 2**n a float after a week of failed opens (n > 1023
+#: overflowed).
+MAX_BACKOFF_DOUBLINGS = 64
 
 
 class LinkTimeout(LinkError):
     """No complete reply before the deadline."""
+
+
+class LinkShutDown(LinkError):
+    """The transport was shut down (:meth:`Transport.shutdown`); nothing more is sent."""
 
 
 class PortUnavailable(LinkError):
@@ -119,7 +127,7 @@ class Transport:
     serial_factory
         Opens the port; ``serial.serial_for_url`` unless a test substitutes a fake.
     sleep
-        Used for back-off waits.
+        Used for back-off waits; by default a wait that :meth:`shutdown` cuts short.
 
     An exchange returns or raises within ``(retries + 1) * (timeout + backoff_s[1] +
     READ_SLICE_S)``.
@@ -136,7 +144,7 @@ class Transport:
         backoff_s: tuple[float, float] = (0.25, 5.0),
         first_rid: int | None = None,
         serial_factory: SerialFactory = serial.serial_for_url,
-        sleep: Callable[[float], None] = time.sleep,
+        sleep: Callable[[float], None] | None = None,
     ) -> None:
         if not url:
             raise ValueError("empty port: give a device path such as /dev/ttyUSB0 or a URL")
@@ -144,6 +152,10 @@ class Transport:
             raise ValueError(f"timeout_s {timeout_s} must be > 0")
         if retries < 0:
             raise ValueError(f"retries {retries} must be >= 0")
+        first_s, longest_s = backoff_s
+        if not (0 <= first_s <= longest_s < float("inf")):
+            raise ValueError(f"backoff_s {backoff_s} must be (first, longest) with "
+                             "0 <= first <= longest, finite [s]")
         self.url = url
         self.baudrate = baudrate
         self.timeout_s = timeout_s
@@ -151,7 +163,9 @@ class Transport:
         self.name = name or url
         self._backoff_first_s, self._backoff_max_s = backoff_s
         self._factory = serial_factory
-        self._sleep = sleep
+        # Set by shutdown(): back-off waits and reads end at once, no new attempt starts.
+        self._stopping = threading.Event()
+        self._sleep = sleep if sleep is not None else self._stopping.wait
         self._rid = first_rid if first_rid is not None else secrets.randbelow(RID_MAX) + 1
         if not 1 <= self._rid <= RID_MAX:
             raise ValueError(f"first_rid {first_rid} must be 1..{RID_MAX}")
@@ -178,8 +192,27 @@ class Transport:
             self._ensure_open()
 
     def close(self) -> None:
+        """Close the port; the next exchange opens it again."""
         with self._lock:
             self._drop_port()
+
+    def shutdown(self, timeout_s: float = 1.0) -> bool:
+        """Close for good within about ``timeout_s`` [s], even mid-exchange.
+
+        An exchange in progress in another thread stops at its next step (a back-off
+        wait or a read slice ends at once) and raises LinkError; later exchanges raise
+        LinkError without touching the port. Returns False when that exchange had not
+        let go of the link within ``timeout_s`` (a write blocked in the operating
+        system); the port is then closed under it, which ends such a write.
+        """
+        self._stopping.set()
+        got_lock = self._lock.acquire(timeout=timeout_s)
+        try:
+            self._drop_port()
+        finally:
+            if got_lock:
+                self._lock.release()
+        return got_lock
 
     def __enter__(self) -> Transport:
         return self
@@ -209,12 +242,15 @@ class Transport:
         with self._lock:
             last: Exception | None = None
             for attempt in range(self.retries + 1):
+                self._check_not_stopping(cmd)
                 if attempt:
                     self._counters.retries += 1
                     log.info("%s: %s attempt %d of %d after: %s",
                              self.name, cmd, attempt + 1, self.retries + 1, last)
                 try:
                     fields = self._attempt(cmd, str_args, per_try_s)
+                except LinkShutDown:
+                    raise
                 except ErrorReply as exc:
                     self._counters.device_errors += 1
                     if exc.retryable and attempt < self.retries:
@@ -250,7 +286,62 @@ class Transport:
             f"(last: {last})"
         ) from last
 
+    def exchange_once(
+        self, cmd: str, args: Sequence[str | int] = (), *, timeout_s: float | None = None
+    ) -> tuple[str, ...]:
+        """One attempt at ``cmd``, with no retry and no back-off: for the shutdown path.
+
+        Returns or raises within about ``timeout_s + READ_SLICE_S`` plus the time the
+        operating system takes to refuse an open, whatever state the link is in (a port
+        that takes no bytes at all can hold a write for the configured ``timeout_s``
+        more). Unlike :meth:`exchange`, ``timeout_s`` may be shorter than the configured
+        timeout: it is the caller's whole budget [s], including any wait for an
+        exchange another thread is in the middle of.
+
+        Raises
+        ------
+        drivers.protocol.ErrorReply
+            The device answered ERR.
+        PortUnavailable
+            The port cannot be opened (not retried, no back-off).
+        drivers.interfaces.LinkError
+            No usable reply to the one attempt, the port failed, or another thread
+            held the link for the whole budget.
+        """
+        budget_s = self.timeout_s if timeout_s is None else timeout_s
+        if not 0 < budget_s < float("inf"):
+            raise ValueError(f"timeout_s {timeout_s} must be > 0 and finite")
+        str_args = [str(a) for a in args]
+        deadline = time.monotonic() + budget_s
+        if not self._lock.acquire(timeout=budget_s):
+            raise LinkError(f"{self.name}: link busy with another exchange for {budget_s:g} s; "
+                            f"{cmd} not sent")
+        try:
+            self._check_not_stopping(cmd)
+            # What the wait for the lock left of the budget, but a read slice at least.
+            per_try_s = max(deadline - time.monotonic(), READ_SLICE_S)
+            fields = self._attempt(cmd, str_args, per_try_s)
+        except ErrorReply:
+            self._counters.device_errors += 1
+            raise
+        except (LinkShutDown, LinkTimeout, ProtocolError, PortUnavailable):
+            raise
+        except PORT_FAILURES as exc:
+            self._drop_port()
+            self._port_failed = True
+            self._failures += 1
+            raise LinkError(f"{self.name}: port failed during {cmd} ({exc})") from exc
+        finally:
+            self._lock.release()
+        self._counters.exchanges += 1
+        self._failures = 0
+        return fields
+
     # ------------------------------------------------------------------ internals
+
+    def _check_not_stopping(self, cmd: str) -> None:
+        if self._stopping.is_set():
+            raise LinkShutDown(f"{self.name}: shut down; {cmd} not sent")
 
     def _next_rid(self) -> int:
         rid = self._rid
@@ -272,6 +363,7 @@ class Transport:
         deadline = time.monotonic() + per_try_s
         pending = b""
         while True:
+            self._check_not_stopping(cmd)
             remaining = deadline - time.monotonic()
             if remaining <= 0:
                 self._counters.timeouts += 1
@@ -356,8 +448,8 @@ class Transport:
                 port.close()
 
     def _back_off(self) -> None:
-        delay = min(self._backoff_max_s,
-                    self._backoff_first_s * 2 ** max(0, self._failures - 1))
+        doublings = min(max(0, self._failures - 1), MAX_BACKOFF_DOUBLINGS)
+        delay = min(self._backoff_max_s, self._backoff_first_s * 2.0**doublings)
         log.debug("%s: waiting %.2f s before reopening", self.name, delay)
         self._sleep(delay)
 

@@ -46,8 +46,8 @@ EOL = b"\r\n"
 
 log = logging.getLogger(__name__)
 
-#: Longest request line accepted [bytes]; a request is a few dozen.
-MAX_REQUEST_BYTES = 256
+#: Longest request line accepted [bytes]; a request is a few dozen. The codec's bound.
+MAX_REQUEST_BYTES = p.MAX_REQUEST_BYTES
 #: How long a reply may wait for a client that does not read before it is dropped [s].
 WRITE_TIMEOUT_S = 2.0
 #: A vanishing port goes this long after the request that triggers it [s].
