@@ -55,10 +55,51 @@ def _load_config(path: str):
 
 def cmd_check_config(args: argparse.Namespace) -> int:
     cfg = _load_config(args.file)
+    try:
+        warnings = _check_store_path(args.file, cfg.store_path)
+    except OSError as exc:  # e.g. a state directory this user may not look into
+        warnings = [f"store.path: cannot look at {cfg.store_path} as this user ({exc}); "
+                    "run check-config as the service's user to check it"]
+    for key, port in (("radiometer", cfg.radiometer), ("tracker", cfg.tracker)):
+        # A URL (socket://, loop://, rfc2217://...) names no device file to look for.
+        if "://" in port.url:
+            continue
+        if os.path.exists(port.url):
+            print(f"instrument.{key}.port: {port.url} exists on this machine")
+        else:
+            warnings.append(f"instrument.{key}.port: {port.url} does not exist on this "
+                            "machine; fine on a bench, but on the station check the cable "
+                            "and `ls -l /dev/serial/by-id/`")
+    for line in warnings:
+        print(f"WARNING {line}", file=sys.stderr)
     names = ", ".join(ch.name for ch in cfg.channels)
     print(f"{args.file}: ok - {cfg.site.name}, {len(cfg.channels)} channels ({names}), "
           f"store {cfg.store_path}")
     return 0
+
+
+def _check_store_path(source: str, store_path: str) -> list[str]:
+    """Refuse a store path the service could never open; return warnings for the rest."""
+    path = Path(store_path)
+
+    def refuse(problem: str) -> CommandError:
+        return CommandError(f"{source}: store.path: {problem}", EX_CONFIG)
+
+    if path.is_dir():
+        raise refuse(f"{path} is a directory; give the path of the store file in it, "
+                     f"for example {path / 'heliotrope.db'}")
+    parent = path.parent
+    if parent.exists():
+        if not parent.is_dir():
+            raise refuse(f"{parent} is not a directory; put the store in a directory")
+        return []
+    # The service creates missing directories (systemd's StateDirectory= makes the
+    # default one), so only a non-directory in the way is an error.
+    ancestor = next(p for p in parent.parents if p.exists())
+    if not ancestor.is_dir():
+        raise refuse(f"{ancestor} is not a directory, so {parent} cannot be created")
+    return [f"store.path: directory {parent} does not exist on this machine yet; the "
+            f"service creates it at start, which needs write access to {ancestor}"]
 
 
 def cmd_today(args: argparse.Namespace) -> int:

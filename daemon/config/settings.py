@@ -1,6 +1,8 @@
 """Strict configuration loader.
 
-The YAML file is read with ``yaml.safe_load`` and walked by typed getters. Each
+The YAML file is read with a stricter ``yaml.SafeLoader`` (:class:`_StrictLoader`:
+no duplicate keys, no anchors or aliases, bounded size, nesting and whole numbers)
+and walked by typed getters. Each
 getter knows its key path, type and bounds, so every error names the key and the
 allowed range. Keys that nobody read are rejected at the end: a typo surfaces at
 start-up, not in the middle of a session on the mountain.
@@ -12,6 +14,7 @@ fast.
 from __future__ import annotations
 
 import math
+import os
 import re
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -26,6 +29,13 @@ EX_CONFIG = 78  # sysexits.h: configuration error
 # The longest one command may go unanswered, all retries included. With the slew and
 # lock limits this keeps a whole target well inside the unit's WatchdogSec (600 s).
 MAX_EXCHANGE_S = 20.0
+# Bounds on the file itself, far above any real configuration (the shipped ones are
+# about 3 kB, 4 levels deep), so a damaged or hostile file fails fast and small.
+MAX_FILE_BYTES = 1024 * 1024
+MAX_DEPTH = 64
+# Every number ends up as a float; past 2**53 a whole number no longer survives that.
+MAX_WHOLE = 2**53
+MAX_WHOLE_TEXT = 64  # characters of one whole number's text, checked before int()
 
 
 class ConfigError(Exception):
@@ -140,6 +150,144 @@ class Config:
             if ch.name == name:
                 return ch
         raise KeyError(name)
+
+
+# --------------------------------------------------------------------------- YAML
+
+class _Refused(yaml.MarkedYAMLError):
+    """Valid YAML that this loader will not take (an alias, too deep, too large)."""
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """``yaml.SafeLoader`` that refuses what a configuration never needs.
+
+    Anchors and aliases are refused outright rather than counted, which keeps an
+    alias-expansion bomb at a few nodes of work. Nesting is bounded in the composer, the
+    one recursive stage of PyYAML, so deep brackets never reach a ``RecursionError``.
+    Mapping and sequence construction record each value's key path for the messages.
+    """
+
+    def __init__(self, stream: str):
+        super().__init__(stream)
+        self._depth = 0
+        self._paths: dict[yaml.Node, str] = {}
+
+    def compose_node(self, parent: yaml.Node | None, index: Any) -> yaml.Node:
+        event = self.peek_event()
+        if isinstance(event, yaml.AliasEvent):
+            raise _Refused(None, None, f"alias *{event.anchor} is not allowed; write the "
+                           "value out in full", event.start_mark)
+        if event.anchor is not None:
+            raise _Refused(None, None, f"anchor &{event.anchor} is not allowed; write the "
+                           "value out in full", event.start_mark)
+        if not isinstance(event, yaml.SequenceStartEvent | yaml.MappingStartEvent):
+            return super().compose_node(parent, index)
+        if self._depth >= MAX_DEPTH:
+            raise _Refused(None, None, f"nested more than {MAX_DEPTH} levels deep; allowed "
+                           f"at most {MAX_DEPTH}", event.start_mark)
+        self._depth += 1
+        try:
+            return super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+
+    def _where(self, node: yaml.Node) -> str:
+        return self._paths.get(node) or "top level"
+
+    def construct_mapping(self, node: yaml.Node, deep: bool = False) -> dict[Any, Any]:
+        path = self._paths.get(node, "")
+        first_seen: dict[Any, yaml.Node] = {}
+        for key_node, value_node in node.value:
+            if key_node.tag == "tag:yaml.org,2002:merge":
+                raise _Refused(None, None, "merge key << is not allowed; write the keys out "
+                               "in full", key_node.start_mark)
+            key = self.construct_object(key_node, deep=True)
+            try:
+                first = first_seen.get(key)
+            except TypeError:
+                continue  # an unhashable key: SafeLoader's own message follows
+            key_path = f"{path}.{key}" if path else str(key)
+            if first is not None:
+                raise _Refused(None, None, f"{key_path}: key given twice, at line "
+                               f"{first.start_mark.line + 1} and line "
+                               f"{key_node.start_mark.line + 1}; keep one",
+                               key_node.start_mark)
+            first_seen[key] = key_node
+            self._paths[value_node] = key_path
+        return super().construct_mapping(node, deep=deep)
+
+    def construct_sequence(self, node: yaml.Node, deep: bool = False) -> list[Any]:
+        path = self._paths.get(node, "")
+        for i, child in enumerate(node.value):
+            self._paths[child] = f"{path}[{i}]"
+        return super().construct_sequence(node, deep=deep)
+
+    def construct_yaml_int(self, node: yaml.Node) -> int:
+        # Checked on the text first: int() of thousands of digits is slow or refused.
+        too_big = f"{self._where(node)}: whole number {_shorten(node.value)} is too large; " \
+            f"allowed -{MAX_WHOLE} to {MAX_WHOLE} (and each key's own range)"
+        if len(node.value) > MAX_WHOLE_TEXT:
+            raise _Refused(None, None, too_big, node.start_mark)
+        value = super().construct_yaml_int(node)
+        if abs(value) > MAX_WHOLE:
+            raise _Refused(None, None, too_big, node.start_mark)
+        return value
+
+    def construct_yaml_timestamp(self, node: yaml.Node) -> Any:
+        try:
+            return super().construct_yaml_timestamp(node)
+        except ValueError as exc:  # a date such as 2027-02-30 or year 0000
+            raise _Refused(None, None, f"{self._where(node)}: {node.value!r} is not a "
+                           f"date ({exc})", node.start_mark) from None
+
+
+_StrictLoader.add_constructor("tag:yaml.org,2002:int", _StrictLoader.construct_yaml_int)
+_StrictLoader.add_constructor("tag:yaml.org,2002:timestamp",
+                              _StrictLoader.construct_yaml_timestamp)
+
+
+def _shorten(text: str) -> str:
+    digits = sum(c.isdigit() for c in text)
+    return repr(text) if len(text) <= 24 else f"{text[:12]!r}... ({digits} digits)"
+
+
+def _parse_yaml(text: str) -> Any:
+    """Parse one YAML document with :class:`_StrictLoader`; raise :class:`ConfigError`."""
+    loader = None
+    try:
+        loader = _StrictLoader(text)  # the reader checks for control characters here
+        return loader.get_single_data()
+    except _Refused as exc:
+        mark = exc.problem_mark
+        raise ConfigError(f"line {mark.line + 1}, column {mark.column + 1}: "
+                          f"{exc.problem}") from None
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        raise ConfigError(f"not valid YAML{where}: {exc.problem or exc.context}") from None
+    except yaml.reader.ReaderError as exc:
+        # The reader counts characters, not lines: turn the offset into both.
+        line = text.count("\n", 0, exc.position) + 1
+        column = exc.position - (text.rfind("\n", 0, exc.position) + 1) + 1
+        raise ConfigError(f"not valid YAML at line {line}, column {column}: control "
+                          f"character U+{exc.character:04X} is not allowed; remove it") from None
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"not valid YAML: {exc}") from None
+    finally:
+        if loader is not None:
+            loader.dispose()
+
+
+def _read_text(path: Path) -> str:
+    """The file's text, read no further than :data:`MAX_FILE_BYTES` plus one byte."""
+    with path.open("rb") as f:
+        size = os.fstat(f.fileno()).st_size
+        data = f.read(MAX_FILE_BYTES + 1)
+    if len(data) > MAX_FILE_BYTES:
+        said = f"{size} bytes" if size > MAX_FILE_BYTES else f"more than {MAX_FILE_BYTES} bytes"
+        raise ConfigError(f"the file is {said}; a configuration may be at most "
+                          f"{MAX_FILE_BYTES} bytes (1 MiB)")
+    return data.decode("utf-8")
 
 
 # --------------------------------------------------------------------------- reader
@@ -458,19 +606,15 @@ def load_config(path: str | Path) -> Config:
     """Read and validate a YAML configuration file; raise :class:`ConfigError`."""
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        text = _read_text(path)
+        data = _parse_yaml(text)
     except FileNotFoundError:
         raise ConfigError(f"{path}: no such file; pass the path of a YAML configuration "
                           "(examples in config/)") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"{path}: cannot read the file ({exc})") from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
-        raise ConfigError(f"{path}: not valid YAML{where}: "
-                          f"{getattr(exc, 'problem', None) or exc}") from None
+    except ConfigError as exc:
+        raise ConfigError(f"{path}: {exc}") from None
     try:
         return parse_config(data, source=str(path))
     except ConfigError as exc:
