@@ -36,8 +36,9 @@ def _line_of(text: str, needle: str, nth: int = 1) -> int:
 
 
 # --------------------------------------------------------------------------- duplicates
-# YAML 1.2.2, section 3.2.1.1: "each of the keys is unique" within a mapping; PyYAML's
-# SafeLoader keeps the last one silently, so the loader must refuse it.
+# YAML spec, "Nodes" (1.2.2 section 3.2.1.1; the number from memory): "The content of a
+# mapping node is an unordered set of key/value node pairs, with the restriction that
+# each of the keys is unique." PyYAML's SafeLoader keeps the last one silently.
 
 def test_duplicate_nested_key_names_the_key_and_both_lines(tmp_path):
     text = PICO.replace("  latitude_deg: 19.95\n",
@@ -199,22 +200,19 @@ def test_four_hundred_digit_integer_exits_78(tmp_path, capsys):
 
 # --------------------------------------------------------------------------- parse errors
 
-def test_parse_error_gives_line_and_column(tmp_path):
-    # A tab may not indent YAML (YAML 1.2.2, section 6.1).
-    text = PICO.replace("  ozone_du: 260", "\tozone_du: 260", 1)
-    line = _line_of(text, "ozone_du:")
-    with pytest.raises(ConfigError, match=rf"not valid YAML at line {line}, column 1: found "
-                                          r"character '\\t' that cannot start any token"):
-        load_config(_write(tmp_path, text))
-
-
-def test_control_character_gives_line_and_column(tmp_path):
-    # YAML 1.2.2, section 5.1: C0 control characters other than tab, LF and CR are not
-    # part of the printable character set.
-    text = PICO.replace("name: Pico Sereno Station", "name: Pico\x07Sereno Station", 1)
-    line = _line_of(text, "name: Pico")
-    with pytest.raises(ConfigError, match=rf"not valid YAML at line {line}, column 13: "
-                                          r"control character U\+0007 is not allowed"):
+@pytest.mark.parametrize("old, new, starts, message", [
+    # A tab may not indent YAML (YAML 1.2.2, section 6.1; from memory).
+    ("  ozone_du: 260", "\tozone_du: 260", "ozone_du:",
+     r"column 1: found character '\\t' that cannot start any token"),
+    # C0 control characters other than tab, LF and CR are outside YAML's printable set
+    # (YAML 1.2.2, section 5.1; from memory); PyYAML reports an offset, not a line.
+    ("name: Pico Sereno Station", "name: Pico\x07Sereno Station", "name: Pico",
+     r"column 13: control character U\+0007 is not allowed"),
+])
+def test_parse_error_gives_line_and_column(tmp_path, old, new, starts, message):
+    text = PICO.replace(old, new, 1)
+    line = _line_of(text, starts)
+    with pytest.raises(ConfigError, match=rf"not valid YAML at line {line}, {message}"):
         load_config(_write(tmp_path, text))
 
 
