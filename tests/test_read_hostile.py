@@ -20,24 +20,17 @@ from daemon.commands.cli import main
 from daemon.commands.status import CRITICAL, format_status, station_status
 from daemon.store import reader
 from daemon.store.writer import Store
-from tests.synthetic_store import CONFIG_PATH, DAY, build_day
+from tests import test_status as status_tests
+from tests.synthetic_store import CONFIG_PATH, DAY
 
 UTC = dt.UTC
 D = DAY.isoformat()
 ROOT = Path(__file__).resolve().parent.parent
 NOBODY_UID = NOGROUP_GID = 65534
 
-
-@pytest.fixture(scope="module")
-def day(tmp_path_factory):
-    return build_day(tmp_path_factory.mktemp("hostile") / "day.db")
-
-
-def _copy(day, tmp_path: Path) -> Path:
-    # The fixture's store is closed, so its WAL is checkpointed into the main file.
-    dst = tmp_path / "copy.db"
-    dst.write_bytes(day.path.read_bytes())
-    return dst
+# The closed synthetic day and a private copy of it, as the status tests use them.
+day = status_tests.day
+_copy = status_tests._copy
 
 
 def _last_event_utc(day) -> dt.datetime:
