@@ -8,7 +8,9 @@ and the software version.
 
 The exit code follows the monitoring-plugin convention, so cron or a monitoring
 system can call it over SSH: 0 healthy, 1 warning, 2 stale or failing. A store that
-cannot be read is "failing" (2): nothing can be said about the station.
+cannot be read (any SQLite error, a damaged row) is "failing" (2), in one line: nothing
+can be said about the station. So is a station with nothing planned ahead and no plan
+for today: the service would not measure again without a restart.
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ from __future__ import annotations
 import argparse
 import datetime as _dt
 import shutil
+import sqlite3
 import sys
 from pathlib import Path
 from typing import Any
@@ -37,6 +40,10 @@ FAILING_RUN = 3  # this many failed measurements in a row (within 24 h) is "fail
 WARN_DISK_FREE_PCT = 10.0
 CRIT_DISK_FREE_PCT = 2.0
 CRIT_DISK_FREE_BYTES = 100 * 1024 * 1024
+# The next day is planned one second after the stored plan's last event (the replan
+# after local midnight); a plan item this recently past still counts as ahead, as the
+# job may wait for the single worker like the heartbeat does.
+PLAN_GRACE = _dt.timedelta(minutes=CRIT_HEARTBEAT_MIN)
 
 
 # --------------------------------------------------------------------------- time text
@@ -207,6 +214,9 @@ def station_status(db_path: str | Path, now: _dt.datetime,
         return _finish(out, problems)
     try:
         _collect(conn, now, out, problems, warn_heartbeat_min, crit_heartbeat_min)
+    except (sqlite3.Error, storeread.StoreError, ValueError) as exc:
+        # First among the critical ones: it is why the rest may be missing or wrong.
+        problems.insert(0, (CRITICAL, _read_failure(exc)))
     finally:
         conn.close()
     disk = out["disk"]
@@ -218,6 +228,44 @@ def station_status(db_path: str | Path, now: _dt.datetime,
         elif disk["free_pct"] < WARN_DISK_FREE_PCT:
             problems.append((WARNING, f"disk getting full: {disk['free_pct']:.1f} % free"))
     return _finish(out, problems)
+
+
+def _read_failure(exc: Exception) -> str:
+    """One line for a store that failed in the middle of the checks."""
+    from daemon.store import reader as storeread
+
+    if isinstance(exc, storeread.StoreError):
+        text = str(exc)
+    elif isinstance(exc, sqlite3.Error):
+        text = f"cannot read the store: {exc}"
+        if storeread.is_damage(exc):
+            text += f"; {storeread.DAMAGE_ADVICE}"
+    else:
+        text = f"cannot read the store: a stored value is damaged ({exc})"
+    return " ".join(text.split())
+
+
+def _anything_ahead(plans: list[dict], after: _dt.datetime) -> bool:
+    return any(parse_utc(item["time_utc"]) > after
+               for plan in plans for item in plan["targets"] + plan.get("events", []))
+
+
+def _plan_check(plans: list[dict], latest: dict | None, now: _dt.datetime,
+                out: dict, problems: list) -> None:
+    """Nothing ahead in the stored plans and no plan for today: acquisition has stopped
+    (a plan write failed, a job was lost), though the heartbeat may be fresh."""
+    today = now.astimezone(site_zone(out["timezone"])).date().isoformat()
+    newest = None if latest is None else str(latest["date"])
+    older = newest is None or newest < today
+    ahead = _anything_ahead(plans, now - PLAN_GRACE)
+    out["plan"] = {"newest_date": newest, "today": today, "older_than_today": older,
+                   "anything_ahead": ahead}
+    if older and not ahead:
+        which = "no plan is stored" if newest is None else \
+            f"the newest stored plan is for {newest}, older than today ({today})"
+        problems.append((CRITICAL, f"nothing planned ahead: {which}; the service will not "
+                                   "measure again until it plans a day: see `journalctl -u "
+                                   "heliotroped` and restart it"))
 
 
 def _collect(conn, now: _dt.datetime, out: dict, problems: list,
@@ -244,6 +292,7 @@ def _collect(conn, now: _dt.datetime, out: dict, problems: list,
     latest_plan = storeread.stored_plan(conn)
     out["timezone"] = (latest_plan or {}).get("timezone") or "UTC"
     out["site_name"] = (latest_plan or {}).get("site_name")
+    _plan_check(plans, latest_plan, now, out, problems)
 
     last = storeread.last_measurement(conn)
     out["last_measurement"] = last
@@ -278,7 +327,7 @@ def _finish(out: dict, problems: list[tuple[int, str]]) -> dict[str, Any]:
     problems.sort(key=lambda p: -p[0])
     code = problems[0][0] if problems else OK
     for key in ("service", "last_measurement", "next_target", "tracker", "housekeeping",
-                "faults_24h", "timezone", "site_name"):
+                "faults_24h", "timezone", "site_name", "plan"):
         out.setdefault(key, None)
     return {"state": STATE_NAMES[code], "exit_code": code,
             "problems": [p[1] for p in problems], **out}
@@ -315,6 +364,11 @@ def format_status(st: dict[str, Any], now: _dt.datetime) -> str:
                                     f"m={nxt['airmass']:.2f}"])
     elif svc is not None:
         rows.append(["next target", "none in the stored plans"])
+    plan = st.get("plan")
+    if plan is not None:
+        rows.append(["newest plan", (plan["newest_date"] or "none")
+                     + (f" (older than today, {plan['today']})" if plan["older_than_today"]
+                        else "")])
     tr = st.get("tracker")
     if tr is not None:
         text = tr["state"]

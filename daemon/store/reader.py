@@ -23,9 +23,11 @@ import json
 import math
 import re
 import sqlite3
+import sys
 from collections.abc import Iterator, Mapping
 from pathlib import Path
-from typing import Any
+from typing import Any, TextIO
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from daemon.science.points import FIT_POINT_ROLES, ChannelStats, SessionPoint  # noqa: F401
 from drivers.interfaces import Housekeeping
@@ -67,13 +69,55 @@ def check_plan_date(value: str | _dt.date) -> str:
     raise ValueError(f"expected a date as YYYY-MM-DD (for example 2025-03-21), got {value!r}")
 
 
-def open_readonly(path: str | Path) -> sqlite3.Connection:
+# Messages of the errors SQLite gives a reader that may read the store file but not
+# create or write its -shm (WAL index): a stopped service leaves no -shm behind, and a
+# reader in the store's group (directory 0750, file 0640) cannot create one.
+_NO_SHM_MESSAGES = ("attempt to write a readonly database", "unable to open database file",
+                    "readonly database")
+
+#: What to do with a damaged store; said whenever SQLite calls the file damaged.
+DAMAGE_ADVICE = ("the store looks damaged: stop heliotroped, copy the store file with its "
+                 "-wal and -shm files aside, never delete the -wal or -shm files, and "
+                 "salvage from the copy with `sqlite3 COPY.db .recover > recovered.sql`")
+
+
+class DamagedStoreError(StoreReadError):
+    """The store file, or a row in it, is damaged; the message gives the salvage route."""
+
+
+def _connect_and_check(uri: str) -> tuple[sqlite3.Connection, int]:
+    conn = sqlite3.connect(uri, uri=True, timeout=2.0)
+    try:
+        conn.execute("PRAGMA query_only = ON")
+        row = conn.execute("SELECT count(*) FROM sqlite_master "
+                           "WHERE type = 'table' AND name = 'session_results'").fetchone()
+    except BaseException:
+        conn.close()
+        raise
+    return conn, row[0]
+
+
+def is_damage(exc: sqlite3.Error) -> bool:
+    """Whether SQLite's error says the store file is damaged."""
+    text = str(exc).lower()
+    return isinstance(exc, sqlite3.DatabaseError) and (
+        "not a database" in text or "malformed" in text or "corrupt" in text)
+
+
+def open_readonly(path: str | Path, warn: TextIO | None = None) -> sqlite3.Connection:
     """Open the store read-only; raise :class:`StoreError` with a clear message.
+
+    When the store can be read but its ``-shm`` file cannot be created or written (the
+    service is stopped and the reader only has the group's read permission), the store
+    is opened in SQLite's immutable mode instead, and one line on ``warn`` says so:
+    such a read ignores the ``-wal`` file and is only safe while no writer runs.
 
     Parameters
     ----------
     path : str or Path
         The store file the service writes (``store.path`` in its configuration).
+    warn : text stream, optional
+        Where the immutable-mode notice goes; standard error when None.
 
     Returns
     -------
@@ -83,8 +127,10 @@ def open_readonly(path: str | Path) -> sqlite3.Connection:
 
     Raises
     ------
+    DamagedStoreError
+        SQLite says the file is not a database or is malformed.
     StoreReadError
-        The file is missing, is not an SQLite database, or has no heliotrope tables.
+        The file is missing, unreadable, or has no heliotrope tables.
     """
     p = Path(path).expanduser()
     if not p.exists():
@@ -92,21 +138,24 @@ def open_readonly(path: str | Path) -> sqlite3.Connection:
                              "(store.path in the service's configuration)")
     if p.is_dir():
         raise StoreReadError(f"{p}: is a directory; pass --db with the path of the store file")
-    uri = p.absolute().as_uri() + "?mode=ro"
+    base = p.absolute().as_uri()
     try:
-        conn = sqlite3.connect(uri, uri=True, timeout=2.0)
+        try:
+            conn, tables = _connect_and_check(base + "?mode=ro")
+        except sqlite3.OperationalError as exc:
+            if not any(m in str(exc).lower() for m in _NO_SHM_MESSAGES):
+                raise
+            conn, tables = _connect_and_check(base + "?mode=ro&immutable=1")
+            print(f"heliotrope: {p}: read in SQLite's immutable mode, since its -shm file "
+                  f"cannot be created or written ({exc}); commits still in the -wal file "
+                  "are not seen, and this read is safe only while heliotroped is stopped",
+                  file=warn if warn is not None else sys.stderr)
     except sqlite3.Error as exc:
+        if is_damage(exc):
+            raise DamagedStoreError(f"{p}: {exc}; {DAMAGE_ADVICE}") from None
         raise StoreReadError(f"{p}: cannot open the store read-only ({exc}); check that you may "
                              "read the file and its directory") from None
-    try:
-        conn.execute("PRAGMA query_only = ON")
-        row = conn.execute("SELECT count(*) FROM sqlite_master "
-                           "WHERE type = 'table' AND name = 'session_results'").fetchone()
-    except sqlite3.DatabaseError as exc:
-        conn.close()
-        raise StoreReadError(f"{p}: not a readable SQLite store ({exc}); pass --db with the path "
-                             "of the heliotrope store") from None
-    if row[0] == 0:
+    if tables == 0:
         conn.close()
         raise StoreReadError(f"{p}: an SQLite file without heliotrope tables; pass --db with the "
                              "path of the heliotrope store (the service creates its tables when "
@@ -178,17 +227,93 @@ def last_heartbeat(conn: sqlite3.Connection) -> _dt.datetime | None:
     return _dt.datetime.fromisoformat(row[0]) if row else None
 
 
+def _plan_item_error(item: Any, keys: tuple[str, ...], what: str) -> str | None:
+    if not isinstance(item, dict):
+        return f"{what} is not a JSON object"
+    missing = [k for k in keys if k not in item]
+    if missing:
+        return f"{what} lacks {', '.join(missing)}"
+    try:
+        _dt.datetime.fromisoformat(item["time_utc"])
+    except (TypeError, ValueError):
+        return f"{what} has time_utc {item['time_utc']!r}, not ISO 8601"
+    return None
+
+
+_TARGET_KEYS = ("time_utc", "session", "airmass", "apparent_zenith_deg", "azimuth_deg")
+
+
+def _plan_body_error(plan: dict[str, Any]) -> str | None:
+    zone = plan.get("timezone")
+    if zone is not None:
+        try:
+            ZoneInfo(zone)
+        except (TypeError, ValueError, ZoneInfoNotFoundError):
+            return f"has the unknown time zone {zone!r}"
+    for i, t in enumerate(plan["targets"]):
+        problem = _plan_item_error(t, _TARGET_KEYS, f"target {i + 1}")
+        if problem is None:
+            bad = [k for k in _TARGET_KEYS[2:] if isinstance(t[k], bool)
+                   or not isinstance(t[k], (int, float))]
+            problem = f"target {i + 1} has a non-numeric {bad[0]}" if bad else None
+        if problem:
+            return problem
+    for i, e in enumerate(plan.get("events", [])):
+        problem = _plan_item_error(e, ("time_utc", "kind"), f"event {i + 1}")
+        if problem:
+            return problem
+    skipped = plan.get("skipped", [])
+    if not isinstance(skipped, list) or not all(
+            isinstance(k, dict) and {"session", "airmass", "reason"} <= k.keys()
+            and isinstance(k["airmass"], (int, float)) for k in skipped):
+        return "has a list of skipped targets without session, airmass and reason"
+    return None
+
+
+def decode_plan(plan_json: Any, plan_date: str | None = None) -> dict[str, Any]:
+    """A stored plan's JSON text as a dict, checked for the keys the commands read.
+
+    Raises
+    ------
+    DamagedStoreError
+        The text is not JSON, or lacks the plan's ``date``, its ``targets`` (each with
+        time, session, air mass, zenith and azimuth) or a valid ``events`` list.
+    """
+    where = f"the stored plan for {plan_date}" if plan_date else "a stored plan"
+    try:
+        plan = json.loads(plan_json)
+    except (TypeError, ValueError) as exc:
+        problem = f"is not valid JSON ({exc})"
+    else:
+        problem = None
+        if not isinstance(plan, dict):
+            problem = "is not a JSON object"
+        elif "date" not in plan or not isinstance(plan.get("targets"), list):
+            problem = "lacks its date or its list of targets"
+        elif not isinstance(plan.get("events", []), list):
+            problem = "has events that are not a list"
+        else:
+            problem = _plan_body_error(plan)
+    if problem:
+        raise DamagedStoreError(
+            f"{where} is damaged: its plan_json {problem}; the service writes the plan "
+            "again when it next plans that day (restart heliotroped for today's), or "
+            "pass --config FILE to `heliotrope plan` to compute it") from None
+    return plan
+
+
 def stored_plan(conn: sqlite3.Connection,
                 plan_date: str | _dt.date | None = None) -> dict[str, Any] | None:
     """The stored plan of one local date, or the most recent plan when ``plan_date`` is
-    None; None when there is no such plan."""
+    None; None when there is no such plan. A damaged plan row raises
+    :class:`DamagedStoreError` (see :func:`decode_plan`)."""
     if plan_date is None:
-        row = conn.execute("SELECT plan_json FROM plans ORDER BY plan_date DESC "
+        row = conn.execute("SELECT plan_date, plan_json FROM plans ORDER BY plan_date DESC "
                            "LIMIT 1").fetchone()
     else:
-        row = conn.execute("SELECT plan_json FROM plans WHERE plan_date = ?",
+        row = conn.execute("SELECT plan_date, plan_json FROM plans WHERE plan_date = ?",
                            (check_plan_date(plan_date),)).fetchone()
-    return json.loads(row[0]) if row else None
+    return decode_plan(row[1], row[0]) if row else None
 
 
 def recent_events(conn: sqlite3.Connection, limit: int = 20) -> list[dict[str, Any]]:
@@ -297,10 +422,11 @@ def events_between(conn: sqlite3.Connection, start_utc: str, end_utc: str,
 
 
 def plans_from(conn: sqlite3.Connection, first_date: str | _dt.date) -> list[dict[str, Any]]:
-    """Every stored plan with ``plan_date >= first_date``, oldest first."""
-    cur = conn.execute("SELECT plan_json FROM plans WHERE plan_date >= ? ORDER BY plan_date",
-                       (check_plan_date(first_date),))
-    return [json.loads(r[0]) for r in cur.fetchall()]
+    """Every stored plan with ``plan_date >= first_date``, oldest first (a damaged one
+    raises :class:`DamagedStoreError`)."""
+    cur = conn.execute("SELECT plan_date, plan_json FROM plans WHERE plan_date >= ? "
+                       "ORDER BY plan_date", (check_plan_date(first_date),))
+    return [decode_plan(r[1], r[0]) for r in cur.fetchall()]
 
 
 def store_files_size(path: str | Path) -> int:
