@@ -155,6 +155,18 @@ def test_a_day_that_cannot_be_planned_is_planned_again_later(cfg, tmp_path, monk
     assert len(_events(svc, "plan")) == 1
 
 
+def test_a_tick_with_no_next_day_ahead_says_so(cfg, tmp_path, caplog):
+    svc = _service(cfg, tmp_path, datetime(2027, 2, 15, 6, tzinfo=UTC))
+    svc.schedule_day(DAY)
+    svc.tick()
+    assert "no job ahead" not in caplog.text
+    for job in svc.scheduler.get_jobs():
+        if job.id.startswith("plan-next"):
+            job.remove()  # as if the job that plans tomorrow were lost
+    svc.tick()
+    assert "no job ahead" in caplog.text
+
+
 # ------------------------------------------------------------------ the stop path
 
 def _dead_tracker(opens: list, sleeps: list) -> SerialTracker:

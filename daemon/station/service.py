@@ -20,9 +20,14 @@ import signal
 import socket
 import sys
 import threading
+from collections.abc import Callable
 from datetime import UTC, date, datetime, timedelta
+from typing import TYPE_CHECKING
 
 from daemon.config.settings import EX_CONFIG, Config, ConfigError, load_config
+
+if TYPE_CHECKING:
+    from drivers.interfaces import Radiometer, Tracker
 
 log = logging.getLogger("heliotroped")
 
@@ -99,11 +104,13 @@ class Service:
 
     def save_plan(self, day: date, plan_dict: dict) -> None:
         """Store the plan of ``day``; on a failing write, try again in RETRY_S."""
-        self.guarded(f"save-plan-{day}", f"plan for {day} not stored",
-                     self.station.store.save_plan, day.isoformat(), plan_dict,
-                     self.clock.now())
+        self.guarded(f"save-plan-{day}", f"plan for {day} not stored", self._store_plan,
+                     day, plan_dict)
 
-    def guarded(self, job_id: str, what: str, func, *args) -> bool:
+    def _store_plan(self, day: date, plan_dict: dict) -> None:
+        self.station.store.save_plan(day.isoformat(), plan_dict, self.clock.now())
+
+    def guarded(self, job_id: str, what: str, func: Callable[..., object], *args: object) -> bool:
         """Run ``func(*args)``; when the store refuses the write (a full disk, a
         read-only file system), log it, store an event if the store takes it, and run
         the same call again in RETRY_S as job ``retry-<job_id>``, until it succeeds.
@@ -287,7 +294,7 @@ class Service:
                 ident = devices[name].identify()
                 self.station.event("info", "device", f"{name}: {ident.model} serial "
                                    f"{ident.serial} firmware {ident.firmware}")
-            except Exception as exc:  # noqa: BLE001 - a device must not stop the service
+            except Exception as exc:  # a device must never stop the service
                 log.debug("%s identify failed", name, exc_info=True)
                 silent.append(name)
                 self.station.event("error", "device_fault",
@@ -390,13 +397,13 @@ def main(argv: list[str] | None = None) -> int:
     return 0
 
 
-def release_devices(radiometer, tracker) -> None:
+def release_devices(radiometer: Radiometer, tracker: Tracker) -> None:
     """Shut both links within SHUTDOWN_S each, ending any exchange still in progress
     in the worker (so the interpreter's exit does not wait for its retries)."""
     for device in (radiometer, tracker):
         try:
             device.shutdown(timeout_s=SHUTDOWN_S)
-        except Exception as exc:  # noqa: BLE001 - the other link and the store still close
+        except Exception as exc:  # the other link and the store must still close
             log.error("closing %s: %s", type(device).__name__, exc)
 
 
