@@ -233,6 +233,10 @@ def explain(device: str, port: Port, command: str, exc: BaseException,
             f"{device}: no answer to {command} on {url} ({tries} tries of {port.timeout_s:g} "
             f"s): is the {device} powered and its cable on this port? Try it by hand: "
             f"{_by_hand(port)}")
+    if isinstance(exc, ValueError | ArithmeticError):
+        return BAD_REPLY, (f"{device}: the reply to {command} makes no sense "
+                           f"({type(exc).__name__}: {str(exc)[:120]}): is the firmware for "
+                           "this protocol (drivers/PROTOCOL.md)?")
     return BAD_REPLY, f"{device}: {command} failed: {exc}"
 
 
@@ -257,15 +261,17 @@ def _call(device: str, port: Port, transport: Transport, command: str,
             transport.open()
             t0 = time.monotonic()
         result = call()
-    except (LinkError, DeviceError) as exc:
+        rtt = time.monotonic() - t0
+        summary, reading = describe(result)
+    except (LinkError, DeviceError, ValueError, ArithmeticError) as exc:
+        # ValueError and OverflowError: a reply with a valid checksum and a hostile
+        # field that the codec let through; still a device that did not answer sanely.
         rtt = time.monotonic() - t0
         kind, message = explain(device, port, command, exc, transport.counters)
         tried = not isinstance(exc, PortUnavailable)
         checks.append(Check(device, command, False, rtt if tried else None, _SHORT[kind],
                             problem=kind, message=message))
         return None
-    rtt = time.monotonic() - t0
-    summary, reading = describe(result)
     checks.append(Check(device, command, True, rtt, summary, reading))
     return result
 

@@ -23,6 +23,7 @@ from daemon.science import solar
 from daemon.station.clock import Clock
 from daemon.station.fitting import fit_stored_session
 from daemon.station.planner import Plan, PlanEvent, PlannedTarget, plan_day
+from daemon.store.reader import StoreError
 from daemon.store.writer import MeasurementRecord, Store
 from drivers.interfaces import (
     Burst,
@@ -46,6 +47,9 @@ PLAUSIBLE_HOUSEKEEPING = {
     "ambient_temp_c": (-60.0, 60.0), "supply_v": (0.0, 60.0), "humidity_pct": (0.0, 100.0),
     "pressure_hpa": (300.0, 1100.0),
 }
+#: What a store write raises when it cannot be done (a full disk, a read-only file
+#: system, a store in use): survived, and the write tried again later.
+STORE_ERRORS = (sqlite3.Error, StoreError)
 POLL_S = 1.0  # tracker state polling interval while waiting for a lock
 SLEW_TIMEOUT_S = 180.0  # a full-circle slew of a slow tracker, with margin
 
@@ -88,7 +92,7 @@ class Station:
         getattr(log, level if level in ("info", "warning", "error") else "info")(message)
         try:
             self.store.record_event(self.clock.now(), level, kind, message, detail)
-        except sqlite3.Error as exc:
+        except STORE_ERRORS as exc:
             log.error("could not store event %r: %s", kind, exc)
 
     def record_link_faults(self) -> None:
@@ -176,7 +180,7 @@ class Station:
             self.record_link_faults()
         try:
             mid = self.store.record_measurement(rec)
-        except sqlite3.Error as exc:
+        except STORE_ERRORS as exc:
             log.error("%s: measurement not stored: %s", what, exc)
             self.event("error", "store_error", f"{what}: measurement not stored: {exc}")
             return TargetOutcome(target, None, False, f"not stored: {exc}")
@@ -264,12 +268,17 @@ class Station:
 
     # ------------------------------------------------------------------ sessions
 
-    def fit_session(self, plan_date: date, session: str) -> list[dict]:
-        """Fit a finished session from the store and store the result."""
+    def fit_session(self, plan_date: date, session: str, strict: bool = False) -> list[dict]:
+        """Fit a finished session from the store and store the result.
+
+        A store that refuses the write is logged; with ``strict`` the error is raised
+        as well, for a caller that tries again later (the service)."""
         try:
             rows = fit_stored_session(self.store, self.config, plan_date.isoformat(), session,
                                       self.clock.now())
-        except sqlite3.Error as exc:
+        except STORE_ERRORS as exc:
+            if strict:
+                raise
             self.event("error", "store_error", f"{plan_date} {session}: fit not stored: {exc}")
             return []
         accepted = sum(1 for r in rows if r["accepted"])
@@ -285,13 +294,24 @@ class Station:
         except (LinkError, DeviceError) as exc:
             self.event("warning", "device_fault", f"parking failed: {exc}")
 
+    def park_once(self, timeout_s: float = 2.0) -> None:
+        """The stop path's park: one PARK within about ``timeout_s`` [s], no retry and
+        no back-off, so a dead link cannot hold up the exit."""
+        try:
+            self.tracker.park_once(timeout_s=timeout_s)
+        except (LinkError, DeviceError) as exc:
+            self.event("warning", "device_fault", f"parking at stop failed: {exc}; "
+                       "the tracker was left where it is")
+
 
 def perform(station: Station, item: PlannedTarget | PlanEvent, day: date,
-            fits: dict[str, list[dict]], grace: timedelta = timedelta(minutes=2)) -> object:
+            fits: dict[str, list[dict]], grace: timedelta = timedelta(minutes=2),
+            strict: bool = False) -> object:
     """Carry out one timeline item that is due now: measure, fit or park.
 
     A target more than ``grace`` late (a restart in mid-session, a stepped clock) is
-    recorded as missed instead of measured at the wrong air mass.
+    recorded as missed instead of measured at the wrong air mass. With ``strict`` a fit
+    the store refuses raises (one of :data:`STORE_ERRORS`) for the caller to retry.
     """
     late = station.clock.now() - item.time_utc
     if isinstance(item, PlannedTarget):
@@ -303,7 +323,7 @@ def perform(station: Station, item: PlannedTarget | PlanEvent, day: date,
         return station.measure(item, day)
     if item.kind in ("fit_am", "fit_pm"):
         session = item.kind[-2:]
-        fits[session] = station.fit_session(day, session)
+        fits[session] = station.fit_session(day, session, strict=strict)
         return fits[session]
     if item.kind == "park":
         station.park()

@@ -20,9 +20,14 @@ import signal
 import socket
 import sys
 import threading
+from collections.abc import Callable
 from datetime import UTC, date, datetime, timedelta
+from typing import TYPE_CHECKING
 
 from daemon.config.settings import EX_CONFIG, Config, ConfigError, load_config
+
+if TYPE_CHECKING:
+    from drivers.interfaces import Radiometer, Tracker
 
 log = logging.getLogger("heliotroped")
 
@@ -30,7 +35,12 @@ EX_IOERR = 74
 MISFIRE_GRACE_S = 120  # a target more than 2 min late is a different air mass: skip it
 TICK_S = 60
 CLOCK_STEP_S = 60  # a wall-clock step larger than this re-plans the day
-STOP_WAIT_S = 3.0  # how long shutdown waits for the job in progress
+# The stop budget, under 5 s whatever the links do: the job in progress gets
+# STOP_WAIT_S, then one PARK gets PARK_ONCE_S, then each link SHUTDOWN_S.
+STOP_WAIT_S = 2.0  # how long shutdown waits for the job in progress [s]
+PARK_ONCE_S = 2.0  # one PARK without retry or back-off [s]
+SHUTDOWN_S = 1.0  # per device, to end an exchange another thread is stuck in [s]
+RETRY_S = 300  # a job whose store write failed (full disk, read-only) runs again [s]
 
 
 def sd_notify(message: str) -> None:
@@ -87,8 +97,39 @@ class Service:
         from daemon.station.planner import plan_day
 
         plan = plan_day(self.station.config, day)
-        self.station.store.save_plan(day.isoformat(), plan.to_dict())
+        # The targets do not need the stored plan: schedule them even when it cannot be
+        # written, and keep trying to store it, so a full disk costs no day.
         self.schedule_plan(plan, day)
+        self.save_plan(day, plan.to_dict())
+
+    def save_plan(self, day: date, plan_dict: dict) -> None:
+        """Store the plan of ``day``; on a failing write, try again in RETRY_S."""
+        self.guarded(f"save-plan-{day}", f"plan for {day} not stored", self._store_plan,
+                     day, plan_dict)
+
+    def _store_plan(self, day: date, plan_dict: dict) -> None:
+        self.station.store.save_plan(day.isoformat(), plan_dict, self.clock.now())
+
+    def guarded(self, job_id: str, what: str, func: Callable[..., object], *args: object) -> bool:
+        """Run ``func(*args)``; when the store refuses the write (a full disk, a
+        read-only file system), log it, store an event if the store takes it, and run
+        the same call again in RETRY_S as job ``retry-<job_id>``, until it succeeds.
+
+        Returns True when ``func`` succeeded."""
+        from daemon.station.acquisition import STORE_ERRORS
+
+        try:
+            func(*args)
+        except STORE_ERRORS as exc:
+            when = self.clock.now() + timedelta(seconds=RETRY_S)
+            self.station.event("error", "store_error",
+                               f"{what}: {exc}; trying again at {when:%H:%M:%S} UTC",
+                               {"job": job_id})
+            self.scheduler.add_job(self.guarded, "date", run_date=when,
+                                   args=[job_id, what, func, *args], id=f"retry-{job_id}",
+                                   replace_existing=True, misfire_grace_time=None)
+            return False
+        return True
 
     def schedule_plan(self, plan, day: date) -> None:
         """Jobs for the items of ``plan`` that are still ahead. Items already past (a
@@ -124,7 +165,7 @@ class Service:
         ends = [e.time_utc for e in plan.events if e.kind in ("park", "replan")]
         next_plan = max(ends) if ends else datetime(
             day.year, day.month, day.day, tzinfo=self.station.config.tz) + timedelta(days=1)
-        self.scheduler.add_job(self.schedule_day, "date",
+        self.scheduler.add_job(self.plan_next, "date",
                                run_date=max(next_plan, now) + timedelta(seconds=1),
                                args=[day + timedelta(days=1)], id=f"plan-next-{day}",
                                misfire_grace_time=None)
@@ -134,11 +175,26 @@ class Service:
                            f"{missed} missed", {"date": day.isoformat()})
         self._status()
 
+    def plan_next(self, day: date) -> None:
+        """The job that plans the next day. Planning itself never stops the service:
+        whatever goes wrong, the job comes back in RETRY_S, so a day always lies ahead."""
+        try:
+            self.schedule_day(day)
+        except Exception as exc:  # without this job no day would ever be planned again
+            log.exception("planning %s failed", day)
+            when = self.clock.now() + timedelta(seconds=RETRY_S)
+            self.station.event("error", "job_error",
+                               f"planning {day} failed: {exc!r}; no target is scheduled; "
+                               f"trying again at {when:%H:%M:%S} UTC")
+            self.scheduler.add_job(self.plan_next, "date", run_date=when, args=[day],
+                                   id=f"plan-next-retry-{day}", replace_existing=True,
+                                   misfire_grace_time=None)
+
     # ------------------------------------------------------------------ jobs
 
     def run_item(self, item, day: date) -> None:
         """One plan item on the worker thread; nothing it raises stops the service."""
-        from daemon.station.acquisition import perform
+        from daemon.station.acquisition import STORE_ERRORS, perform
 
         key = (day, item)
         if key in self.done or self.station.stopping.is_set():
@@ -146,7 +202,19 @@ class Service:
         self.done.add(key)
         self._idle.clear()
         try:
-            result = perform(self.station, item, day, self.fits)
+            result = perform(self.station, item, day, self.fits, strict=True)
+        except STORE_ERRORS as exc:
+            # A fit whose results could not be written: the same item again later
+            # (a target never gets here: its air mass would be gone by then).
+            self.done.discard(key)
+            when = self.clock.now() + timedelta(seconds=RETRY_S)
+            self.station.event("error", "store_error",
+                               f"{_describe(item)} not stored: {exc}; trying again at "
+                               f"{when:%H:%M:%S} UTC")
+            self.scheduler.add_job(self.run_item, "date", run_date=when, args=[item, day],
+                                   id=f"retry-{day}-{item.kind}", replace_existing=True,
+                                   misfire_grace_time=None)
+            return
         except Exception as exc:  # the service must outlive any one item
             log.exception("plan item failed")
             self.station.event("error", "job_error", f"{_describe(item)} failed: {exc!r}")
@@ -169,13 +237,20 @@ class Service:
             self.station.event("warning", "clock_step",
                                f"wall clock stepped {step:+.0f} s; re-planning",
                                {"step_s": step})
-            self.schedule_day(self.local_today())
+            self.plan_next(self.local_today())
+        if not self._jobs_ahead():
+            log.error("no job ahead: nothing is scheduled to plan another day; "
+                      "restart the service (systemctl restart heliotroped)")
+
+    def _jobs_ahead(self) -> bool:
+        return any(j.id.startswith("plan-next") for j in self.scheduler.get_jobs())
 
     def _heartbeat(self) -> None:
-        import sqlite3
+        from daemon.station.acquisition import STORE_ERRORS
+
         try:
             self.station.store.heartbeat(self.clock.now())
-        except sqlite3.Error as exc:
+        except STORE_ERRORS as exc:
             log.error("heartbeat not stored: %s", exc)
 
     def _status(self) -> None:
@@ -207,24 +282,35 @@ class Service:
         if self.scheduler.running:
             self.scheduler.shutdown(wait=False)
 
-    def identify_devices(self) -> None:
-        from drivers.interfaces import DeviceError, LinkError
-
-        for name, device in (("radiometer", self.station.radiometer),
-                             ("tracker", self.station.tracker)):
+    def identify_devices(self, names: tuple[str, ...] = ("radiometer", "tracker")) -> None:
+        """Ask each device who it is. Any driver error (no answer, a garbled or hostile
+        reply, a ValueError from a field no codec should have let through) counts as a
+        device that did not answer: logged, and asked again in RETRY_S, so a hostile
+        device never drives the service into a restart loop."""
+        devices = {"radiometer": self.station.radiometer, "tracker": self.station.tracker}
+        silent = []
+        for name in names:
             try:
-                ident = device.identify()
+                ident = devices[name].identify()
                 self.station.event("info", "device", f"{name}: {ident.model} serial "
                                    f"{ident.serial} firmware {ident.firmware}")
-            except (LinkError, DeviceError) as exc:
+            except Exception as exc:  # a device must never stop the service
+                log.debug("%s identify failed", name, exc_info=True)
+                silent.append(name)
                 self.station.event("error", "device_fault",
-                                   f"{name} does not answer at start-up: {exc}; "
-                                   "acquisition will retry at every target")
+                                   f"{name} does not answer: {type(exc).__name__}: {exc}; "
+                                   f"asking again in {RETRY_S} s, acquisition retries at "
+                                   "every target")
+        if silent and not self.station.stopping.is_set():
+            self.scheduler.add_job(self.identify_devices, "date",
+                                   run_date=self.clock.now() + timedelta(seconds=RETRY_S),
+                                   args=[tuple(silent)], id="identify",
+                                   replace_existing=True, misfire_grace_time=None)
 
     def run(self) -> None:
         self.station.event("info", "start", "service started")
         self.identify_devices()
-        self.schedule_day(self.local_today())
+        self.plan_next(self.local_today())
         self.scheduler.add_job(self.tick, "interval", seconds=TICK_S, id="tick",
                                next_run_time=self.clock.now(), misfire_grace_time=None,
                                coalesce=True)
@@ -232,8 +318,12 @@ class Service:
         if not self.station.stopping.is_set():
             self.scheduler.start()  # blocks until stop()
         sd_notify("STOPPING=1")
+        self.finish()
+
+    def finish(self) -> None:
+        """The stop path: bounded whatever the links do (see STOP_WAIT_S)."""
         if self._drain():
-            self.station.park()
+            self.station.park_once(PARK_ONCE_S)
         else:  # two threads on one serial line would garble both: leave the tracker
             self.station.event("warning", "not_parked", "tracker not parked: a "
                                f"measurement was still running after {STOP_WAIT_S:g} s")
@@ -302,10 +392,19 @@ def main(argv: list[str] | None = None) -> int:
         service.run()
     finally:
         finished.set()
-        radiometer.close()
-        tracker.close()
+        release_devices(radiometer, tracker)
         store.close()
     return 0
+
+
+def release_devices(radiometer: Radiometer, tracker: Tracker) -> None:
+    """Shut both links within SHUTDOWN_S each, ending any exchange still in progress
+    in the worker (so the interpreter's exit does not wait for its retries)."""
+    for device in (radiometer, tracker):
+        try:
+            device.shutdown(timeout_s=SHUTDOWN_S)
+        except Exception as exc:  # the other link and the store must still close
+            log.error("closing %s: %s", type(device).__name__, exc)
 
 
 if __name__ == "__main__":
