@@ -114,18 +114,6 @@ def build_store(path: Path, n_days: int) -> dict[str, int]:
     return counts
 
 
-def _median_ms(cmd: list[str], runs: int, env: dict) -> float:
-    times = []
-    for _ in range(runs):
-        t0 = time.perf_counter()
-        r = subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env,
-                           cwd=ROOT)
-        times.append((time.perf_counter() - t0) * 1000)
-        if r.returncode not in (0, 1):
-            raise SystemExit(f"{' '.join(cmd)} failed ({r.returncode}): {r.stderr.decode()}")
-    return statistics.median(times)
-
-
 def _export_figures(db: Path, first: str, last: str) -> tuple[float, int, float]:
     """Time to the first samples-export row [ms], rows, and rows per second."""
     from daemon.commands.export import export_rows
@@ -157,6 +145,7 @@ def _shell_rows_per_s(db: Path, first: str, last: str) -> float | None:
 
 
 def bench(n_days: int, runs: int) -> None:
+    from benchmarks.bench_read_commands import _median_ms
     from daemon.store.reader import open_readonly, session_points
     from tests.synthetic_store import CONFIG_PATH, DAY
 
