@@ -98,12 +98,18 @@ LEFT JOIN housekeeping h ON h.measurement_id = m.id
 ORDER BY m.time_utc, m.id, mc.channel_index
 """
 
+# In the order of the indexes: measurements by (plan_date, time_utc), which is time order
+# since a plan date is the local date of its measurements, then each one's samples by
+# the samples primary key (kind, channel, sample_index). No sort of the range, so the
+# first row comes at once and SQLite writes no temporary files; sample_rows() puts one
+# measurement's samples (a few hundred) in the exported order.
 _SAMPLES_SQL = """
-SELECT m.id, m.time_utc, m.plan_date, m.session, s.channel, s.kind, s.sample_index, s.value_v
-FROM measurements m JOIN samples s ON s.measurement_id = m.id
+SELECT m.id, m.time_utc, m.plan_date, m.session, s.channel, s.kind, s.sample_index, s.value_v,
+       mc.channel_index
+FROM measurements m CROSS JOIN samples s ON s.measurement_id = m.id
 LEFT JOIN measurement_channels mc ON mc.measurement_id = m.id AND mc.channel = s.channel
-WHERE m.plan_date BETWEEN ? AND ?
-ORDER BY m.time_utc, m.id, s.kind DESC, mc.channel_index, s.sample_index
+WHERE m.plan_date BETWEEN ?1 AND ?2
+ORDER BY m.plan_date, m.time_utc, m.id, s.kind, s.channel, s.sample_index
 """
 
 _RESULTS_SQL = """
@@ -138,8 +144,24 @@ def measurement_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterato
 def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
     """Every raw sample [V], sun before dark, in time and channel order."""
     names = [c for c, _ in SAMPLE_COLUMNS]
-    for r in conn.execute(_SAMPLES_SQL, (first, last)):
-        yield dict(zip(names, tuple(r), strict=True))
+    cur = conn.execute(_SAMPLES_SQL, (first, last))
+    group: list[tuple] = []
+    while batch := cur.fetchmany(1000):
+        for r in batch:
+            r = tuple(r)
+            if group and r[0] != group[0][0]:
+                yield from _measurement_samples(group, names)
+                group = []
+            group.append(r)
+    yield from _measurement_samples(group, names)
+
+
+def _measurement_samples(group: list[tuple], names: list[str]) -> Iterator[dict]:
+    # The cursor gives kind, channel name, index; the export wants sun first, then the
+    # instrument's channel order. The sort is stable, so sample_index order stays.
+    group.sort(key=lambda r: (r[5] != "sun", r[8] is not None, r[8] or 0))
+    for r in group:
+        yield dict(zip(names, r[:8], strict=True))
 
 
 def result_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:

@@ -445,21 +445,26 @@ def store_files_size(path: str | Path) -> int:
 
 def sample_stats_cte(selection: str) -> str:
     """The WITH clause that aggregates raw samples of the measurements ``selection``
-    picks (a SELECT of ids named ``id``): ``mean`` per measurement, channel and kind
+    picks (a SELECT of ids named ``id``): ``mean`` per measurement, kind and channel
     (AVG, COUNT) and ``spread``, the sum of squared deviations of the sun samples from
-    their mean. Two passes, so a 5 V signal keeps its 1e-7 V noise."""
+    their mean. Two passes, so a 5 V signal keeps its 1e-7 V noise.
+
+    The selected ids drive both passes (``CROSS JOIN`` fixes SQLite's join order) and
+    each reaches its samples by a search of the samples primary key, which leads with
+    ``measurement_id``; grouped in that key's order (measurement, kind, channel), the
+    work is the selected rows, not the store's age (``tests/test_query_plans.py``)."""
     return f"""
 WITH sel AS ({selection}), mean AS (
-    SELECT s.measurement_id, s.channel, s.kind, AVG(s.value_v) AS mean_v,
+    SELECT s.measurement_id, s.kind, s.channel, AVG(s.value_v) AS mean_v,
            COUNT(s.value_v) AS n
-    FROM samples s JOIN sel ON sel.id = s.measurement_id
-    GROUP BY s.measurement_id, s.channel, s.kind
+    FROM sel CROSS JOIN samples s ON s.measurement_id = sel.id
+    GROUP BY s.measurement_id, s.kind, s.channel
 ), spread AS (
     SELECT s.measurement_id, s.channel,
            SUM((s.value_v - mean.mean_v) * (s.value_v - mean.mean_v)) AS ss
-    FROM samples s JOIN mean ON mean.measurement_id = s.measurement_id
-         AND mean.channel = s.channel AND mean.kind = s.kind
-    WHERE s.kind = 'sun'
+    FROM mean CROSS JOIN samples s ON s.measurement_id = mean.measurement_id
+         AND s.kind = mean.kind AND s.channel = mean.channel
+    WHERE mean.kind = 'sun'
     GROUP BY s.measurement_id, s.channel
 )"""
 
@@ -471,7 +476,7 @@ SESSION_STATS_SQL = sample_stats_cte(
 ) + """
 SELECT mc.measurement_id, mc.channel, mc.saturated, sun.mean_v, sun.n, spread.ss,
        dark.mean_v, dark.n
-FROM measurement_channels mc JOIN sel ON sel.id = mc.measurement_id
+FROM sel CROSS JOIN measurement_channels mc ON mc.measurement_id = sel.id
 LEFT JOIN mean sun ON sun.measurement_id = mc.measurement_id AND sun.channel = mc.channel
      AND sun.kind = 'sun'
 LEFT JOIN mean dark ON dark.measurement_id = mc.measurement_id AND dark.channel = mc.channel
@@ -586,10 +591,10 @@ SELECT m.time_utc, m.plan_date, m.session, a.measurement_id, a.channel, a.wavele
        a.aod, a.aod_unc, a.tau_total, a.tau_rayleigh, a.tau_ozone, a.airmass,
        a.ozone_airmass, a.pressure_hpa, a.flag, a.calibration_id, g.angstrom_alpha,
        g.channel_short, g.channel_long
-FROM aod a JOIN measurements m ON m.id = a.measurement_id
+FROM measurements m CROSS JOIN aod a ON a.measurement_id = m.id
 LEFT JOIN aod_angstrom g ON g.measurement_id = a.measurement_id
 WHERE m.plan_date BETWEEN ? AND ?
-ORDER BY m.time_utc, a.measurement_id, a.wavelength_nm, a.channel
+ORDER BY m.plan_date, m.time_utc, m.id, a.wavelength_nm, a.channel
 """
 
 

@@ -152,6 +152,24 @@ def m003_fit_points(db: Database) -> None:
         foreign_keys=[("measurement_id", "measurements", "id")])
 
 
+@migrations()
+def m004_indexes_by_date(db: Database) -> None:
+    # Per-session reads pick the 'ok' measurements of one date and session; with the
+    # status in the index they never touch another session's rows. It replaces the
+    # (plan_date, session) index, its prefix.
+    db["measurements"].create_index(["plan_date", "session", "status"], if_not_exists=True)
+    db.execute("DROP INDEX IF EXISTS idx_measurements_plan_date_session")
+    # Date-range reads (exports, AOD, a day's lines) walk measurements in
+    # (plan_date, time_utc) order, which is time order because a plan date is the local
+    # date of its measurements: rows stream in index order, with no sort of the range.
+    db["measurements"].create_index(["plan_date", "time_utc"], if_not_exists=True)
+    # Nothing to add for the other big tables: the primary keys already lead with the
+    # column the per-session queries search on. samples (measurement_id, kind, channel,
+    # sample_index), fit_points (plan_date, session, channel, measurement_id), aod
+    # (measurement_id, channel) and measurement_channels (measurement_id, channel); a
+    # second index on samples would nearly double the store's largest table.
+
+
 # Every migration is pending on an empty database: that lists the names this version knows.
 KNOWN_MIGRATIONS = frozenset(m.name for m in migrations.pending(
     Database(memory=True, execute_plugins=False)))

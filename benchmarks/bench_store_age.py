@@ -1,0 +1,204 @@
+"""Cost of the read paths against the store's age: 1 day, 1 year (and 10 years with --ten).
+
+The newest day is the synthetic clear day of ``tests/synthetic_store.py``, written
+through the service's writer and fitted by the service's own session fit. The earlier
+days are copies of it at the real cadence (its measurements with 10 sun and 5 dark
+samples per channel, housekeeping, channel rows, session results, fit points and
+plan), shifted back one local date each, bulk-inserted with ``executemany`` in one
+transaction into a schema made by the writer's own migrations. Oldest days get the
+lowest ids, as in a store that grew day by day.
+
+Printed per store: the median wall time of fresh ``heliotrope today --json``,
+``status --json``, ``results --from D`` and ``plot`` processes beside ``python3 -c
+pass``; the median time of one session's points read (``reader.session_points``,
+in-process); and the samples export of the newest day and of the whole store: time to
+the first row and rows per second, beside the ``sqlite3`` shell on the same query
+when it is installed.
+
+    .venv/bin/python benchmarks/bench_store_age.py [--runs N] [--ten]
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import os
+import re
+import shutil
+import sqlite3
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+_DATE = re.compile(r"\d{4}-\d{2}-\d{2}")
+# Tables copied per day, with the columns that hold a measurement id.
+_PER_MEASUREMENT = ("measurement_channels", "samples", "housekeeping", "fit_points")
+
+
+def _shift(value: object, days: int) -> object:
+    """Move every ISO date inside a text ``days`` back; the time of day stays."""
+    if not isinstance(value, str):
+        return value
+    return _DATE.sub(lambda m: (dt.date.fromisoformat(m.group(0))
+                                - dt.timedelta(days=days)).isoformat(), value)
+
+
+def build_store(path: Path, n_days: int) -> dict[str, int]:
+    """Write a store of ``n_days`` days ending on the synthetic day; return row counts."""
+    from sqlite_utils import Database
+
+    from daemon.store.writer import migrations
+    from tests.synthetic_store import build_day
+
+    template = path.with_name("template.db")
+    build_day(template, heartbeat=dt.datetime.now(dt.UTC))
+    src = sqlite3.connect(template)
+    conn = sqlite3.connect(path)
+    migrations.apply(Database(conn, execute_plugins=False))
+    conn.execute("PRAGMA journal_mode = WAL")
+
+    def rows(table: str) -> tuple[list[str], list[tuple]]:
+        cur = src.execute(f"SELECT * FROM {table}")
+        return [d[0] for d in cur.description], cur.fetchall()
+
+    meas_cols, meas = rows("measurements")
+    id_col = meas_cols.index("id")
+    first_id = min(r[id_col] for r in meas)
+    per_day = max(r[id_col] for r in meas) - first_id + 1
+    dependents = {t: rows(t) for t in _PER_MEASUREMENT}
+    copied = {t: rows(t) for t in ("session_results", "plans", "events", "meta")}
+
+    def insert(table: str, cols: list[str], data: list[tuple]) -> None:
+        conn.executemany(f"INSERT INTO {table} ({', '.join(cols)}) VALUES "
+                         f"({', '.join('?' * len(cols))})", data)
+
+    with conn:
+        for k in range(n_days - 1, -1, -1):  # oldest first
+            base = (n_days - 1 - k) * per_day - first_id + 1
+
+            def day(data: list[tuple], cols: list[str], k: int = k,
+                    base: int = base) -> list[tuple]:
+                mid = cols.index("measurement_id") if "measurement_id" in cols else None
+                ident = cols.index("id") if "id" in cols else None
+                out = []
+                for r in data:
+                    r = [_shift(v, k) for v in r]
+                    if mid is not None:
+                        r[mid] += base
+                    if ident is not None:
+                        r[ident] += base
+                    out.append(tuple(r))
+                return out
+
+            insert("measurements", meas_cols, day(meas, meas_cols))
+            for table, (cols, data) in dependents.items():
+                insert(table, cols, day(data, cols))
+            for table in ("session_results", "plans"):
+                cols, data = copied[table]
+                insert(table, cols, [tuple(_shift(v, k) for v in r) for r in data])
+        for table in ("events", "meta"):
+            cols, data = copied[table]
+            insert(table, [c for c in cols if c != "id"],
+                   [tuple(v for c, v in zip(cols, r, strict=True) if c != "id") for r in data])
+    counts = {t: conn.execute(f"SELECT count(*) FROM {t}").fetchone()[0]
+              for t in ("measurements", "samples")}
+    conn.close()
+    src.close()
+    template.unlink()
+    return counts
+
+
+def _export_figures(db: Path, first: str, last: str) -> tuple[float, int, float]:
+    """Time to the first samples-export row [ms], rows, and rows per second."""
+    from daemon.commands.export import export_rows
+    from daemon.store.reader import open_readonly
+
+    conn = open_readonly(db)
+    t0 = time.perf_counter()
+    rows = export_rows(conn, "samples", first, last)
+    next(rows)
+    t_first = (time.perf_counter() - t0) * 1000
+    n = 1 + sum(1 for _ in rows)
+    total = time.perf_counter() - t0
+    conn.close()
+    return t_first, n, n / total
+
+
+def _shell_rows_per_s(db: Path, first: str, last: str) -> float | None:
+    """The ``sqlite3`` shell on the export's own query, CSV to /dev/null [rows/s]."""
+    from daemon.commands.export import _SAMPLES_SQL
+
+    shell = shutil.which("sqlite3")
+    if shell is None:
+        return None
+    sql = _SAMPLES_SQL.replace("?1", f"'{first}'").replace("?2", f"'{last}'")
+    t0 = time.perf_counter()
+    out = subprocess.run([shell, "-readonly", "-csv", str(db), sql], capture_output=True,
+                         check=True).stdout
+    return out.count(b"\n") / (time.perf_counter() - t0)
+
+
+def bench(n_days: int, runs: int) -> None:
+    from benchmarks.bench_read_commands import _median_ms
+    from daemon.store.reader import open_readonly, session_points
+    from tests.synthetic_store import CONFIG_PATH, DAY
+
+    script = Path(sys.executable).with_name("heliotrope")
+    base = [str(script)] if script.exists() else [sys.executable, "-m", "daemon.commands.cli"]
+    d = DAY.isoformat()
+    first = (DAY - dt.timedelta(days=n_days - 1)).isoformat()
+    with tempfile.TemporaryDirectory() as tmp:
+        db = Path(tmp) / "heliotrope.db"
+        t0 = time.perf_counter()
+        counts = build_store(db, n_days)
+        size = db.stat().st_size / 2**20
+        print(f"\n{n_days} days: {counts['measurements']:,} measurements, "
+              f"{counts['samples']:,} samples, {size:.0f} MiB, built in "
+              f"{time.perf_counter() - t0:.1f} s")
+        env = {**os.environ, "HELIOTROPE_DB": str(db), "HELIOTROPE_CONFIG": str(CONFIG_PATH)}
+        cases = [
+            ("python3 -c pass", [sys.executable, "-c", "pass"]),
+            ("today --json", base + ["today", "--json"]),
+            ("status --json", base + ["status", "--json"]),
+            ("results --from D", base + ["results", "--from", d]),
+            ("plot --session am", base + ["plot", "--date", d, "--channel", "500",
+                                          "--session", "am"]),
+        ]
+        for name, cmd in cases:
+            print(f"  {name:<32} {_median_ms(cmd, runs, env):>9.1f} ms")
+        conn = open_readonly(db)
+        times = []
+        for _ in range(max(runs, 5)):
+            t1 = time.perf_counter()
+            session_points(conn, d, "am")
+            times.append((time.perf_counter() - t1) * 1000)
+        conn.close()
+        print(f"  {'session_points (one session)':<32} {statistics.median(times):>9.2f} ms")
+        for label, a in (("newest day", d), ("whole store", first)):
+            t_first, n, rate = _export_figures(db, a, d)
+            shell = _shell_rows_per_s(db, a, d)
+            beside = "" if shell is None else f", sqlite3 shell {shell:,.0f} rows/s"
+            print(f"  samples export, {label}: first row {t_first:.1f} ms, {n:,} rows, "
+                  f"{rate:,.0f} rows/s{beside}")
+
+
+def main() -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--runs", type=int, default=11, help="runs per median (default 11)")
+    p.add_argument("--ten", action="store_true", help="also build and time a 10-year store")
+    args = p.parse_args()
+    print(f"{os.cpu_count()} CPUs, Python {sys.version.split()[0]}, "
+          f"SQLite {sqlite3.sqlite_version}")
+    for n_days in (1, 365) + ((3652,) if args.ten else ()):
+        bench(n_days, args.runs)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
