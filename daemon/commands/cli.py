@@ -211,17 +211,22 @@ def _store_dates(conn) -> list[dict]:
     return [days[d] for d in sorted(days)]
 
 
-def _list_dates(args: argparse.Namespace) -> int:
-    """``results`` without ``--from``: what the store holds, one line per date."""
+def _read_store(db: str, read):
+    """``read(conn)`` on a read-only connection to the store at ``db``, closed after."""
     from daemon.store.reader import StoreReadError, open_readonly
     try:
-        conn = open_readonly(args.db)
+        conn = open_readonly(db)
     except StoreReadError as exc:
         raise CommandError(str(exc), EX_NOINPUT) from None
     try:
-        days = _store_dates(conn)
+        return read(conn)
     finally:
         conn.close()
+
+
+def _list_dates(args: argparse.Namespace) -> int:
+    """``results`` without ``--from``: what the store holds, one line per date."""
+    days = _read_store(args.db, _store_dates)
     if args.json:
         print(dumps({"dates": days}))
         return 0
@@ -237,7 +242,7 @@ def _list_dates(args: argparse.Namespace) -> int:
 
 
 def cmd_results(args: argparse.Namespace) -> int:
-    from daemon.store.reader import StoreReadError, open_readonly, results_between
+    from daemon.store.reader import results_between
     if args.from_ is None:
         if args.to is not None:
             raise CommandError("--to needs --from; without both, the dates in the store "
@@ -246,14 +251,7 @@ def cmd_results(args: argparse.Namespace) -> int:
     last = args.to or args.from_
     if last < args.from_:
         raise CommandError(f"--to {last} is before --from {args.from_}; swap them", EX_USAGE)
-    try:
-        conn = open_readonly(args.db)
-    except StoreReadError as exc:
-        raise CommandError(str(exc), EX_NOINPUT) from None
-    try:
-        rows = results_between(conn, args.from_, last)
-    finally:
-        conn.close()
+    rows = _read_store(args.db, lambda conn: results_between(conn, args.from_, last))
     if args.json:
         print(dumps({"from": args.from_.isoformat(), "to": last.isoformat(), "results": rows}))
         return 0
