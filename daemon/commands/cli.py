@@ -235,19 +235,64 @@ def cmd_refit(args: argparse.Namespace) -> int:
 # status, results, export, plot, report, ssh-gate: each lives in its own module, imported
 # only when the command runs, so `today` and the others start fast.
 
-def cmd_results(args: argparse.Namespace) -> int:
-    from daemon.store.reader import StoreReadError, open_readonly, results_between
-    last = args.to or args.from_
-    if last < args.from_:
-        raise CommandError(f"--to {last} is before --from {args.from_}; swap them", EX_USAGE)
+def _store_dates(conn) -> list[dict]:
+    """Per local date of the store (a stored plan or a session result): the sessions
+    fitted and, over them, the channels accepted of those fitted."""
+    from daemon.store.reader import plans_from, results_between
+
+    days: dict[str, dict] = {p["date"]: {"date": p["date"], "sessions": [], "accepted": 0,
+                                         "fitted": 0} for p in plans_from(conn, date.min)}
+    for r in results_between(conn, date.min, date.max):
+        day = days.setdefault(r["date"], {"date": r["date"], "sessions": [], "accepted": 0,
+                                          "fitted": 0})
+        if r["session"] not in day["sessions"]:
+            day["sessions"].append(r["session"])
+        day["fitted"] += 1
+        day["accepted"] += bool(r["accepted"])
+    return [days[d] for d in sorted(days)]
+
+
+def _read_store(db: str, read):
+    """``read(conn)`` on a read-only connection to the store at ``db``, closed after."""
+    from daemon.store.reader import StoreReadError, open_readonly
     try:
-        conn = open_readonly(args.db)
+        conn = open_readonly(db)
     except StoreReadError as exc:
         raise CommandError(str(exc), EX_NOINPUT) from None
     try:
-        rows = results_between(conn, args.from_, last)
+        return read(conn)
     finally:
         conn.close()
+
+
+def _list_dates(args: argparse.Namespace) -> int:
+    """``results`` without ``--from``: what the store holds, one line per date."""
+    days = _read_store(args.db, _store_dates)
+    if args.json:
+        print(dumps({"dates": days}))
+        return 0
+    if not days:
+        print(f"no plans or session results yet in {args.db}")
+        return 1
+    print(table(["date", "sessions", "channels accepted of fitted (all sessions)"],
+                [[d["date"], " ".join(d["sessions"]) or "none fitted",
+                  f"{d['accepted']} of {d['fitted']}"] for d in days]))
+    print(f"`heliotrope results --from {days[0]['date']} --to {days[-1]['date']}` "
+          "shows the results")
+    return 0
+
+
+def cmd_results(args: argparse.Namespace) -> int:
+    from daemon.store.reader import results_between
+    if args.from_ is None:
+        if args.to is not None:
+            raise CommandError("--to needs --from; without both, the dates in the store "
+                               "are listed", EX_USAGE)
+        return _list_dates(args)
+    last = args.to or args.from_
+    if last < args.from_:
+        raise CommandError(f"--to {last} is before --from {args.from_}; swap them", EX_USAGE)
+    rows = _read_store(args.db, lambda conn: results_between(conn, args.from_, last))
     if args.json:
         print(dumps({"from": args.from_.isoformat(), "to": last.isoformat(), "results": rows}))
         return 0
@@ -300,8 +345,12 @@ def _add_operator_view(sub) -> None:
     c.add_argument("--json", action="store_true", help="print JSON")
     c.set_defaults(func=cmd_status)
 
-    c = sub.add_parser("results", help="session results of a range of dates")
-    _add_dates(c)
+    c = sub.add_parser("results", help="session results of a range of dates; without "
+                       "--from, the dates and sessions the store holds")
+    c.add_argument("--from", dest="from_", type=_parse_date, metavar="D1",
+                   help="first local date, YYYY-MM-DD (default: list the store's dates)")
+    c.add_argument("--to", type=_parse_date, metavar="D2",
+                   help="last local date, inclusive (default: D1)")
     c.add_argument("--db", default=_default_db(), help=db_help)
     c.add_argument("--json", action="store_true", help="print JSON")
     c.set_defaults(func=cmd_results)

@@ -120,6 +120,9 @@ ORDER BY plan_date, session, wavelength_nm, channel
 """
 
 
+EX_NOTHING = 1  # the exit code of "nothing to show" (daemon.commands.errors)
+
+
 class ExportError(OutputPathError):
     """The export cannot be made as asked; the message says why and what to do."""
 
@@ -291,6 +294,19 @@ def export(conn: sqlite3.Connection, what: str, first: str | _dt.date, last: str
 
 # --------------------------------------------------------------------------- command
 
+def _require_calibration(conn: sqlite3.Connection, db: Path) -> None:
+    """Refuse an AOD export from a store with no calibration: AOD is computed from a
+    calibration's V0, so there is nothing to show until one is made (exit 1)."""
+    from daemon.commands.errors import CommandError
+    from daemon.store.reader import stored_calibration
+
+    if stored_calibration(conn) is None:
+        raise CommandError(f"{db} holds no calibration, so no aerosol optical depth: run "
+                           f"`heliotrope calibrate --from D1 --to D2 --db {db}` first over "
+                           "a campaign of clear days (`heliotrope results` lists the dates)",
+                           EX_NOTHING)
+
+
 def cmd_export(args: argparse.Namespace) -> int:
     from daemon.commands.errors import EX_CANTCREAT, EX_NOINPUT, EX_USAGE, CommandError
     from daemon.commands.output import publish
@@ -308,6 +324,8 @@ def cmd_export(args: argparse.Namespace) -> int:
     except StoreReadError as exc:
         raise CommandError(str(exc), EX_NOINPUT) from None
     try:
+        if args.what == "aod":
+            _require_calibration(conn, db)
         if out_path is None:
             export(conn, args.what, args.from_, last, args.format, sys.stdout)
             sys.stdout.flush()

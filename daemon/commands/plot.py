@@ -22,6 +22,9 @@ stored one. Without a stored result the recomputed line is drawn.
 The terminal plot uses Unicode (Braille dots for the line, one glyph per point) and
 fits 80 columns: ``●`` a point in the fit, ``×`` a point the fit rejected as an
 outlier, ``○`` a point screened out before the fit or outside the air-mass window.
+Where standard output cannot encode those characters (an ASCII locale, ``LC_ALL=C``)
+the plot is drawn in plain ASCII instead: ``*`` used, ``x`` rejected, ``o`` screened
+or outside, the line in ``-``, ``\\`` and ``/``, the axes in ``|``, ``-`` and ``+``.
 ``--png FILE`` draws the same with matplotlib (the ``plot`` extra). numpy is imported
 for the fallback re-fit only; matplotlib only for ``--png``.
 """
@@ -53,6 +56,10 @@ _SCREENING_WHY = {"missing": "no samples of this channel",
                   "saturated": "saturated",
                   "cloudy": "cloudy: burst too variable for a clear sky"}
 GLYPHS = {USED: "●", REJECTED: "×", EXCLUDED: "○"}
+ASCII_GLYPHS = {USED: "*", REJECTED: "x", EXCLUDED: "o"}
+# The axis and legend characters: (y tick, y rule, x rule, x tick, corner, line legend).
+_UNICODE_AXES = ("┤", "│", "─", "┬", "└", "⠒")
+_ASCII_AXES = ("+", "|", "-", "+", "+", "-")
 _PRIORITY = {EXCLUDED: 1, USED: 2, REJECTED: 3}  # which glyph wins a shared cell
 # Braille dot bits by (column, row) inside one character cell (Unicode U+2800 block).
 _BRAILLE = ((0x01, 0x02, 0x04, 0x40), (0x08, 0x10, 0x20, 0x80))
@@ -353,12 +360,33 @@ def _nice_range(lo: float, hi: float) -> tuple[float, float]:
     return lo - pad, hi + pad
 
 
-def render_terminal(view: SessionView, width: int = 80, height: int = 16) -> str:
+def stream_takes_unicode(stream: Any) -> bool:
+    """True when ``stream``'s encoding can write the plot's Unicode characters.
+
+    Tried by encoding every glyph, axis and Braille character the plot uses, because
+    an encoding's name alone does not say (``latin-1`` has ``×`` but not ``●``).
+    """
+    encoding = getattr(stream, "encoding", None) or "ascii"
+    sample = ("".join(GLYPHS.values()) + "".join(_UNICODE_AXES)
+              + "".join(chr(0x2800 + b) for b in range(256)))
+    try:
+        sample.encode(encoding)
+    except (UnicodeEncodeError, LookupError):
+        return False
+    return True
+
+
+def render_terminal(view: SessionView, width: int = 80, height: int = 16,
+                    ascii_only: bool = False) -> str:
     """The Langley plot as text: at most ``width`` columns, ``height`` plot rows.
 
     ln V [ln(V/1 V)] against air mass (or the water-vapour fit's ``m^b``) from 0, so
-    the fitted line runs back to its intercept ln V0 at air mass zero.
+    the fitted line runs back to its intercept ln V0 at air mass zero. With
+    ``ascii_only`` every character is ASCII (see the module docstring).
     """
+    glyphs = ASCII_GLYPHS if ascii_only else GLYPHS
+    tick_mark, rule, x_rule, x_tick, corner, line_mark = (
+        _ASCII_AXES if ascii_only else _UNICODE_AXES)
     label_w = 8
     plot_w = max(20, width - label_w - 2)
     plot_h = max(6, height)
@@ -416,36 +444,47 @@ def render_terminal(view: SessionView, width: int = 80, height: int = 16) -> str
     lines = head + [" " * max(0, label_w - 4) + view.y_label]
     for row in range(plot_h):
         label = f"{label_rows[row]:.{digits}f}" if row in label_rows else ""
-        tick = "┤" if row in label_rows else "│"
+        tick = tick_mark if row in label_rows else rule
         cells = []
         for col in range(plot_w):
             role = glyph.get((row, col))
             if role is not None:
-                cells.append(GLYPHS[role])
+                cells.append(glyphs[role])
+            elif bits[row][col] and ascii_only:
+                cells.append(_ascii_line(bits[row][col], view.tau or 0.0))
             elif bits[row][col]:
                 cells.append(chr(0x2800 + bits[row][col]))
             else:
                 cells.append(" ")
         lines.append(f"{label:>{label_w}} {tick}" + "".join(cells).rstrip())
-    axis = ["─"] * plot_w
+    axis = [x_rule] * plot_w
     tick_labels = [" "] * (plot_w + 4)
     for m in range(int(x_lo), int(math.floor(x_hi)) + 1):
         col = dot_x(float(m)) // 2
-        axis[col] = "┬"
+        axis[col] = x_tick
         text = str(m)
         start = max(0, col - len(text) // 2)
         tick_labels[start:start + len(text)] = list(text)
-    lines.append(" " * label_w + " └" + "".join(axis))
+    lines.append(" " * label_w + " " + corner + "".join(axis))
     lines.append(" " * (label_w + 2) + "".join(tick_labels).rstrip())
     lines.append(" " * (label_w + 2 + plot_w // 2 - len(view.x_label) // 2) + view.x_label)
-    lines.append(f"{GLYPHS[USED]} in the fit  {GLYPHS[REJECTED]} rejected by the fit  "
-                 f"{GLYPHS[EXCLUDED]} screened or outside the window  "
-                 + ("⠒ fit" if view.ln_v0 is not None else ""))
+    lines.append(f"{glyphs[USED]} in the fit  {glyphs[REJECTED]} rejected by the fit  "
+                 f"{glyphs[EXCLUDED]} screened or outside the window  "
+                 + (f"{line_mark} fit" if view.ln_v0 is not None else ""))
     if n_plotted < len(view.points):
         lines.append(f"{len(view.points) - n_plotted} point(s) without a positive signal "
                      "or a finite value are not drawn")
     lines += [f"note: {n}" for n in view.notes]
     return "\n".join(_wrap(line, width) for line in lines)
+
+
+def _ascii_line(cell_bits: int, tau: float) -> str:
+    """The ASCII stand-in for one cell of the Braille line: ``-`` where the line stays
+    within two dot rows of the cell, else ``\\`` falling (tau > 0) or ``/`` rising."""
+    rows = {r for column in _BRAILLE for r, bit in enumerate(column) if cell_bits & bit}
+    if max(rows) - min(rows) <= 1:
+        return "-"
+    return "\\" if tau > 0 else "/"
 
 
 def _wrap(line: str, width: int) -> str:
@@ -570,7 +609,16 @@ def cmd_plot(args: argparse.Namespace) -> int:
     if args.json:
         print(dumps({"plots": [v.to_dict() for v in views]}))
     else:
-        print("\n\n".join(render_terminal(v) for v in views))
+        ascii_only = not stream_takes_unicode(sys.stdout)
+        text = "\n\n".join(render_terminal(v, ascii_only=ascii_only) for v in views)
+        if ascii_only:
+            # A site name or note outside the stream's encoding must not crash the plot.
+            encoding = getattr(sys.stdout, "encoding", None) or "ascii"
+            try:
+                text = text.encode(encoding, "replace").decode(encoding)
+            except LookupError:
+                text = text.encode("ascii", "replace").decode("ascii")
+        print(text)
     if png is not None:
         try:
             render_png(views, png)
