@@ -152,7 +152,8 @@ def open_readonly(path: str | Path, warn: TextIO | None = None) -> sqlite3.Conne
                   file=warn if warn is not None else sys.stderr)
     except sqlite3.Error as exc:
         if is_damage(exc):
-            raise DamagedStoreError(f"{p}: {exc}; {DAMAGE_ADVICE}") from None
+            raise DamagedStoreError(f"{p}: not a readable SQLite store ({exc}); "
+                                    f"{DAMAGE_ADVICE}") from None
         raise StoreReadError(f"{p}: cannot open the store read-only ({exc}); check that you may "
                              "read the file and its directory") from None
     if tables == 0:
