@@ -294,8 +294,11 @@ def test_read_helpers_for_events_plans_and_heartbeat(store, db_path):
     store.record_event(T0, "info", "start", "service started")
     store.record_event(T0 + dt.timedelta(minutes=1), "error", "serial", "port vanished",
                        {"port": "/dev/ttyUSB0"})
-    store.save_plan("2025-03-21", {"targets": [2.0, 2.25], "sunrise": T0}, created_utc=T0)
-    store.save_plan("2025-03-21", {"targets": [2.0]}, created_utc=T0)  # re-plan replaces
+    # Plans as the reader checks them: a date and a list of targets (empty here).
+    first = {"date": "2025-03-21", "targets": [], "sunrise": T0}
+    replan = {"date": "2025-03-21", "targets": [], "note": "re-plan"}
+    store.save_plan("2025-03-21", first, created_utc=T0)
+    store.save_plan("2025-03-21", replan, created_utc=T0)  # re-plan replaces
     store.heartbeat(T0 + dt.timedelta(minutes=2))
     store.record_measurement(make_record(0))
     conn = storeread.open_readonly(db_path)
@@ -303,10 +306,11 @@ def test_read_helpers_for_events_plans_and_heartbeat(store, db_path):
         events = storeread.recent_events(conn, limit=5)
         assert [e["kind"] for e in events] == ["serial", "start"]
         assert events[0]["detail"] == {"port": "/dev/ttyUSB0"} and events[1]["detail"] is None
-        store.save_plan("2025-03-20", {"targets": [3.0]}, created_utc=T0)
-        assert storeread.stored_plan(conn, "2025-03-21") == {"targets": [2.0]}
-        assert storeread.stored_plan(conn) == {"targets": [2.0]}  # the newest date
-        assert storeread.stored_plan(conn, dt.date(2025, 3, 20)) == {"targets": [3.0]}
+        earlier = {"date": "2025-03-20", "targets": []}
+        store.save_plan("2025-03-20", earlier, created_utc=T0)
+        assert storeread.stored_plan(conn, "2025-03-21") == replan
+        assert storeread.stored_plan(conn) == replan  # the newest date
+        assert storeread.stored_plan(conn, dt.date(2025, 3, 20)) == earlier
         assert storeread.stored_plan(conn, dt.date(2025, 3, 22)) is None
         assert storeread.last_heartbeat(conn) == T0 + dt.timedelta(minutes=2)
         day = storeread.day_measurements(conn, "2025-03-21")
