@@ -103,15 +103,9 @@ def _check_store_path(source: str, store_path: str) -> list[str]:
 
 
 def cmd_today(args: argparse.Namespace) -> int:
-    from daemon.store.reader import StoreReadError, latest_results, open_readonly
-    try:
-        conn = open_readonly(args.db)
-    except StoreReadError as exc:
-        raise CommandError(str(exc), EX_NOINPUT) from None
-    try:
-        rows = latest_results(conn)
-    finally:
-        conn.close()
+    from daemon.store.reader import latest_results
+
+    rows = _read_store(args.db, latest_results)
     if args.json:
         print(dumps({"results": rows}))
         return 0
@@ -127,15 +121,10 @@ def cmd_plan(args: argparse.Namespace) -> int:
     day = args.date
     plan_dict = None
     if args.config is None and Path(args.db).exists():
-        from daemon.store.reader import StoreReadError, open_readonly, stored_plan
-        try:
-            conn = open_readonly(args.db)
-            try:
-                plan_dict = stored_plan(conn, day.isoformat() if day else None)
-            finally:
-                conn.close()
-        except StoreReadError as exc:
-            raise CommandError(str(exc), EX_NOINPUT) from None
+        from daemon.store.reader import stored_plan
+
+        plan_dict = _read_store(args.db,
+                                lambda conn: stored_plan(conn, day.isoformat() if day else None))
     if plan_dict is None:
         if args.config is None:
             raise CommandError(f"no stored plan{' for ' + str(day) if day else ''} in "
@@ -253,16 +242,17 @@ def _store_dates(conn) -> list[dict]:
 
 
 def _read_store(db: str, read):
-    """``read(conn)`` on a read-only connection to the store at ``db``, closed after."""
+    """``read(conn)`` on a read-only connection to the store at ``db``, closed after; a
+    store that cannot be opened or read (missing, not ours, damaged) is exit 66."""
     from daemon.store.reader import StoreReadError, open_readonly
     try:
         conn = open_readonly(db)
+        try:
+            return read(conn)
+        finally:
+            conn.close()
     except StoreReadError as exc:
         raise CommandError(str(exc), EX_NOINPUT) from None
-    try:
-        return read(conn)
-    finally:
-        conn.close()
 
 
 def _list_dates(args: argparse.Namespace) -> int:

@@ -120,7 +120,6 @@ ORDER BY plan_date, session, wavelength_nm, channel
 """
 
 
-EX_NOTHING = 1  # the exit code of "nothing to show" (daemon.commands.errors)
 
 
 class ExportError(OutputPathError):
@@ -297,7 +296,7 @@ def export(conn: sqlite3.Connection, what: str, first: str | _dt.date, last: str
 def _require_calibration(conn: sqlite3.Connection, db: Path) -> None:
     """Refuse an AOD export from a store with no calibration: AOD is computed from a
     calibration's V0, so there is nothing to show until one is made (exit 1)."""
-    from daemon.commands.errors import CommandError
+    from daemon.commands.errors import EX_NOTHING, CommandError
     from daemon.store.reader import stored_calibration
 
     if stored_calibration(conn) is None:

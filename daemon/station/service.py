@@ -110,6 +110,15 @@ class Service:
     def _store_plan(self, day: date, plan_dict: dict) -> None:
         self.station.store.save_plan(day.isoformat(), plan_dict, self.clock.now())
 
+    def again_later(self, job_id: str, func: Callable[..., object], *args: object) -> datetime:
+        """Run ``func(*args)`` again in RETRY_S as the one-shot job ``job_id`` (replacing
+        an earlier retry of the same job); return when. Every job that must not be lost
+        to a failing write or a silent device comes back through here."""
+        when = self.clock.now() + timedelta(seconds=RETRY_S)
+        self.scheduler.add_job(func, "date", run_date=when, args=list(args), id=job_id,
+                               replace_existing=True, misfire_grace_time=None)
+        return when
+
     def guarded(self, job_id: str, what: str, func: Callable[..., object], *args: object) -> bool:
         """Run ``func(*args)``; when the store refuses the write (a full disk, a
         read-only file system), log it, store an event if the store takes it, and run
@@ -121,13 +130,10 @@ class Service:
         try:
             func(*args)
         except STORE_ERRORS as exc:
-            when = self.clock.now() + timedelta(seconds=RETRY_S)
+            when = self.again_later(f"retry-{job_id}", self.guarded, job_id, what, func, *args)
             self.station.event("error", "store_error",
                                f"{what}: {exc}; trying again at {when:%H:%M:%S} UTC",
                                {"job": job_id})
-            self.scheduler.add_job(self.guarded, "date", run_date=when,
-                                   args=[job_id, what, func, *args], id=f"retry-{job_id}",
-                                   replace_existing=True, misfire_grace_time=None)
             return False
         return True
 
@@ -182,13 +188,10 @@ class Service:
             self.schedule_day(day)
         except Exception as exc:  # without this job no day would ever be planned again
             log.exception("planning %s failed", day)
-            when = self.clock.now() + timedelta(seconds=RETRY_S)
+            when = self.again_later(f"plan-next-retry-{day}", self.plan_next, day)
             self.station.event("error", "job_error",
                                f"planning {day} failed: {exc!r}; no target is scheduled; "
                                f"trying again at {when:%H:%M:%S} UTC")
-            self.scheduler.add_job(self.plan_next, "date", run_date=when, args=[day],
-                                   id=f"plan-next-retry-{day}", replace_existing=True,
-                                   misfire_grace_time=None)
 
     # ------------------------------------------------------------------ jobs
 
@@ -207,13 +210,10 @@ class Service:
             # A fit whose results could not be written: the same item again later
             # (a target never gets here: its air mass would be gone by then).
             self.done.discard(key)
-            when = self.clock.now() + timedelta(seconds=RETRY_S)
+            when = self.again_later(f"retry-{day}-{item.kind}", self.run_item, item, day)
             self.station.event("error", "store_error",
                                f"{_describe(item)} not stored: {exc}; trying again at "
                                f"{when:%H:%M:%S} UTC")
-            self.scheduler.add_job(self.run_item, "date", run_date=when, args=[item, day],
-                                   id=f"retry-{day}-{item.kind}", replace_existing=True,
-                                   misfire_grace_time=None)
             return
         except Exception as exc:  # the service must outlive any one item
             log.exception("plan item failed")
@@ -302,10 +302,7 @@ class Service:
                                    f"asking again in {RETRY_S} s, acquisition retries at "
                                    "every target")
         if silent and not self.station.stopping.is_set():
-            self.scheduler.add_job(self.identify_devices, "date",
-                                   run_date=self.clock.now() + timedelta(seconds=RETRY_S),
-                                   args=[tuple(silent)], id="identify",
-                                   replace_existing=True, misfire_grace_time=None)
+            self.again_later("identify", self.identify_devices, tuple(silent))
 
     def run(self) -> None:
         self.station.event("info", "start", "service started")
