@@ -20,6 +20,19 @@ class LinkError(OSError):
     """No usable answer: timeout, garbage, checksum failure or a vanished port."""
 
 
+class DriverConfigError(ValueError):
+    """A driver's ``options`` block is wrong; ``key`` is the path inside that block.
+
+    Raised by a driver family's option check while the configuration is read, so a
+    wrong register map or command template is found at start-up (exit 78), never at
+    the first target."""
+
+    def __init__(self, key: str, message: str):
+        super().__init__(f"{key}: {message}" if key else message)
+        self.key = key
+        self.message = message
+
+
 @dataclass(frozen=True)
 class Identity:
     model: str

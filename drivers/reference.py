@@ -167,14 +167,16 @@ class SerialTracker(Tracker):
 
 
 def open_radiometer(
-    url: str, baudrate: int = 19200, timeout_s: float = 2.0, retries: int = 3
+    url: str, baudrate: int = 19200, timeout_s: float = 2.0, retries: int = 3,
+    options: None = None,
 ) -> SerialRadiometer:
     """A :class:`SerialRadiometer` on ``url`` (device path or pyserial URL); opens lazily."""
     return SerialRadiometer(Transport(url, baudrate, timeout_s, retries, name="radiometer"))
 
 
 def open_tracker(
-    url: str, baudrate: int = 19200, timeout_s: float = 2.0, retries: int = 3
+    url: str, baudrate: int = 19200, timeout_s: float = 2.0, retries: int = 3,
+    options: None = None,
 ) -> SerialTracker:
     """A :class:`SerialTracker` on ``url`` (device path or pyserial URL); opens lazily."""
     return SerialTracker(Transport(url, baudrate, timeout_s, retries, name="tracker"))

@@ -8,7 +8,9 @@ import sys
 import types
 from pathlib import Path
 
-from daemon.config.settings import load_config
+import pytest
+
+from daemon.config.settings import ConfigError, load_config
 from daemon.station.acquisition import open_devices
 from drivers import registry
 from drivers.reference import SerialRadiometer, SerialTracker
@@ -27,8 +29,8 @@ def test_the_reference_drivers_are_the_default():
 def test_a_registered_driver_module_is_opened_by_name(monkeypatch):
     seen = {}
 
-    def open_fake_radiometer(url, baudrate, timeout_s, retries):
-        seen["radiometer"] = (url, baudrate, timeout_s, retries)
+    def open_fake_radiometer(url, baudrate, timeout_s, retries, options):
+        seen["radiometer"] = (url, baudrate, timeout_s, retries, options)
         return FakeRadiometer()
 
     module = types.ModuleType("heliotrope_test_driver")
@@ -45,4 +47,16 @@ def test_a_registered_driver_module_is_opened_by_name(monkeypatch):
         tracker=dataclasses.replace(cfg.tracker, driver="bench-fake"))
     radiometer, tracker = open_devices(cfg)
     assert isinstance(radiometer, FakeRadiometer) and isinstance(tracker, FakeTracker)
-    assert seen["radiometer"] == (cfg.radiometer.url, 19200, 2.0, 3)
+    assert seen["radiometer"] == (cfg.radiometer.url, 19200, 2.0, 3, None)
+
+
+def test_a_driver_options_block_is_checked_by_its_family_and_named_in_the_error(tmp_path):
+    # The reference family takes no options: its check refuses the block, and the
+    # message names the key path (common practice, no source: exit 78 names the key).
+    text = CONFIG.read_text().replace(
+        "  radiometer:\n", "  radiometer:\n    options: {unit: 3}\n", 1)
+    bad = tmp_path / "bad.yaml"
+    bad.write_text(text)
+    with pytest.raises(ConfigError, match=r"instrument\.radiometer\.options: this driver "
+                                          r"takes no options"):
+        load_config(bad)

@@ -23,6 +23,8 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import yaml
 
+from drivers import registry
+from drivers.interfaces import DriverConfigError
 from drivers.registry import RADIOMETER_DRIVERS, TRACKER_DRIVERS
 
 EX_CONFIG = 78  # sysexits.h: configuration error
@@ -77,6 +79,9 @@ class Port:
     timeout_s: float = 2.0
     retries: int = 3
     driver: str = "reference"  # a name in drivers.registry
+    # What the driver family's option check made of the port's ``options`` block (a
+    # register map, command templates), or None; see drivers.registry.OPTION_CHECKS.
+    options: Any = field(default=None, compare=False, hash=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -449,15 +454,22 @@ def _in_water_band(channel: Channel) -> bool:
             and channel.wavelength_nm - half < WATER_BAND_NM[1])
 
 
-def _read_port(s: _Section, drivers: dict[str, str]) -> Port:
+def _read_port(s: _Section, drivers: dict[str, str], kind: str) -> Port:
     names = sorted(drivers)
+    driver = s.string("driver", default="reference", pattern="|".join(map(re.escape, names)),
+                      hint=f"known drivers: {', '.join(names)}")
+    try:
+        options = registry.check_options(kind, driver, s._raw("options", None))
+    except DriverConfigError as exc:
+        where = s._key("options") + (f".{exc.key}" if exc.key else "")
+        raise ConfigError(f"{where}: {exc.message}") from None
     port = Port(
         url=s.string("port"),
         baudrate=s.integer("baudrate", 1200, 921600, default=19200),
         timeout_s=s.number("timeout_s", 0.05, 60, default=2.0, unit="s"),
         retries=s.integer("retries", 0, 10, default=3),
-        driver=s.string("driver", default="reference", pattern="|".join(map(re.escape, names)),
-                        hint=f"known drivers: {', '.join(names)}"),
+        driver=driver,
+        options=options,
     )
     worst = port.timeout_s * (port.retries + 1)
     if worst > MAX_EXCHANGE_S:
@@ -584,8 +596,8 @@ def parse_config(data: Any, source: str = "<memory>") -> Config:
     site = _read_site(top.section("site"))
     inst = top.section("instrument")
     channels = _read_channels(inst)
-    radiometer = _read_port(inst.section("radiometer"), RADIOMETER_DRIVERS)
-    tracker = _read_port(inst.section("tracker"), TRACKER_DRIVERS)
+    radiometer = _read_port(inst.section("radiometer"), RADIOMETER_DRIVERS, "radiometer")
+    tracker = _read_port(inst.section("tracker"), TRACKER_DRIVERS, "tracker")
     inst.finish()
     plan = _read_plan(top.section("plan", required=False))
     acquisition = _read_acquisition(top.section("acquisition", required=False))

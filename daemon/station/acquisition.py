@@ -352,8 +352,10 @@ def open_devices(config: Config) -> tuple[Radiometer, Tracker]:
     from drivers import registry
 
     r, t = config.radiometer, config.tracker
-    return (registry.open_radiometer(r.driver, r.url, r.baudrate, r.timeout_s, r.retries),
-            registry.open_tracker(t.driver, t.url, t.baudrate, t.timeout_s, t.retries))
+    return (registry.open_radiometer(r.driver, r.url, r.baudrate, r.timeout_s, r.retries,
+                                     r.options),
+            registry.open_tracker(t.driver, t.url, t.baudrate, t.timeout_s, t.retries,
+                                  t.options))
 
 
 def local_midnight_utc(config: Config, day: date) -> datetime:
