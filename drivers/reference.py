@@ -10,7 +10,6 @@ reported then, with a hint (see :class:`drivers.transport.PortUnavailable`).
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from datetime import datetime
 
@@ -24,7 +23,7 @@ from drivers.interfaces import (
     Tracker,
     TrackerState,
 )
-from drivers.transport import Transport
+from drivers.transport import OnTransport, Transport
 
 _KIND_NAMES = {p.KIND_RADIOMETER: "radiometer", p.KIND_TRACKER: "tracker"}
 
@@ -50,7 +49,7 @@ def _read_clock(transport: Transport) -> datetime:
     return p.parse_clock(transport.exchange(p.CLK))
 
 
-class SerialRadiometer(Radiometer):
+class SerialRadiometer(OnTransport, Radiometer):
     """A multi-channel radiometer speaking the heliotrope line protocol."""
 
     def __init__(self, transport: Transport) -> None:
@@ -105,17 +104,8 @@ class SerialRadiometer(Radiometer):
         self.transport.exchange(p.RST, timeout_s=p.reply_timeout_s(p.RST))
         self._channels = None
 
-    def link_counters(self) -> dict[str, int]:
-        return dataclasses.asdict(self.transport.counters)
 
-    def close(self) -> None:
-        self.transport.close()
-
-    def shutdown(self, timeout_s: float = 1.0) -> None:
-        self.transport.shutdown(timeout_s)
-
-
-class SerialTracker(Tracker):
+class SerialTracker(OnTransport, Tracker):
     """A two-axis sun tracker speaking the heliotrope line protocol."""
 
     def __init__(self, transport: Transport) -> None:
@@ -155,15 +145,6 @@ class SerialTracker(Tracker):
         PARK alone also stops following the sun (PROTOCOL.md, tracker commands), so
         the stop path needs no SUN 0 before it."""
         self.transport.exchange_once(p.PARK, timeout_s=timeout_s)
-
-    def link_counters(self) -> dict[str, int]:
-        return dataclasses.asdict(self.transport.counters)
-
-    def close(self) -> None:
-        self.transport.close()
-
-    def shutdown(self, timeout_s: float = 1.0) -> None:
-        self.transport.shutdown(timeout_s)
 
 
 def open_radiometer(

@@ -454,6 +454,22 @@ class Transport:
         self._sleep(delay)
 
 
+class OnTransport:
+    """The link half of a driver whose device sits on one :class:`Transport`: its
+    counters, close and shutdown (see the Radiometer and Tracker interfaces)."""
+
+    transport: Transport
+
+    def link_counters(self) -> dict[str, int]:
+        return dataclasses.asdict(self.transport.counters)
+
+    def close(self) -> None:
+        self.transport.close()
+
+    def shutdown(self, timeout_s: float = 1.0) -> None:
+        self.transport.shutdown(timeout_s)
+
+
 def _explain_open_failure(name: str, url: str, exc: OSError) -> PortUnavailable:
     code = exc.errno
     text = str(exc)

@@ -35,6 +35,23 @@ EX_CONFIG = 78
 
 log = logging.getLogger("heliotrope-sim")
 
+#: --family: the device emulators a driver family talks to ("module:function"; None is
+#: the reference protocol's DeviceEmulator).
+FAMILIES: dict[str, str | None] = {
+    "reference": None,
+    "text": "sim_instrument.text_server:text_emulator",
+}
+
+
+def _emulator(family: str) -> Any:
+    spec = FAMILIES[family]
+    if spec is None:
+        return None
+    import importlib
+
+    module, function = spec.split(":")
+    return getattr(importlib.import_module(module), function)
+
 
 def parse_port_spec(spec: str) -> tuple[str, int]:
     """``"pty"`` -> ("pty", 0); ``"tcp:PORT"`` -> ("tcp", PORT). Raises ValueError."""
@@ -80,6 +97,10 @@ def build_parser() -> argparse.ArgumentParser:
                          "'drop=0.05,garble=0.05,truncate=0.02,corrupt=0.02,stale=0.05,"
                          "late=0.01'; replaces the scenario's own line faults (its "
                          "scheduled events still happen)")
+    ap.add_argument("--family", choices=sorted(FAMILIES), default="reference",
+                    help="the command set served: reference (drivers/PROTOCOL.md) or text "
+                         "(a SCPI voltmeter and a short-command tracker, "
+                         "sim_instrument/text_server.py). Default: reference")
     ap.add_argument("-v", "--verbose", action="store_true",
                     help="log every request and reply to standard error")
     return ap
@@ -170,7 +191,8 @@ def main(argv: list[str] | None = None) -> int:
         scenario = station.scenario
         server = StationServer(station, endpoint, tcp_port, reply_delay_scale=delay_scale,
                                line_faults=faults, seed=args.seed, fault_plan=scenario.faults,
-                               longitude_deg=scenario.site.longitude_deg)
+                               longitude_deg=scenario.site.longitude_deg,
+                               emulator=_emulator(args.family))
     except OSError as exc:
         where = f"127.0.0.1:{tcp_port} or {tcp_port + 1}" if endpoint == "tcp" else "a pty"
         print(f"heliotrope-sim: cannot listen on {where}: {exc.strerror or exc}. Pick "

@@ -209,13 +209,14 @@ class Damager:
             self.counts["drop"] += 1
             return out, delay_s
         if draws[4] < f.truncate or "truncate" in once:
-            reply = reply[: rng.randrange(1, len(reply) - 2)] + b"\r\n"
+            # max(): a reply of a few bytes (a text command's "1") still loses some.
+            reply = reply[: rng.randrange(1, max(2, len(reply) - 2))] + b"\r\n"
             self.counts["truncate"] += 1
         elif draws[5] < f.corrupt or "corrupt" in once:
             body = bytearray(reply)
             # Flip a bit of a printable character before the line end; the result may
             # leave ASCII, as line noise does.
-            i = rng.randrange(0, len(reply) - 2)
+            i = rng.randrange(0, max(1, len(reply) - 2))
             body[i] ^= 1 << rng.randrange(0, 7)
             if body[i] in (0x0A, 0x0D):
                 body[i] ^= 0x40

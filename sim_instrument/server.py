@@ -647,6 +647,10 @@ class StationServer:
         The site's longitude [degrees east], to place events in local solar time.
     record
         Keep every chunk each endpoint writes (``server.transcripts()``).
+    emulator
+        Makes each device's emulator from ``(kind, station, lock, reply_delay_scale)``:
+        :class:`DeviceEmulator` (the reference protocol) unless another command set is
+        served (:func:`sim_instrument.text_server.text_emulator`).
 
     With a ``port_vanish`` event on pseudo-terminals, the urls are symbolic links in a
     private temporary directory, re-pointed when the port returns.
@@ -657,7 +661,8 @@ class StationServer:
     def __init__(self, station: Any, endpoint: str = "pty", tcp_port: int = 0, *,
                  reply_delay_scale: float = 0.0, line_faults: LineFaults | None = None,
                  seed: int = 0, fault_plan: FaultPlan | None = None,
-                 longitude_deg: float = 0.0, record: bool = False) -> None:
+                 longitude_deg: float = 0.0, record: bool = False,
+                 emulator: Callable[..., Any] | None = None) -> None:
         if endpoint not in ("pty", "tcp"):
             raise ValueError(f"endpoint {endpoint!r} must be 'pty' or 'tcp'")
         if endpoint == "tcp" and tcp_port and not 1 <= tcp_port <= 65534:
@@ -670,7 +675,8 @@ class StationServer:
         self._link_dir: str | None = None
         if endpoint == "pty" and plan.vanishes:
             self._link_dir = tempfile.mkdtemp(prefix="heliotrope-sim-")
-        emulators = [DeviceEmulator(kind, station, self.lock, reply_delay_scale)
+        make = emulator or DeviceEmulator
+        emulators = [make(kind, station, self.lock, reply_delay_scale)
                      for kind in (RADIOMETER, TRACKER)]
         try:
             for i, emulator in enumerate(emulators):

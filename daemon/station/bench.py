@@ -24,6 +24,8 @@ from pathlib import Path
 from daemon.config.settings import Config
 
 SIM_START_TIMEOUT_S = 30.0
+#: The simulator's ``--family`` that serves each radiometer driver.
+SIM_FAMILIES = {"reference": "reference", "text": "text"}
 
 
 class BenchError(Exception):
@@ -40,7 +42,8 @@ class SimEndpoints:
 
 @contextmanager
 def simulator(scenario: str, seed: int, port: str = "pty",
-              truth_path: Path | None = None) -> Iterator[SimEndpoints]:
+              truth_path: Path | None = None, family: str = "reference"
+              ) -> Iterator[SimEndpoints]:
     """Start ``heliotrope-sim`` as a child process and yield its endpoints.
 
     The child is tied to us by its standard input (``--stdin-lifeline``): if this
@@ -48,7 +51,7 @@ def simulator(scenario: str, seed: int, port: str = "pty",
     is asked to stop with SIGTERM so it writes its truth file.
     """
     cmd = [sys.executable, "-m", "sim_instrument", "--scenario", scenario, "--port", port,
-           "--seed", str(seed), "--stdin-lifeline"]
+           "--seed", str(seed), "--stdin-lifeline", "--family", family]
     if truth_path is not None:
         cmd += ["--truth", str(truth_path)]
     proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
@@ -173,7 +176,8 @@ def bench_rig(config: Config, store_path: Path, scenario: str, seed: int, port: 
 
     store = Store.open(store_path)
     try:
-        with simulator(scenario, seed, port, truth_path) as ends:
+        family = SIM_FAMILIES.get(config.radiometer.driver, "reference")
+        with simulator(scenario, seed, port, truth_path, family) as ends:
             cfg = with_ports(config, ends)
             radiometer, tracker = open_devices(cfg)
             try:
