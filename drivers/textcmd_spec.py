@@ -155,6 +155,7 @@ class _Block:
         return self.data.get(name, default)
 
     def has(self, name: str) -> bool:
+        self.seen.add(name)
         return name in self.data
 
     def number(self, name: str, lo: float, hi: float, default: Any = None,

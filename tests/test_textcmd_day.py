@@ -1,0 +1,53 @@
+"""A simulated clear day at Pico Sereno through the text-command simulator.
+
+The same day as tests/test_end_to_end.py, with config/pico-sereno-scpi.yaml: the bench
+starts ``heliotrope-sim --family text`` (a SCPI voltmeter and a short-command tracker on
+pseudo-terminals), the daemon drives it with the text drivers, and the fits must give
+back the simulator's own V0 at 1 AU (its truth file) within 0.1 %, the acceptance figure
+of this driver family on a clean mountain day.
+"""
+
+from __future__ import annotations
+
+from datetime import date
+from pathlib import Path
+
+import pytest
+
+from daemon.config.settings import load_config
+from daemon.station.bench import bench_rig, run_simulated_day
+from drivers.textcmd import TextRadiometer, TextTracker
+
+CONFIG = Path(__file__).resolve().parent.parent / "config" / "pico-sereno-scpi.yaml"
+DAY = date(2027, 2, 15)
+WINDOW_CHANNELS = ("380", "440", "500", "675", "870", "1020")
+
+
+@pytest.fixture(scope="module")
+def scpi_day(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("scpi-day")
+    return run_simulated_day(load_config(CONFIG), DAY, tmp / "day.db", "pico-sereno-clear",
+                             seed=7, port="pty", work_dir=tmp)
+
+
+@pytest.mark.slow
+def test_every_window_channel_v0_within_a_tenth_of_a_percent(scpi_day):
+    truth = scpi_day.truth["channels"]
+    assert scpi_day.targets_ok == scpi_day.targets_planned > 30
+    got = {(r["session"], r["channel"]): r for r in scpi_day.results}
+    assert set(got) == {(s, c) for s in ("am", "pm") for c in WINDOW_CHANNELS}
+    for (session, channel), r in got.items():
+        err = r["v0_1au"] / truth[channel]["v0_1au"] - 1.0
+        assert abs(err) < 0.001, (session, channel, err)
+        assert r["accepted"], r["reasons"]
+
+
+@pytest.mark.slow
+def test_the_bench_serves_a_text_configuration_with_the_text_simulator(tmp_path):
+    cfg = load_config(CONFIG)
+    with bench_rig(cfg, tmp_path / "rig.db", "pico-sereno-clear", 1) as rig:
+        _, _, radiometer, tracker = rig
+        assert isinstance(radiometer, TextRadiometer) and isinstance(tracker, TextTracker)
+        # IEEE 488.2 sec. 10.14: the first *IDN? field is the manufacturer.
+        assert radiometer.identify().model.startswith("HELIOTROPE-SIM ")
+        assert tracker.state().mode == "parked"  # the simulated tracker starts parked
