@@ -9,9 +9,10 @@ retries within the port's budget and counters; only one attempt's bytes differ.
 On the link:
 
 - A line that matches neither the action's pattern nor the device's error pattern is
-  noise or a damaged reply: it is counted as garbage and the driver goes on waiting for
-  the reply until the attempt's deadline. No usable reply in time is a timeout: counted,
-  and retried within the port's retries.
+  noise, a damaged reply or a late reply to an earlier attempt: it is counted as
+  garbage and skipped, and the driver waits on for the reply until the attempt's
+  deadline. No usable reply in time is a timeout: counted, and retried within the
+  port's retries.
 - A line matching the error pattern is the device refusing: :class:`TextDeviceError`, not
   retried (the same command would be refused again).
 - A SCPI instrument answers a command it refuses with nothing, and queues the error
@@ -99,10 +100,8 @@ class TextTransport(Transport):
         line, extra = args[0], args[1:]
         self._send(port, line)
         deadline = time.monotonic() + per_try_s
-        while True:
-            text = self._read_line(port, deadline)
-            if text is None:
-                break
+        skipped = 0
+        while (text := self._read_line(port, deadline)) is not None:
             if self.spec.error_pattern is not None:
                 m = self.spec.error_pattern.fullmatch(text)
                 if m:
@@ -112,7 +111,11 @@ class TextTransport(Transport):
                                           groups.get("message") or text)
             m = action.pattern.fullmatch(text)
             if m is None:
+                # Noise, a damaged reply, or a late reply to an earlier attempt: skip it
+                # and wait on. (Asking again at once loses to a device still working
+                # through earlier requests: each retry then reads the next old reply.)
                 self._counters.garbage += 1
+                skipped += 1
                 log.debug("%s: discarded %r (not a reply to %s)", self.name, text, cmd)
                 continue
             try:
@@ -123,8 +126,9 @@ class TextTransport(Transport):
                                  text.encode("ascii", "replace")) from exc
         self._counters.timeouts += 1
         self._ask_error_queue(port, cmd)
+        tail = f" ({skipped} other line{'s' if skipped != 1 else ''} skipped)" if skipped else ""
         raise LinkTimeout(f"{self.name}: no reply to {cmd} matching its pattern within "
-                          f"{per_try_s:g} s")
+                          f"{per_try_s:g} s{tail}")
 
     def _send(self, port: Any, line: str) -> None:
         data = line.encode("ascii") + self.spec.line_ending
@@ -162,8 +166,9 @@ class TextTransport(Transport):
             try:
                 return raw.decode("ascii")
             except UnicodeDecodeError:
-                self._counters.garbage += 1
-                log.debug("%s: discarded non-ASCII line %r", self.name, raw)
+                # Never a reply; the caller's pattern sees the replacement characters
+                # and skips it as garbage.
+                return raw.decode("ascii", "replace")
 
     def _ask_error_queue(self, port: Any, cmd: str) -> None:
         """After a timeout: raise TextDeviceError when the device queued an error."""
