@@ -9,6 +9,8 @@ sysexits.h gives 78 for a configuration error).
 from __future__ import annotations
 
 import copy
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
@@ -107,3 +109,15 @@ def test_the_scpi_example_loads_into_command_tables():
     assert cfg.tracker.options.line_ending == b"\r"
     assert cfg.radiometer.options.actions["read_channels"].format(n=10) == (
         "SHUT:OPEN;:SAMP:COUN 10;:MEAS:VOLT:DC? (@101:106)")
+
+
+def test_reading_a_text_configuration_imports_no_serial_library():
+    # The registry's rule for option checks (drivers/registry.py): reading a
+    # configuration never imports pyserial, so check-config starts fast.
+    code = ("import sys; from daemon.config.settings import load_config; "
+            f"load_config({str(CONFIG)!r}); "
+            "print(sorted(m for m in sys.modules if m == 'serial' or m.startswith('serial.')"
+            " or m == 'drivers.textcmd'))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, cwd=CONFIG.parent.parent).stdout
+    assert out.strip() == "[]"

@@ -45,10 +45,11 @@ def test_every_window_channel_v0_within_a_tenth_of_a_percent(scpi_day):
 
 
 @pytest.mark.slow
-def test_the_bench_serves_a_text_configuration_with_the_text_simulator(tmp_path):
+def test_the_bench_serves_a_text_configuration_with_the_text_simulator_over_tcp(tmp_path):
     cfg = load_config(CONFIG)
-    with bench_rig(cfg, tmp_path / "rig.db", "pico-sereno-clear", 1) as rig:
-        _, _, radiometer, tracker = rig
+    with bench_rig(cfg, tmp_path / "rig.db", "pico-sereno-clear", 1, port="tcp:0") as rig:
+        rig_cfg, _, radiometer, tracker = rig
+        assert rig_cfg.radiometer.url.startswith("socket://127.0.0.1:")
         assert isinstance(radiometer, TextRadiometer) and isinstance(tracker, TextTracker)
         # IEEE 488.2 sec. 10.14: the first *IDN? field is the manufacturer.
         assert radiometer.identify().model.startswith("HELIOTROPE-SIM ")
