@@ -31,7 +31,7 @@ import logging
 import math
 import time
 from collections.abc import Callable, Sequence
-from datetime import datetime
+from datetime import UTC, datetime
 from typing import Any
 
 from drivers.interfaces import (
@@ -125,7 +125,7 @@ class TextTransport(Transport):
                 raise FrameError(f"{self.name}: reply to {cmd} {text[:60]!r}...: {exc}",
                                  text.encode("ascii", "replace")) from exc
         self._counters.timeouts += 1
-        self._ask_error_queue(port, cmd)
+        self._ask_error_queue(port, cmd, min(per_try_s, self.timeout_s))
         tail = f" ({skipped} other line{'s' if skipped != 1 else ''} skipped)" if skipped else ""
         raise LinkTimeout(f"{self.name}: no reply to {cmd} matching its pattern within "
                           f"{per_try_s:g} s{tail}")
@@ -170,13 +170,16 @@ class TextTransport(Transport):
                 # and skips it as garbage.
                 return raw.decode("ascii", "replace")
 
-    def _ask_error_queue(self, port: Any, cmd: str) -> None:
-        """After a timeout: raise TextDeviceError when the device queued an error."""
+    def _ask_error_queue(self, port: Any, cmd: str, wait_s: float) -> None:
+        """After a timeout: raise TextDeviceError when the device queued an error.
+
+        Waits at most ``wait_s`` [s] for the answer (no longer than the attempt did, so
+        a one-shot exchange keeps about to its budget)."""
         query = self.spec.error_query
         if query is None:
             return
         self._send(port, query.command)
-        deadline = time.monotonic() + self.timeout_s
+        deadline = time.monotonic() + wait_s
         while (text := self._read_line(port, deadline)) is not None:
             m = query.pattern.fullmatch(text)
             if m is None:
@@ -254,7 +257,6 @@ class _TextDevice(OnTransport):
         if "set_clock" not in self.spec.actions:
             log.debug("%s: no set_clock action configured; the clock is not set", self.kind)
             return
-        from datetime import UTC
         self._query("set_clock", **clock_fields(when.astimezone(UTC)))
 
 

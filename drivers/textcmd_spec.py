@@ -30,8 +30,10 @@ TRACKER = "tracker"
 
 LINE_ENDINGS = {"CRLF": b"\r\n", "LF": b"\n", "CR": b"\r"}
 TRACKER_MODES = ("idle", "slewing", "tracking", "parked", "fault")
-#: Per-action timeout bounds [s]: a long burst may need more than the port's timeout.
-TIMEOUT_RANGE_S = (0.05, 30.0)
+#: Per-action timeout bounds [s]: a long burst may need more than the port's timeout,
+#: but no more than the configuration reader allows one unanswered command in all
+#: (daemon.config.settings.MAX_EXCHANGE_S, 20 s).
+TIMEOUT_RANGE_S = (0.05, 20.0)
 #: SCPI's "not a number" and overload value (SCPI-1999 Vol. 1, sec. 7.2.1.5: 9.91E+37
 #: is NaN; 9.9E+37 is what an overloaded measurement reads).
 SCPI_NAN = 9.91e37

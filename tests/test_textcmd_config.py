@@ -66,7 +66,7 @@ CASES = [
     (f"{R}.line_ending", "NL",
      f"{R}.line_ending: the string 'NL' is not a line ending; use one of CRLF, LF, CR"),
     (f"{R}.actions.read_channels.timeout_s", 120,
-     f"{R}.actions.read_channels.timeout_s: 120 is out of range; allowed 0.05 to 30 s"),
+     f"{R}.actions.read_channels.timeout_s: 120 is out of range; allowed 0.05 to 20 s"),
     (f"{R}.actions.read_channels.sample_interval_s", _DELETE,
      f"{R}.actions.read_channels.sample_interval_s: missing: give the time between"),
     (f"{R}.channels", 0, f"{R}.channels: the number 0: give the number of values"),

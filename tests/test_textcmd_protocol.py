@@ -3,7 +3,9 @@
 The pairs are laid out as IEEE 488.2-1992 and SCPI-1999 lay out a message (the section
 is named beside each test); the command set itself is config/pico-sereno-scpi.yaml's.
 Every pair must be used (drivers.transport.ScriptedPort), so a driver that sends one
-byte more or less, or retries where it must not, fails.
+byte more or less, or retries where it must not, fails. The section numbers of IEEE
+488.2-1992 and SCPI-1999 are from memory of the standards (docs/REFERENCES.md has no
+entry for them); the message layout they name is what the bytes below follow.
 """
 
 from __future__ import annotations
