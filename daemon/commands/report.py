@@ -65,7 +65,7 @@ border-bottom:1px solid #ccc;padding-bottom:.2em}
 table{border-collapse:collapse;font-size:.88em;margin:.4em 0}
 th,td{padding:3px 8px;border-bottom:1px solid #e4e4e4;text-align:left;vertical-align:top}
 th{background:#f3f3f3}td.num{text-align:right;font-variant-numeric:tabular-nums;
-white-space:nowrap}td.long{min-width:18em;max-width:40em}
+white-space:nowrap}td.long{min-width:24em;max-width:40em}
 .no{color:#b2182b;font-weight:600}.yes{color:#1a7a3a}
 .lvl-warning{color:#9a5b00}.lvl-error,.lvl-critical{color:#b2182b;font-weight:600}
 .charts{display:grid;grid-template-columns:repeat(auto-fill,minmax(min(100%,350px),1fr));
