@@ -79,7 +79,9 @@ class Browser:
             [CHROMIUM, *CHROMIUM_FLAGS, f"--user-data-dir={profile}",
              "--remote-debugging-pipe", "about:blank"],
             stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-            preexec_fn=fds, pass_fds=(3, 4))
+            # Our own descriptors are not inheritable (PEP 446): only the two dup2'd
+            # ones reach Chromium, and they need not be open in this process first.
+            preexec_fn=fds, close_fds=False)
         os.close(to_r)
         os.close(from_w)
         self._buf = b""

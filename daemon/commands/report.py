@@ -195,8 +195,11 @@ def svg_chart(series: Sequence[dict[str, Any]], x_range: tuple[float, float],
                 if s.get("marker"):
                     out.append(_marker(s["marker"], x + 7, y - 4, s["colour"]))
             else:
-                out.append(_marker(s.get("marker", "dot"), x + 7, y - 4, s["colour"],
-                                   s.get("hollow", False)))
+                mark = _marker(s.get("marker", "dot"), x + 7, y - 4, s["colour"],
+                               s.get("hollow", False))
+                if s.get("opacity") is not None:  # faded as the series is
+                    mark = f'<g opacity="{s["opacity"]}">{mark}</g>'
+                out.append(mark)
             out.append(f'<text x="{x + 18:.1f}" y="{y}">{e(s["label"])}</text>')
             x += _legend_width(s)
     out.append("</svg>")
