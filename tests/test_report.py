@@ -327,7 +327,8 @@ def test_calibration_section_shows_the_latest_calibration(campaign, cal_page):
     section = cal_page[cal_page.index("<h2>Calibration</h2>"):
                        cal_page.index("<h2>Aerosol optical depth")]
     text = re.sub(r"<[^>]+>", " ", section)
-    assert "Latest calibration (number 1)" in text and "2027-02-15 to 2027-02-15" in text
+    assert "Latest calibration (number 1), made 2027-02-16 06:00:00 UTC (00:00 local)" in text
+    assert "2027-02-15 to 2027-02-15" in text
     assert "(this date is in the campaign)" in text
     for name, v0 in V0.items():
         assert f"{v0:.5f}" in text and f"{v0 * 0.001:.5f}" in text, name

@@ -482,7 +482,8 @@ def _caption(ch, vs: Sequence[Any], notes: dict) -> str:
             + (f"<ul>{''.join(lines)}</ul>" if lines else ""))
 
 
-def _calibration_section(cal: dict | None, plan_date: str, db: str | Path) -> list[str]:
+def _calibration_section(cal: dict | None, plan_date: str, db: str | Path, tz) -> list[str]:
+    from daemon.commands.status import utc_local
     from daemon.commands.tables import fmt
 
     e = html.escape
@@ -495,7 +496,7 @@ def _calibration_section(cal: dict | None, plan_date: str, db: str | Path) -> li
         return parts
     inside = cal["from"] <= plan_date <= cal["to"]
     parts.append(f'<p class="meta">Latest calibration (number {cal["id"]}), made '
-                 f"{e(str(cal['created_utc']))} from the accepted sessions of "
+                 f"{e(utc_local(cal['created_utc'], tz))} from the accepted sessions of "
                  f"{e(cal['from'])} to {e(cal['to'])}"
                  f"{' (this date is in the campaign)' if inside else ''}. V0 at 1 AU is the "
                  "mean of the sessions kept, its uncertainty the standard error; drift is "
@@ -708,7 +709,7 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         parts.append(f"<figure>{langley_svg(vs, ch.name, ch.wavelength_nm) if vs else ''}"
                      f"<figcaption>{_caption(ch, vs, notes)}</figcaption></figure>")
     parts.append("</div>")
-    parts += _calibration_section(calibration, plan_date, db)
+    parts += _calibration_section(calibration, plan_date, db, tz)
     parts += _aod_section(aod, tz, calibration)
     parts.append("<h2>Housekeeping through the day</h2>")
     parts.append('<div class="charts wide">')
