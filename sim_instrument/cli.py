@@ -8,6 +8,11 @@ way out it writes the station's truth file if asked.
     heliotrope-sim --scenario pico-sereno-clear --port pty
     heliotrope-sim --scenario my-day.yaml --port tcp:7700 --speed 60 --truth truth.json
 
+The instrument clock starts at the site's local mean solar noon on the scenario's date,
+so that a burst typed by hand sees the sun up (``--start-utc scenario`` keeps the
+scenario's own ``start_utc``, ``--start-utc 2025-02-12T15:00:00Z`` sets any time; the
+daemon sets the clock itself with ``CLK`` in any case).
+
 The scenario's faults (``faults:`` in its YAML: line damage at a rate, scheduled
 reboots, vanishing ports, tracker stalls) are played as the instrument clock reaches
 them. Everything random is drawn from ``--seed``: the same seed, scenario and sequence
@@ -25,6 +30,7 @@ import selectors
 import signal
 import sys
 import tempfile
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -64,6 +70,32 @@ def parse_port_spec(spec: str) -> tuple[str, int]:
                      "tracker takes PORT+1), or 'tcp:0' to let the system pick free ports")
 
 
+def start_clock(spec: str | None, scenario_start: datetime, longitude_deg: float) -> datetime:
+    """The instrument clock at start-up, from ``--start-utc``.
+
+    None (the default): local mean solar noon, at ``longitude_deg`` (east positive), of
+    the local mean solar date of ``scenario_start``; the sun's true noon is within the
+    equation of time (at most about 16.5 min) of it. ``"scenario"``: ``scenario_start``
+    itself. Anything else: an ISO 8601 time with a zone. Raises ValueError.
+    """
+    if spec is None:
+        offset = timedelta(hours=longitude_deg / 15.0)  # mean solar time minus UTC
+        local_date = (scenario_start.astimezone(UTC) + offset).date()
+        return datetime(local_date.year, local_date.month, local_date.day, 12,
+                        tzinfo=UTC) - offset
+    if spec == "scenario":
+        return scenario_start
+    try:
+        when = datetime.fromisoformat(spec)
+    except ValueError:
+        when = None
+    if when is None or when.tzinfo is None:
+        raise ValueError(f"--start-utc {spec!r}: give an ISO 8601 time with its zone, such "
+                         "as 2025-02-12T18:45:00Z, or 'scenario' for the scenario's "
+                         "start_utc (default: local mean solar noon of the scenario's date)")
+    return when.astimezone(UTC)
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(
         prog="heliotrope-sim",
@@ -81,6 +113,10 @@ def build_parser() -> argparse.ArgumentParser:
     ap.add_argument("--speed", type=float, default=1.0, metavar="X",
                     help="instrument seconds per real second (0 freezes the clock between "
                          "CLK commands). Default: 1")
+    ap.add_argument("--start-utc", metavar="TIME|scenario",
+                    help="instrument clock at start-up: an ISO 8601 time with its zone, or "
+                         "'scenario' for the scenario's start_utc (default: local mean "
+                         "solar noon of the scenario's date, the sun up)")
     ap.add_argument("--seed", type=int, default=0, metavar="N",
                     help="seed of every random draw (default 0)")
     ap.add_argument("--truth", type=Path, metavar="FILE",
@@ -186,6 +222,12 @@ def main(argv: list[str] | None = None) -> int:
     except (OSError, ValueError) as exc:
         print(f"heliotrope-sim: {exc}", file=sys.stderr)
         return EX_CONFIG
+    try:
+        station.set_clock(start_clock(args.start_utc, station.scenario.start_utc,
+                                      station.scenario.site.longitude_deg))
+    except ValueError as exc:
+        print(f"heliotrope-sim: {exc}", file=sys.stderr)
+        return EX_USAGE
     delay_scale = 1.0 / args.speed if args.realtime and args.speed > 0 else 0.0
     try:
         scenario = station.scenario

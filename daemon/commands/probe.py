@@ -324,6 +324,33 @@ def _describe_tracker(state: Any) -> tuple[str, dict[str, Any]]:
     return text, dataclasses.asdict(state)
 
 
+# A burst with every channel below this reads like the dark signal, not the sun (common
+# practice, no source: dark signals are a few mV, a sunlit channel hundreds of mV or more).
+DARK_LEVEL_V = 0.02
+
+
+def sun_hints(burst: Any, state: Any) -> list[str]:
+    """What a dark-level burst and an unlocked tracker most likely mean (either may be
+    None when its device did not answer)."""
+    hints = []
+    unlocked = state is not None and not state.locked
+    if burst is not None and burst.samples and all(
+            math.fsum(row[c] for row in burst.samples) / len(burst.samples) < DARK_LEVEL_V
+            for c in range(len(burst.saturated))):
+        hints.append(f"radiometer: the burst is at dark level (every channel below "
+                     f"{DARK_LEVEL_V * 1000:g} mV): the sun is down at the site, or the optics "
+                     "are capped" + (", or the tracker is not on the sun (it reports no "
+                                    "lock)" if unlocked else ""))
+    if unlocked and state.mode == "tracking":
+        where = (" It points at the zenith, where following from the park position leaves "
+                 "it." if state.elevation_deg > 89.5 else "")
+        hints.append("tracker: following the sun but not locked: the sun sensor captures "
+                     "the sun only within its capture range, so point the tracker near the "
+                     "sun first (GOTO its azimuth and elevation, as the service does before "
+                     f"every target), or the sun is down or behind cloud.{where}")
+    return hints
+
+
 def probe_station(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
                   channel_names: Sequence[str] = (),
                   serial_factory: Callable[..., Any] | None = None) -> ProbeReport:
@@ -351,6 +378,7 @@ def probe_station(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
 
     rad = SerialRadiometer(_transport(RADIOMETER, radiometer, serial_factory))
     trk = SerialTracker(_transport(TRACKER, tracker, serial_factory))
+    burst = state = None
     try:
         identity = _call(RADIOMETER, radiometer, rad.transport, p.ID, rad.identify,
                          _describe_identity(rad.channel_count), checks)
@@ -384,6 +412,7 @@ def probe_station(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
             if state is not None and state.mode == "fault":
                 notes.append("tracker reports FAULT: a person should look at the mount "
                              "before the service runs")
+        notes += sun_hints(burst, state)
     finally:
         rad.close()
         trk.close()

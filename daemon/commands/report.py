@@ -2,9 +2,17 @@
 
 The page needs no other file, script or font: styles are inline in the head and the
 charts are inline SVG. It shows a summary, the session results, a Langley plot per
-channel (both sessions, as :mod:`daemon.commands.plot` marks the points), the housekeeping
-temperatures and supply voltage through the day, and the day's events. Times are UTC
-with the site's local time beside them.
+channel (both sessions, as :mod:`daemon.commands.plot` marks the points) with its
+residual panel, the store's latest calibration and the day's aerosol optical depth, the
+housekeeping temperatures and supply voltage through the day, and the day's events.
+Times are UTC with the site's local time beside them.
+
+Colours come from the colour-blind-safe palette of Okabe, M. and Ito, K. (2008), "Color
+Universal Design (CUD): how to make figures and presentations that are friendly to
+colorblind people" (J*FLY), and every series that colour tells apart also has its own
+marker shape, so the page reads in grey too. Tables scroll sideways inside their own
+box and the charts shrink to the page, so a 390-px phone never scrolls the page
+sideways.
 
 Read-only and free of heavy imports apart from numpy. The Langley plots show the
 points exactly as the session fit used them (the stored fit points, see
@@ -27,10 +35,26 @@ from pathlib import Path
 from typing import Any
 
 _CLIP_IDS = itertools.count(1)
-SESSION_COLOURS = {"am": "#1f5fa6", "pm": "#c2561a"}
-EXCLUDED_COLOUR = "#555555"
-HK_SERIES = (("detector_temp_c", "detector", "#b2182b"), ("case_temp_c", "case", "#e08214"),
-             ("ambient_temp_c", "ambient", "#2166ac"))
+# The Okabe and Ito (2008) palette (see the module docstring), by its own colour names.
+OKABE_ITO = {"black": "#000000", "orange": "#E69F00", "sky blue": "#56B4E9",
+             "bluish green": "#009E73", "yellow": "#F0E442", "blue": "#0072B2",
+             "vermillion": "#D55E00", "reddish purple": "#CC79A7"}
+# Morning and afternoon differ in colour and in shape, and the afternoon's triangles are
+# open and wide enough to show a morning dot at the same air mass inside them:
+# (colour, marker used, hollow, marker rejected).
+SESSION_STYLE = {"am": (OKABE_ITO["blue"], "dot", False, "cross"),
+                 "pm": (OKABE_ITO["vermillion"], "triangle", True, "plus")}
+REFUSED_OPACITY = 0.45  # a refused session's markers are faded
+EXCLUDED_COLOUR = "#666666"
+REFUSED_DASH = "6 4"  # the fitted line of a refused session is dashed
+HK_SERIES = (("detector_temp_c", "detector", OKABE_ITO["vermillion"], "dot"),
+             ("case_temp_c", "case", OKABE_ITO["bluish green"], "triangle"),
+             ("ambient_temp_c", "ambient", OKABE_ITO["blue"], "square"))
+# Channel colours and shapes for the AOD chart, shortest wavelength first.
+CHANNEL_STYLES = ((OKABE_ITO["reddish purple"], "dot"), (OKABE_ITO["blue"], "triangle"),
+                  (OKABE_ITO["bluish green"], "square"), (OKABE_ITO["orange"], "diamond"),
+                  (OKABE_ITO["vermillion"], "dot"), (OKABE_ITO["black"], "triangle"),
+                  (OKABE_ITO["sky blue"], "square"))
 
 _CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",Roboto,"DejaVu Sans",sans-serif;
@@ -40,15 +64,22 @@ border-bottom:1px solid #ccc;padding-bottom:.2em}
 .meta{color:#555;font-size:.9em}
 table{border-collapse:collapse;font-size:.88em;margin:.4em 0}
 th,td{padding:3px 8px;border-bottom:1px solid #e4e4e4;text-align:left;vertical-align:top}
-th{background:#f3f3f3}td.num{text-align:right;font-variant-numeric:tabular-nums}
+th{background:#f3f3f3}td.num{text-align:right;font-variant-numeric:tabular-nums;
+white-space:nowrap}td.long{min-width:24em;max-width:40em}
 .no{color:#b2182b;font-weight:600}.yes{color:#1a7a3a}
 .lvl-warning{color:#9a5b00}.lvl-error,.lvl-critical{color:#b2182b;font-weight:600}
-.charts{display:grid;grid-template-columns:repeat(auto-fill,minmax(350px,1fr));gap:12px}
-.charts.wide{grid-template-columns:repeat(auto-fill,minmax(520px,1fr))}
-figure{margin:0;border:1px solid #e4e4e4;padding:6px}
+.charts{display:grid;grid-template-columns:repeat(auto-fill,minmax(min(100%,350px),1fr));
+gap:12px}
+.charts.wide{grid-template-columns:repeat(auto-fill,minmax(min(100%,520px),1fr))}
+figure{margin:0;border:1px solid #e4e4e4;padding:6px;min-width:0}
 figcaption{font-size:.85em;color:#333;margin-top:2px}
+figcaption ul{margin:.2em 0;padding-left:1.2em}
+p,figcaption,h1,h2,li{overflow-wrap:anywhere}
 svg{display:block;width:100%;height:auto}
+.scroll{overflow-x:auto;max-width:100%}
 .summary td:first-child{color:#555}
+.refused{color:#b2182b}
+@media (max-width:600px){body{padding:8px 10px}table{font-size:.8em}}
 """
 
 
@@ -84,8 +115,11 @@ def svg_chart(series: Sequence[dict[str, Any]], x_range: tuple[float, float],
     """An inline SVG chart.
 
     Each series is a dict with ``xy`` (a list of (x, y)), ``kind`` ('line' or
-    'points'), ``colour``, ``marker`` ('dot', 'cross' or 'ring', for points) and
-    ``label`` (shown in the legend; None hides it).
+    'points'), ``colour``, ``marker`` (for points: 'dot', 'triangle', 'square',
+    'diamond', 'cross', 'plus' or 'ring'), ``label`` (shown in the legend; None hides
+    it) and optionally ``hollow`` (outlined markers), ``opacity``, ``dash`` (a
+    stroke-dasharray for lines), ``width`` and ``group`` (data attributes of the series'
+    ``<g>``, so that tests and scripts can find it).
     """
     legend = [s for s in series if s.get("label")]
     rows = _legend_rows(legend, width - 58 - 22)
@@ -135,24 +169,37 @@ def svg_chart(series: Sequence[dict[str, Any]], x_range: tuple[float, float],
         pts = [(sx(x), sy(y)) for x, y in s["xy"]
                if x is not None and y is not None and math.isfinite(x) and math.isfinite(y)]
         c = s["colour"]
+        attrs = "".join(f' data-{k}="{e(str(v))}"' for k, v in s.get("group", {}).items())
+        if s.get("opacity") is not None:
+            attrs += f' opacity="{s["opacity"]}"'
+        out.append(f"<g{attrs}>")
         if s["kind"] == "line" and len(pts) >= 2:
+            dash = f' stroke-dasharray="{s["dash"]}"' if s.get("dash") else ""
             for seg in _segments(s["xy"], s.get("break_gap")):
                 path = " ".join(f"{sx(x):.1f},{sy(y):.1f}" for x, y in seg)
                 out.append(f'<polyline points="{path}" fill="none" stroke="{c}" '
-                           f'stroke-width="{s.get("width", 1.4)}"/>')
+                           f'stroke-width="{s.get("width", 1.4)}"{dash}/>')
         elif s["kind"] == "points":
             for x, y in pts:
-                out.append(_marker(s.get("marker", "dot"), x, y, c))
+                out.append(_marker(s.get("marker", "dot"), x, y, c, s.get("hollow", False)))
+        out.append("</g>")
     out.append("</g>")
     # The legend runs along the top margin, so it never hides a point.
     for r, row in enumerate(rows):
         x, y = float(left), 14.0 + 13 * r
         for s in row:
             if s["kind"] == "line":
+                dash = f' stroke-dasharray="{s["dash"]}"' if s.get("dash") else ""
                 out.append(f'<line x1="{x:.1f}" x2="{x + 14:.1f}" y1="{y - 4}" y2="{y - 4}" '
-                           f'stroke="{s["colour"]}" stroke-width="2"/>')
+                           f'stroke="{s["colour"]}" stroke-width="2"{dash}/>')
+                if s.get("marker"):
+                    out.append(_marker(s["marker"], x + 7, y - 4, s["colour"]))
             else:
-                out.append(_marker(s.get("marker", "dot"), x + 7, y - 4, s["colour"]))
+                mark = _marker(s.get("marker", "dot"), x + 7, y - 4, s["colour"],
+                               s.get("hollow", False))
+                if s.get("opacity") is not None:  # faded as the series is
+                    mark = f'<g opacity="{s["opacity"]}">{mark}</g>'
+                out.append(mark)
             out.append(f'<text x="{x + 18:.1f}" y="{y}">{e(s["label"])}</text>')
             x += _legend_width(s)
     out.append("</svg>")
@@ -188,61 +235,135 @@ def _segments(xy: Sequence[tuple], gap: float | None) -> list[list[tuple[float, 
     return [s for s in segs if len(s) >= 2]
 
 
-def _marker(kind: str, x: float, y: float, colour: str) -> str:
-    if kind == "cross":
+def _marker(kind: str, x: float, y: float, colour: str, hollow: bool = False) -> str:
+    """One marker centred on (x, y); ``hollow`` draws the filled shapes as outlines."""
+    fill = f'fill="none" stroke="{colour}" stroke-width="1.3"' if hollow else f'fill="{colour}"'
+    if kind in ("cross", "plus"):
         d = 3.5
-        return (f'<path d="M{x - d:.1f},{y - d:.1f}L{x + d:.1f},{y + d:.1f}M{x - d:.1f},'
-                f'{y + d:.1f}L{x + d:.1f},{y - d:.1f}" stroke="{colour}" stroke-width="1.6"/>')
+        if kind == "cross":
+            path = (f"M{x - d:.1f},{y - d:.1f}L{x + d:.1f},{y + d:.1f}"
+                    f"M{x - d:.1f},{y + d:.1f}L{x + d:.1f},{y - d:.1f}")
+        else:
+            d = 4.5
+            path = (f"M{x - d:.1f},{y:.1f}L{x + d:.1f},{y:.1f}"
+                    f"M{x:.1f},{y - d:.1f}L{x:.1f},{y + d:.1f}")
+        return f'<path d="{path}" fill="none" stroke="{colour}" stroke-width="1.6"/>'
     if kind == "ring":
         return (f'<circle cx="{x:.1f}" cy="{y:.1f}" r="5" fill="none" stroke="{colour}" '
                 'stroke-width="1.5"/>')
-    return f'<circle cx="{x:.1f}" cy="{y:.1f}" r="3" fill="{colour}"/>'
+    if kind == "triangle":  # circumradius 6, inradius 3: a dot of radius 3 fits inside
+        return (f'<path d="M{x:.1f},{y - 6:.1f}L{x + 5.2:.1f},{y + 3:.1f}L{x - 5.2:.1f},'
+                f'{y + 3:.1f}Z" {fill}/>')
+    if kind == "square":
+        return f'<rect x="{x - 3:.1f}" y="{y - 3:.1f}" width="6" height="6" {fill}/>'
+    if kind == "diamond":
+        return (f'<path d="M{x:.1f},{y - 4:.1f}L{x + 4:.1f},{y:.1f}L{x:.1f},{y + 4:.1f}L'
+                f'{x - 4:.1f},{y:.1f}Z" {fill}/>')
+    return f'<circle cx="{x:.1f}" cy="{y:.1f}" r="3" {fill}/>'
+
+
+def langley_residuals(view: Any) -> list[tuple[Any, float]]:
+    """Each drawn point of a session with its residual about the fitted line [ln V].
+
+    ``ln V - (ln V0 - tau x)`` at the point's abscissa ``x``; empty without a line.
+    """
+    if view.ln_v0 is None or view.tau is None:
+        return []
+    return [(p, p.ln_v - (view.ln_v0 - view.tau * p.pos_x)) for p in view.points
+            if p.ln_v is not None and p.pos_x is not None
+            and math.isfinite(p.pos_x) and math.isfinite(p.ln_v)]
+
+
+def _session_refused(v: Any) -> bool:
+    return v.stored is not None and not v.accepted
 
 
 def langley_svg(views: Sequence[Any], channel: str, wavelength_nm: float) -> str:
-    """Both sessions of one channel: points by role, the fitted lines back to m = 0."""
+    """Both sessions of one channel and, under them, the residuals about each fitted line.
+
+    Morning and afternoon differ in colour and in marker shape (:data:`SESSION_STYLE`);
+    a refused session is drawn with faded markers and a dashed line; screened points
+    are grey rings. The residual panel shares the air-mass axis: ln V minus the
+    session's fitted line, in ln V (a relative signal difference for small values).
+    """
     from daemon.commands.plot import EXCLUDED, REJECTED, USED
 
     series: list[dict[str, Any]] = []
+    resid: list[dict[str, Any]] = []
     excluded: list[list[tuple[float, float]]] = []
+    excluded_res: list[list[tuple[float, float]]] = []
     xs: list[float] = []
     ys: list[float] = []
+    res_fit: list[float] = []
     for v in views:
-        colour = SESSION_COLOURS.get(v.session, "#333")
+        colour, used_marker, hollow, rejected_marker = SESSION_STYLE.get(
+            v.session, ("#333333", "square", False, "cross"))
+        refused = _session_refused(v)
         pts = [p for p in v.points if p.ln_v is not None and p.pos_x is not None
                and math.isfinite(p.pos_x) and math.isfinite(p.ln_v)]
         xs += [p.pos_x for p in pts]
         ys += [p.ln_v for p in pts]
-        for role, marker, label in ((USED, "dot", f"{v.session} used"),
-                                    (REJECTED, "cross", f"{v.session} rejected")):
-            sel = [(p.pos_x, p.ln_v) for p in pts if p.role == role]
-            if sel:
-                series.append({"kind": "points", "xy": sel, "marker": marker, "colour": colour,
-                               "label": label})
+        res = {p.measurement_id: r for p, r in langley_residuals(v)}
+        tag = f"{v.session} (refused)" if refused else v.session
+        for role, marker, label in ((USED, used_marker, f"{tag} used"),
+                                    (REJECTED, rejected_marker, f"{tag} rejected")):
+            sel = [p for p in pts if p.role == role]
+            if not sel:
+                continue
+            style = {"kind": "points", "marker": marker, "colour": colour, "hollow": hollow,
+                     "opacity": REFUSED_OPACITY if refused else None,
+                     "group": {"session": v.session, "role": role,
+                               "accepted": "no" if refused else "yes"}}
+            series.append({**style, "xy": [(p.pos_x, p.ln_v) for p in sel], "label": label})
+            if res:
+                r = [(p.pos_x, res[p.measurement_id]) for p in sel]
+                res_fit += [y for _, y in r]
+                resid.append({**style, "xy": r, "label": None})
         # Screened points last: hollow rings on top stay visible over the other session.
         excluded.append([(p.pos_x, p.ln_v) for p in pts if p.role == EXCLUDED])
+        excluded_res.append([(p.pos_x, res[p.measurement_id]) for p in pts
+                             if p.role == EXCLUDED and p.measurement_id in res])
     if not xs:
         return "<p>No measurement with a positive signal.</p>"
     x_hi = math.ceil(2.0 * max(xs)) / 2.0
     for v in views:
-        if v.ln_v0 is not None:
+        if v.ln_v0 is not None and v.tau is not None:
             ys += [v.ln_v0, v.ln_v0 - v.tau * x_hi]
-            series.insert(0, {"kind": "line", "colour": SESSION_COLOURS.get(v.session, "#333"),
+            series.insert(0, {"kind": "line", "colour": SESSION_STYLE.get(v.session,
+                                                                          ("#333333",))[0],
                               "xy": [(0.0, v.ln_v0), (x_hi, v.ln_v0 - v.tau * x_hi)],
-                              "label": None, "width": 1.2})
+                              "label": None, "width": 1.2,
+                              "dash": REFUSED_DASH if _session_refused(v) else None,
+                              "group": {"session": v.session, "role": "fit line"}})
+    screened_style = {"kind": "points", "marker": "ring", "colour": EXCLUDED_COLOUR,
+                      "group": {"role": EXCLUDED}}
     rings = [xy for group in excluded for xy in group]
     if rings:
-        series.append({"kind": "points", "xy": rings, "marker": "ring",
-                       "colour": EXCLUDED_COLOUR, "label": "screened"})
+        series.append({**screened_style, "xy": rings, "label": "screened"})
+    rings_res = [xy for group in excluded_res for xy in group]
+    if rings_res:
+        resid.append({**screened_style, "xy": rings_res, "label": None})
     pad = 0.05 * (max(ys) - min(ys) or 1.0)
-    return svg_chart(series, (0.0, x_hi), (min(ys) - pad, max(ys) + pad), views[0].x_label,
-                     f"{views[0].y_label} [ln(V / 1 V)]",
-                     title=f"Langley plot, channel {channel} ({wavelength_nm:g} nm)")
+    x_label = views[0].x_label
+    title = f"Langley plot, channel {channel} ({wavelength_nm:g} nm)"
+    chart = svg_chart(series, (0.0, x_hi), (min(ys) - pad, max(ys) + pad), x_label,
+                      f"{views[0].y_label} [ln(V / 1 V)]", title=title)
+    if not resid:
+        return chart + "<p>No fitted line: no residuals to show.</p>"
+    # The residual axis is set by the points the fit saw (used and rejected); screened
+    # points far off are clipped at the panel's edge.
+    span = max([abs(y) for y in res_fit] + [1e-4]) * 1.15
+    resid.insert(0, {"kind": "line", "colour": "#888888", "xy": [(0.0, 0.0), (x_hi, 0.0)],
+                     "label": None, "width": 1.0})
+    return chart + svg_chart(resid, (0.0, x_hi), (-span, span), x_label,
+                             "residual [ln V]", title=f"Residuals, channel {channel}",
+                             height=150)
 
 
-def housekeeping_svg(rows: Sequence[dict], tz, keys: Sequence[tuple[str, str, str]],
+def housekeeping_svg(rows: Sequence[dict], tz, keys: Sequence[tuple[str, str, str, str]],
                      y_label: str, title: str) -> str:
-    """Housekeeping values against the site's local time of day."""
+    """Values against the site's local time of day: one line with its own colour and
+    marker per ``(key, label, colour, marker)`` of ``keys``; rows carry ``time_utc``."""
     from daemon.commands.status import parse_utc
 
     def hours(iso: str) -> float:
@@ -252,16 +373,17 @@ def housekeeping_svg(rows: Sequence[dict], tz, keys: Sequence[tuple[str, str, st
     series = []
     values = []
     times = [hours(r["time_utc"]) for r in rows]
-    for key, label, colour in keys:
-        xy = [(h, r[key]) for h, r in zip(times, rows, strict=True) if r[key] is not None]
+    for key, label, colour, marker in keys:
+        xy = [(h, r.get(key)) for h, r in zip(times, rows, strict=True)
+              if r.get(key) is not None]
         values += [y for _, y in xy]
         if xy:
             series.append({"kind": "line", "xy": xy, "colour": colour, "label": label,
-                           "break_gap": 1.0})
-            series.append({"kind": "points", "xy": xy, "colour": colour, "marker": "dot",
-                           "label": None})
+                           "break_gap": 1.0, "marker": marker, "group": {"series": key}})
+            series.append({"kind": "points", "xy": xy, "colour": colour, "marker": marker,
+                           "label": None, "group": {"series": key}})
     if not values:
-        return "<p>No housekeeping readings.</p>"
+        return "<p>No readings to draw.</p>"
     x0 = math.floor(min(times)) if times else 0.0
     x1 = math.ceil(max(times)) if times else 24.0
     if x1 <= x0:
@@ -289,9 +411,196 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[Any]],
             if isinstance(value, tuple):  # (text, css class)
                 cells.append(f'<td class="{value[1]}">{e(str(value[0]))}</td>')
             else:
-                cells.append(f'<td{" class=num" if num else ""}>{e(str(value))}</td>')
+                # Long text keeps a readable column width; the table's box scrolls instead.
+                css = " class=num" if num else " class=long" if len(str(value)) > 40 else ""
+                cells.append(f"<td{css}>{e(str(value))}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+    # Its own scroll box: a wide table scrolls sideways, never the page.
+    thead = f"<thead><tr>{head}</tr></thead>" if any(headers) else ""
+    return (f'<div class="scroll"><table>{thead}<tbody>{"".join(body)}</tbody></table>'
+            "</div>")
+
+
+def _stored_notes(conn, plan_date: str) -> dict[tuple[str, str], list[str]]:
+    """The fit notes of each stored (session, channel) result of the day.
+
+    A refused result's ``reasons`` carry its notes too (what the fit dropped or
+    assumed): the report shows them apart, so the reasons say only why it was refused.
+    """
+    import json
+    import sqlite3
+
+    try:
+        rows = conn.execute("SELECT session, channel, notes FROM session_results "
+                            "WHERE plan_date = ?", (plan_date,)).fetchall()
+    except sqlite3.OperationalError:  # a store older than the notes column
+        return {}
+    out = {}
+    for session, channel, notes in rows:
+        try:
+            out[(session, channel)] = [str(n) for n in json.loads(notes or "[]")]
+        except (TypeError, ValueError):
+            out[(session, channel)] = []
+    return out
+
+
+def _reasons_only(reasons: Sequence[str], notes: Sequence[str]) -> list[str]:
+    return [r for r in reasons if r not in notes]
+
+
+def _v0_1au_text(stored: dict | None) -> str | None:
+    """'V0 at 1 AU 2.45012 +/- 0.00123 V (0.050 %)': the results table's quantity."""
+    if not stored or stored.get("v0_1au") is None:
+        return None
+    v0, rel = stored["v0_1au"], stored.get("v0_rel_unc")
+    if rel is None:
+        return f"V0 at 1 AU {v0:.5f} V (no uncertainty)"
+    return f"V0 at 1 AU {v0:.5f} ± {v0 * rel:.5f} V ({100 * rel:.3f} %)"
+
+
+def _caption(ch, vs: Sequence[Any], notes: dict) -> str:
+    e = html.escape
+    lines = []
+    for v in vs:
+        stored = v.stored
+        text = _v0_1au_text(stored) or "no stored V0"
+        if v.tau is not None and v.tau_is_optical_depth:
+            text += f", tau {v.tau:.4f}"
+        text += f", {v.n_used}/{len(v.points)} points used"
+        fit_notes = notes.get((v.session, ch.name), [])
+        if stored is not None and not v.accepted:
+            why = _reasons_only(v.reasons, fit_notes)
+            line = (f'<span class="refused">{e(v.session)} refused (dashed line, faded '
+                    f"markers)</span>: {e(text)}" + (f"; why: {e('; '.join(why))}" if why else ""))
+        else:
+            line = f"{e(v.session)}: {e(text)}"
+        every = list(fit_notes) + [n for n in v.notes if n not in fit_notes]
+        if every:
+            line += "<br>notes: " + e("; ".join(every))
+        lines.append(f"<li>{line}</li>")
+    return (f"Channel {e(ch.name)} ({ch.wavelength_nm:g} nm), residuals below"
+            + (f"<ul>{''.join(lines)}</ul>" if lines else ""))
+
+
+def _calibration_section(cal: dict | None, plan_date: str, db: str | Path, tz) -> list[str]:
+    from daemon.commands.status import utc_local
+    from daemon.commands.tables import fmt
+
+    e = html.escape
+    parts = ["<h2>Calibration</h2>"]
+    if cal is None:
+        parts.append(f"<p>No calibration in this store yet, so no aerosol optical depth. "
+                     f"Run <code>heliotrope calibrate --from D1 --to D2 --db "
+                     f"{e(str(db))}</code> over a campaign of clear days (see the README, "
+                     f"\"The calibration engine\").</p>")
+        return parts
+    inside = cal["from"] <= plan_date <= cal["to"]
+    parts.append(f'<p class="meta">Latest calibration (number {cal["id"]}), made '
+                 f"{e(utc_local(cal['created_utc'], tz))} from the accepted sessions of "
+                 f"{e(cal['from'])} to {e(cal['to'])}"
+                 f"{' (this date is in the campaign)' if inside else ''}. V0 at 1 AU is the "
+                 "mean of the sessions kept, its uncertainty the standard error; drift is "
+                 "the trend of the session V0 over the campaign.</p>")
+    rows = []
+    for c in cal["channels"]:
+        kept = None if c["n_sessions"] is None else c["n_sessions"] - (c["n_flagged"] or 0)
+        drift = ("-" if c["drift_pct_per_year"] is None else
+                 f"{c['drift_pct_per_year']:+.2f} ± {fmt(c['drift_unc_pct_per_year'], '.2f')}")
+        rows.append([c["channel"], fmt(c["wavelength_nm"], "g"), fmt(c["v0_1au"], ".5f"),
+                     fmt(c["v0_1au_unc"], ".5f"), fmt(c["repeatability_pct"], ".3f"),
+                     f"{fmt(kept, 'd')}/{fmt(c['n_sessions'], 'd')}", drift,
+                     ("yes", "yes") if c["usable"] else ("no", "no"),
+                     "; ".join(c["reasons"])])
+    parts.append(_table(["channel", "nm", "V0 at 1 AU [V]", "unc [V]", "repeatability [%]",
+                         "sessions kept", "drift [%/year]", "usable", "why not"], rows,
+                        [False, True, True, True, True, True, True]))
+    sessions = sorted({(s["date"], s["session"]) for c in cal["channels"]
+                       for s in c["sessions"]})
+    if sessions:
+        names = [c["channel"] for c in cal["channels"]]
+        dev = {(c["channel"], s["date"], s["session"]): s for c in cal["channels"]
+               for s in c["sessions"]}
+        srows = []
+        for d, sess in sessions:
+            row: list[Any] = [d, sess]
+            for n in names:
+                entry = dev.get((n, d, sess))
+                if entry is None:
+                    row.append("")
+                elif entry.get("flagged"):
+                    row.append((f"{fmt(entry.get('deviation_pct'), '+.2f')} flagged", "no"))
+                else:
+                    row.append(fmt(entry.get("deviation_pct"), "+.2f"))
+            srows.append(row)
+        parts.append("<p>Campaign sessions: each session's V0 at 1 AU against the "
+                     "calibration's, in percent; flagged sessions were left out.</p>")
+        parts.append(_table(["date", "session", *names], srows,
+                            [False, False] + [True] * len(names)))
+    for n in cal["notes"]:
+        parts.append(f"<p>{e(n)}</p>")
+    return parts
+
+
+def _aod_section(rows: list[dict], tz, cal: dict | None) -> list[str]:
+    from daemon.commands.tables import fmt
+
+    e = html.escape
+    parts = ["<h2>Aerosol optical depth</h2>"]
+    if not rows:
+        parts.append("<p>No aerosol optical depth for this date: "
+                     + ("there is no calibration yet (see above)." if cal is None else
+                        "the store has none for it (run <code>heliotrope calibrate</code> "
+                        "over a range that includes this date to compute it).") + "</p>")
+        return parts
+    by_channel: dict[str, list[dict]] = {}
+    for r in rows:
+        by_channel.setdefault(r["channel"], []).append(r)
+    order = sorted(by_channel, key=lambda c: by_channel[c][0]["wavelength_nm"])
+    table = []
+    for name in order:
+        rs = by_channel[name]
+        clean = [r["aod"] for r in rs if r["flag"] is None and r["aod"] is not None]
+        unc = [r["aod_unc"] for r in rs if r["flag"] is None and r["aod_unc"] is not None]
+        table.append([name, fmt(rs[0]["wavelength_nm"], "g"), str(len(clean)),
+                      str(len(rs) - len(clean)),
+                      fmt(math.fsum(clean) / len(clean) if clean else None, ".4f"),
+                      fmt(min(clean) if clean else None, ".4f"),
+                      fmt(max(clean) if clean else None, ".4f"),
+                      fmt(math.fsum(unc) / len(unc) if unc else None, ".4f")])
+    parts.append(f'<p class="meta">From calibration number {rows[0]["calibration_id"]}: '
+                 "total optical depth minus Rayleigh and ozone, per measurement. Flagged "
+                 "values (doubtful, for example a burst too variable for clear sky) are "
+                 "counted but left out of the means and the chart.</p>")
+    parts.append(_table(["channel", "nm", "values", "flagged", "mean AOD", "min", "max",
+                         "mean unc"], table, [False, True, True, True, True, True, True, True]))
+    alphas = {r["measurement_id"]: (r["angstrom_alpha"], r["angstrom_channels"]) for r in rows
+              if r["angstrom_alpha"] is not None}
+    if alphas:
+        values = [a for a, _ in alphas.values()]
+        pair = next(iter(alphas.values()))[1]
+        mean = math.fsum(values) / len(values)
+        sd = (math.sqrt(math.fsum((a - mean) ** 2 for a in values) / (len(values) - 1))
+              if len(values) > 1 else None)
+        parts.append(f"<p>Angstrom exponent ({e(' / '.join(pair or []))} nm pair): mean "
+                     f"{mean:.3f}, standard deviation {fmt(sd, '.3f')}, over {len(values)} "
+                     "measurements.</p>")
+    else:
+        parts.append("<p>No Angstrom exponent: no measurement has both channels of the "
+                     "pair unflagged and positive.</p>")
+    pivot: dict[int, dict[str, Any]] = {}
+    for r in rows:
+        if r["flag"] is None and r["aod"] is not None:
+            pivot.setdefault(r["measurement_id"], {"time_utc": r["time_utc"]})[r["channel"]] = \
+                r["aod"]
+    keys = [(name, f"{name} nm", *CHANNEL_STYLES[i % len(CHANNEL_STYLES)])
+            for i, name in enumerate(order)]
+    parts.append('<div class="charts wide"><figure>'
+                 + housekeeping_svg(sorted(pivot.values(), key=lambda r: r["time_utc"]), tz,
+                                    keys, "aerosol optical depth [1]",
+                                    "Aerosol optical depth through the day")
+                 + "<figcaption>Aerosol optical depth of each unflagged measurement, per "
+                   "channel</figcaption></figure></div>")
+    return parts
 
 
 def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> str:
@@ -300,11 +609,13 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
     from daemon.commands.status import site_zone, software_version, utc_local
     from daemon.commands.tables import fmt
     from daemon.store.reader import (
+        aod_between,
         day_housekeeping,
         day_measurements,
         events_between,
         open_readonly,
         results_between,
+        stored_calibration,
         stored_plan,
     )
 
@@ -314,6 +625,7 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         tz = site_zone(plan.get("timezone") or config.site.timezone)
         site = plan.get("site_name") or config.site.name
         results = results_between(conn, plan_date, plan_date)
+        notes = _stored_notes(conn, plan_date)
         measurements = day_measurements(conn, plan_date)
         hk = day_housekeeping(conn, plan_date)
         d = _dt.date.fromisoformat(plan_date)
@@ -324,6 +636,8 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
                                 end.astimezone(_dt.UTC).isoformat())
         views = {ch.name: [langley_view(conn, config, plan_date, s, ch.name)
                            for s in ("am", "pm")] for ch in config.channels}
+        calibration = stored_calibration(conn)
+        aod = list(aod_between(conn, plan_date, plan_date))
     finally:
         conn.close()
 
@@ -340,6 +654,8 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         ["measurements", f"{ok} ok, {failed} failed"],
         ["session fits accepted", f"{accepted} of {len(results)}"],
         ["fault events", str(len(faults))],
+        ["calibration", "none yet" if calibration is None else
+         f"number {calibration['id']}, {calibration['from']} to {calibration['to']}"],
     ]
     if plan.get("sunrise_utc"):
         summary_rows.append(["sunrise, sunset", f"{utc_local(plan['sunrise_utc'], tz, False)}, "
@@ -354,7 +670,7 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         f"{e(software_version())} from {e(str(db))}. Times are UTC with the local time "
         f"({e(tz.key)}) beside them. Results are preliminary session fits.</p>",
         "<h2>Summary</h2>", '<div class="summary">',
-        _table(["", ""], summary_rows).replace("<thead><tr><th></th><th></th></tr></thead>", ""),
+        _table(["", ""], summary_rows),
         "</div>",
         "<h2>Session results</h2>",
     ]
@@ -362,47 +678,49 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         rows = []
         for r in results:
             unc = None if r["v0_rel_unc"] is None else 100 * r["v0_rel_unc"]
+            fit_notes = notes.get((r["session"], r["channel"]), [])
             rows.append([r["session"], r["channel"], fmt(r["wavelength_nm"], "g"),
                          fmt(r["v0_1au"], ".5f"), fmt(unc, ".3f"), fmt(r["tau"], ".4f"),
                          f"{r['n_used']}/{r['n_total']}",
                          ("yes", "yes") if r["accepted"] else ("no", "no"),
-                         "; ".join(r["reasons"])])
+                         "; ".join(_reasons_only(r["reasons"], fit_notes)),
+                         "; ".join(fit_notes)])
         parts.append(_table(["session", "channel", "nm", "V0 at 1 AU [V]", "unc [%]", "tau",
-                             "used", "accepted", "why not"], rows,
+                             "used", "accepted", "why not", "notes"], rows,
                             [False, False, True, True, True, True, True]))
     else:
         parts.append("<p>No session results for this date.</p>")
     parts.append("<h2>Langley plots</h2>")
     parts.append('<p class="meta">ln V against air mass, as the session fit used it (dark, '
-                 "temperature, ozone and pressure corrected); filled dots are in the fit, "
-                 "crosses were rejected by it, grey rings were screened out (no lock, "
-                 "saturated, cloudy) or lie outside the fit window. Lines: the stored session "
-                 "fits, extrapolated to air mass zero. A session fitted before the store kept "
-                 "the fit's points is marked by fitting it again, and says so below its "
-                 "plot.</p>")
+                 "temperature, ozone and pressure corrected). Morning: blue dots, afternoon: "
+                 "open vermillion triangles (a morning dot at the same air mass shows inside "
+                 "them); both are in the fit. Crosses (morning) and plus signs (afternoon) "
+                 "were rejected by it, grey rings were screened out (no lock, saturated, "
+                 "cloudy) or lie outside the fit window. A refused session has faded "
+                 "markers and a dashed line. Lines: the stored session "
+                 "fits, extrapolated to air mass zero (V0 at the day's Earth-Sun distance; "
+                 "the captions give V0 at 1 AU, as the table). Under each plot, the "
+                 "residuals about its session's line. A session fitted before the store "
+                 "kept the fit's points is marked by fitting it again, and says so below "
+                 "its plot.</p>")
     parts.append('<div class="charts">')
     for ch in config.channels:
         vs = [v for v in views[ch.name] if v.points]
-        notes = [f"{v.session}: {n}" for v in vs for n in v.notes]
-        caption = f"Channel {ch.name} ({ch.wavelength_nm:g} nm)"
-        for v in vs:
-            if v.v0 is not None:
-                caption += (f"; {v.session} V0 {v.v0:.5f} V"
-                            + (f", tau {v.tau:.4f}" if v.tau is not None
-                               and v.tau_is_optical_depth else ""))
         parts.append(f"<figure>{langley_svg(vs, ch.name, ch.wavelength_nm) if vs else ''}"
-                     f"<figcaption>{e(caption)}"
-                     + "".join(f"<br>{e(n)}" for n in notes) + "</figcaption></figure>")
+                     f"<figcaption>{_caption(ch, vs, notes)}</figcaption></figure>")
     parts.append("</div>")
+    parts += _calibration_section(calibration, plan_date, db, tz)
+    parts += _aod_section(aod, tz, calibration)
     parts.append("<h2>Housekeeping through the day</h2>")
     parts.append('<div class="charts wide">')
     parts.append("<figure>" + housekeeping_svg(hk, tz, HK_SERIES, "temperature [°C]",
                                                "Housekeeping temperatures")
                  + "<figcaption>Detector, case and ambient temperature at each "
                    "measurement</figcaption></figure>")
-    parts.append("<figure>" + housekeeping_svg(hk, tz, (("supply_v", "supply", "#4d4d4d"),),
-                                               "supply [V]", "Supply voltage")
-                 + "<figcaption>Supply voltage at each measurement</figcaption></figure>")
+    parts.append("<figure>" + housekeeping_svg(
+        hk, tz, (("supply_v", "supply", OKABE_ITO["black"], "dot"),), "supply [V]",
+        "Supply voltage") + "<figcaption>Supply voltage at each measurement</figcaption>"
+        "</figure>")
     parts.append("</div>")
     parts.append("<h2>Events</h2>")
     if events:
