@@ -5,7 +5,9 @@
 The files live in the directory BACKING, which plays the disk's platters. A write
 lands in this process's memory (every read sees it at once, as from a page cache) and
 reaches the backing file only when the file is fsynced. On the word ``cut`` on
-standard input, the power goes: every write not yet fsynced is dropped (``cut torn
+standard input (or, after ``arm OP SUFFIX COUNT [SEED]``, at the COUNT-th ``write`` or
+``fsync`` of a file whose name ends in SUFFIX, before it does anything: a cut inside a
+WAL append or its sync), the power goes: every write not yet fsynced is dropped (``cut torn
 SEED`` instead keeps a random half of its 512-byte sectors, as a disk that wrote some
 of its cache on its own), every later operation fails with EIO, and the process
 answers ``cut N`` with the number of sectors it dropped. Unmount it then
@@ -25,6 +27,7 @@ from __future__ import annotations
 import argparse
 import errno
 import os
+import queue
 import random
 import shutil
 import subprocess
@@ -34,6 +37,7 @@ import time
 from contextlib import suppress
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import IO
 
 try:
     import mfusepy as fuse
@@ -69,6 +73,9 @@ class PowercutFS(fuse.Operations if fuse else object):
         self.next_fh = 1
         self.mutex = threading.RLock()
         self.power = True
+        # An armed cut: (operation, file-name suffix, operations left, torn seed).
+        self.armed: tuple[str, str, int, int | None] | None = None
+        self.say = print
         self.synced_sectors = 0
 
     # ----------------------------------------------------------------- helpers
@@ -255,9 +262,25 @@ class PowercutFS(fuse.Operations if fuse else object):
             f = self.handles[fh]
             return bytes(f.data[offset:offset + size])
 
+    def arm(self, op: str, suffix: str, count: int, torn_seed: int | None) -> None:
+        """Cut the power at the ``count``-th ``op`` ('write' or 'fsync') on a file whose
+        name ends in ``suffix``, before that operation does anything."""
+        with self.mutex:
+            self.armed = (op, suffix, count, torn_seed)
+
+    def _trip(self, op: str, path: str) -> None:
+        if self.armed is None or self.armed[0] != op or not path.endswith(self.armed[1]):
+            return
+        _, suffix, left, seed = self.armed
+        self.armed = (op, suffix, left - 1, seed) if left > 1 else None
+        if left == 1:
+            self.say(f"cut {self.cut(seed)} at {op} {path}", flush=True)
+            raise fuse.FuseOSError(errno.EIO)
+
     def write(self, path, data, offset, fh):
         with self.mutex:
             self._alive()
+            self._trip("write", path)
             f = self.handles[fh]
             grow = max(0, offset + len(data) - len(f.data))
             if self.cap is not None and grow and self._used() + grow > self.cap:
@@ -285,6 +308,7 @@ class PowercutFS(fuse.Operations if fuse else object):
     def fsync(self, path, datasync, fh):
         with self.mutex:
             self._alive()
+            self._trip("fsync", path)
             f = self.handles[fh]
             if f.pending and f.backing is not None:
                 self._to_disk(f.backing, f.pending)
@@ -316,6 +340,10 @@ def _control(fs: PowercutFS) -> None:
         if words[:1] == ["cut"]:
             seed = int(words[2]) if words[1:2] == ["torn"] else None
             print(f"cut {fs.cut(seed)}", flush=True)
+        elif words[:1] == ["arm"]:  # arm OP SUFFIX COUNT [SEED]
+            fs.arm(words[1], words[2], int(words[3]),
+                   int(words[4]) if len(words) > 4 else None)
+            print("armed", flush=True)
         elif words[:1] == ["synced"]:
             print(f"synced {fs.synced_sectors}", flush=True)
 
@@ -342,6 +370,15 @@ def why_not_mountable() -> str:
     return ""
 
 
+GUARD_S = 120.0
+
+
+def _pump(stream: IO[str], lines: queue.Queue) -> None:
+    for line in stream:
+        lines.put(line.strip())
+    lines.put("")  # the process ended
+
+
 class Disk:
     """The test's handle on one mount of the file system over ``backing``.
 
@@ -366,7 +403,11 @@ class Disk:
             self.proc = subprocess.Popen(cmd, cwd=Path(__file__).resolve().parent.parent,
                                          stdin=subprocess.PIPE, stdout=subprocess.PIPE,
                                          stderr=err, text=True)
-        line = self.proc.stdout.readline().strip()
+        self.lines: queue.Queue[str] = queue.Queue()
+        self.pump = threading.Thread(target=_pump, args=(self.proc.stdout, self.lines),
+                                     daemon=True)
+        self.pump.start()
+        line = self._line()
         if line != "mounted":
             self.unmount()
             err = self.log.read_text().strip().splitlines()
@@ -377,12 +418,32 @@ class Disk:
     def ask(self, words: str) -> str:
         self.proc.stdin.write(words + "\n")
         self.proc.stdin.flush()
-        return self.proc.stdout.readline().strip()
+        return self._line()
 
     def cut(self, torn_seed: int | None = None) -> int:
         """Drop (or with ``torn_seed`` tear) what was not synced; return sectors dropped."""
         answer = self.ask("cut" if torn_seed is None else f"cut torn {torn_seed}")
         return int(answer.split()[1])
+
+    def arm(self, op: str, suffix: str, count: int, torn_seed: int | None = None) -> None:
+        """Cut the power at the ``count``-th ``op`` on a file ending in ``suffix``."""
+        assert self.ask(f"arm {op} {suffix} {count}"
+                        + ("" if torn_seed is None else f" {torn_seed}")) == "armed"
+
+    def wait_cut(self) -> tuple[int, str]:
+        """Wait for an armed cut to fire; (sectors dropped, where)."""
+        words = self._line().split()
+        assert words[:1] == ["cut"], words
+        return int(words[1]), " ".join(words[3:])
+
+    def _line(self) -> str:
+        """The file system's next line. The guard only keeps a test whose file system
+        stopped answering from stalling the suite; it measures nothing."""
+        try:
+            return self.lines.get(timeout=GUARD_S)
+        except queue.Empty:
+            raise AssertionError(f"the power-cut file system said nothing for {GUARD_S:g} s; "
+                                 f"see {self.log}") from None
 
     def unmount(self) -> None:
         if self.proc is None:
@@ -400,6 +461,7 @@ class Disk:
         except subprocess.TimeoutExpired:
             self.proc.kill()
             self.proc.wait()
+        self.pump.join(timeout=GUARD_S)  # it ends at the process's end of output
         self.proc.stdout.close()
 
     def __enter__(self) -> Disk:

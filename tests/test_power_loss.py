@@ -6,8 +6,9 @@ file system that holds written data in memory until it is fsynced and drops it (
 tears it, sector by sector) when the "power" is cut. First the file system is shown
 to do that (its own tests, and SQLite at ``synchronous=OFF`` and ``NORMAL`` losing
 acknowledged commits on it); then the service's writer stores measurements, events,
-plans and session results on it, the power is cut at random moments, and after each
-remount the store passes the kill test's audit.
+plans and session results on it, the power is cut at random moments and exactly
+inside the WAL's appends and fsyncs, and after each remount the store passes the kill
+test's audit.
 
 Sources: SQLite's documentation of ``PRAGMA synchronous``
 (https://www.sqlite.org/pragma.html#pragma_synchronous: in WAL mode FULL syncs the WAL
@@ -102,6 +103,19 @@ def test_a_torn_cut_keeps_some_unsynced_sectors_and_every_synced_one(disk):
     assert sectors.count(b"S" * SECTOR) == dropped
 
 
+def test_an_armed_cut_fires_at_the_chosen_fsync_before_it_syncs(disk):
+    f = disk.mountpoint / "log"
+    disk.arm("fsync", "/log", 2)
+    _write(f, b"first", sync=True)          # the first fsync goes through
+    with pytest.raises(OSError) as err:
+        _write(f, b"second", sync=True, offset=5)  # the power goes inside the second
+    assert err.value.errno == errno.EIO
+    dropped, where = disk.wait_cut()
+    assert (dropped, where) == (1, "fsync /log")
+    disk.unmount()
+    assert (disk.backing / "log").read_bytes() == b"first"
+
+
 def test_names_and_synced_data_come_back_on_the_next_mount(tmp_path):
     with _disk_or_skip(tmp_path) as d:
         (d.mountpoint / "dir").mkdir()
@@ -182,38 +196,70 @@ def test_the_store_syncs_every_commit(disk):
         store.close()
 
 
+def _reopen(tmp_path: Path, k: int, committed: Committed, before: dict) -> Disk:
+    """Mount again after a cut (the first time: mount, or skip without FUSE) and audit
+    the store as the next start of the service would find it."""
+    if k == 0:
+        return _disk_or_skip(tmp_path)
+    d = Disk(tmp_path / "backing", tmp_path / "m").mount()
+    counts = audit(d.mountpoint / "h.db", committed, SAMPLES_PER_OK)
+    assert all(counts[t] >= n for t, n in before.items()), (before, counts)
+    before.update(counts)
+    return d
+
+
+def _writer(db: Path, first: date) -> subprocess.Popen:
+    child = subprocess.Popen(
+        [sys.executable, "-m", "tests.kill_child", str(db), first.isoformat()],
+        cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    assert child.stdout.readline().strip() == "ready"
+    return child
+
+
+@pytest.mark.slow
+def test_cuts_inside_wal_appends_and_wal_syncs_lose_nothing_reported(tmp_path):
+    # Where the kill test can only hope to land: inside the WAL append of a commit, or
+    # inside the fsync that makes it durable (https://www.sqlite.org/wal.html: a
+    # commit is durable once its frames and the commit frame are synced).
+    rng = random.Random(20271218)
+    committed, before, fired = Committed(), {}, []
+    for k in range(CUTS):
+        d = _reopen(tmp_path, k, committed, before)
+        try:
+            child = _writer(d.mountpoint / "h.db", date(2027, 5, 1) + timedelta(days=3 * k))
+            op = ("write", "fsync")[k % 2]
+            d.arm(op, "h.db-wal", rng.randint(1, 40), torn_seed=k if k % 4 >= 2 else None)
+            fired.append(d.wait_cut()[1])
+            child.kill()
+            committed.add(child.communicate(timeout=30)[0])
+        finally:
+            d.unmount()
+    with Disk(tmp_path / "backing", tmp_path / "m").mount() as d:
+        audit(d.mountpoint / "h.db", committed, SAMPLES_PER_OK)
+    assert sorted(set(fired)) == ["fsync /h.db-wal", "write /h.db-wal"]
+    assert len(committed.measurements) > CUTS
+
+
 @pytest.mark.slow
 def test_power_cuts_lose_nothing_the_writer_reported_committed(tmp_path):
     rng = random.Random(20271217)
-    committed = Committed()
-    before: dict[str, int] = {}
-    backing, mountpoint = tmp_path / "backing", tmp_path / "m"
+    committed, before = Committed(), {}
     dropped_total = 0
     for k in range(CUTS):
-        d = _disk_or_skip(tmp_path) if k == 0 else Disk(backing, mountpoint).mount()
+        d = _reopen(tmp_path, k, committed, before)
         try:
-            if k:  # the power is back: the store as the next start of the service finds it
-                counts = audit(mountpoint / "h.db", committed, SAMPLES_PER_OK)
-                assert all(counts[t] >= n for t, n in before.items()), (before, counts)
-                before = counts
-            child = subprocess.Popen(
-                [sys.executable, "-m", "tests.kill_child", str(mountpoint / "h.db"),
-                 (date(2027, 3, 1) + timedelta(days=3 * k)).isoformat()],
-                cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
-            assert child.stdout.readline().strip() == "ready"
+            child = _writer(d.mountpoint / "h.db", date(2027, 3, 1) + timedelta(days=3 * k))
             time.sleep(rng.uniform(0.3, 2.5))
             # The power goes: the disk first (nothing more reaches it), then the
             # process, which can no longer say anything it had not said before.
             dropped_total += d.cut(torn_seed=k if k % 2 else None)
             child.kill()
-            out, _ = child.communicate(timeout=30)
-            committed.add(out)
+            committed.add(child.communicate(timeout=30)[0])
         finally:
             d.unmount()
-    with Disk(backing, mountpoint).mount():
-        counts = audit(mountpoint / "h.db", committed, SAMPLES_PER_OK)
+    with Disk(tmp_path / "backing", tmp_path / "m").mount() as d:
+        counts = audit(d.mountpoint / "h.db", committed, SAMPLES_PER_OK)
     assert counts["measurements"] >= len(committed.measurements) > CUTS
     assert committed.plans and committed.results and committed.events
     # The cuts did fall on unsynced writes (else this test would prove nothing).
     assert dropped_total > 0
-    print(f"{CUTS} cuts, {dropped_total} unsynced sectors dropped or torn, store: {counts}")
