@@ -67,12 +67,18 @@ def test_a_directory_is_refused(tmp_path, capsys):
     assert "is a directory, not a readings file" in capsys.readouterr().err
 
 
-def test_an_unreadable_file_is_refused(tmp_path, capsys):
+def test_an_unreadable_file_is_refused(tmp_path, capsys, monkeypatch):
     path = tmp_path / "r.csv"
     path.write_text(HEAD + GOOD)
     path.chmod(0)
-    if os.access(path, os.R_OK):
-        pytest.skip("running as root: a mode-000 file is still readable")
+    if os.access(path, os.R_OK):  # root reads a mode-000 file: refuse as the kernel would
+        real_open = os.open
+
+        def refused(name, *args, **kwargs):
+            if Path(name) == path:
+                raise PermissionError(13, "Permission denied", str(path))
+            return real_open(name, *args, **kwargs)
+        monkeypatch.setattr(os, "open", refused)
     assert main(["refit", "--config", str(CONFIG_PATH), "--csv", str(path)]) == 66
     assert "permission denied" in capsys.readouterr().err
 

@@ -15,6 +15,10 @@ and the Earth-Sun factor are computed from the configuration's site
 afternoon by the local apparent solar time, and every group is fitted exactly as
 the service fits a stored session (:func:`daemon.science.sessionfit.fit_series`).
 
+Only a regular file is read (:func:`open_regular`; a FIFO or a device raises
+:class:`RefitInputError`), line by line with each line bounded
+(:data:`MAX_LINE_CHARS`); the checked readings are held in columns
+(:class:`Readings`, at most :data:`MAX_READINGS`) and fitted one local date at a time.
 A malformed file raises :class:`RefitError` naming the line and what is wrong.
 Values the fit can judge (NaN, zero or negative signals, the sun below the
 horizon, a single point) are not errors: they become reasons in the results.
@@ -31,7 +35,6 @@ import os
 import re
 import stat
 from collections.abc import Iterable, Iterator
-from dataclasses import dataclass
 from pathlib import Path
 from typing import IO, Any
 
@@ -74,19 +77,9 @@ class RefitInputError(RefitError):
     """The readings path is not a regular file that can be read (exit 66, not 65)."""
 
 
-@dataclass(frozen=True)
-class Reading:
-    line: int
-    time_utc: _dt.datetime
-    channel: str
-    signal_v: float
-    pressure_hpa: float
-    detector_temp_c: float
-
-
 class Readings:
-    """Checked readings held in columns: a million take about 50 MB, not a Python
-    object each. Iterating gives :class:`Reading` objects, in file order."""
+    """Checked readings held in columns, in file order: a million take about 50 MB,
+    not a Python object each."""
 
     def __init__(self, channels: tuple[str, ...]):
         self.channels = channels
@@ -108,12 +101,6 @@ class Readings:
 
     def __len__(self) -> int:
         return len(self.line)
-
-    def __iter__(self) -> Iterator[Reading]:
-        for i in range(len(self)):
-            yield Reading(self.line[i], _EPOCH + self.time_us[i] * _US,
-                          self.channels[self.channel[i]], self.signal_v[i],
-                          self.pressure_hpa[i], self.detector_temp_c[i])
 
     def columns(self) -> dict[str, np.ndarray]:
         return {name: np.frombuffer(getattr(self, name), dtype=dtype) for name, dtype in (
@@ -308,7 +295,7 @@ def _refuse_repeats(readings: Readings, source: str) -> None:
                      f"{int(line[j])}); remove one of them")
 
 
-def refit_readings(readings: Readings | Iterable[Reading], config: Config) -> dict[str, Any]:
+def refit_readings(readings: Readings, config: Config) -> dict[str, Any]:
     """Fit every (plan date, session) group of the readings, one local date at a time
     (the solar position and the series of one date are all that is held beside the
     readings' columns).
@@ -321,8 +308,6 @@ def refit_readings(readings: Readings | Iterable[Reading], config: Config) -> di
         ``notes``, ``tau_aerosol``, ``tau_rayleigh``, ``tau_ozone``, ``residual_sd``,
         ``e0_1au_w_m2_nm`` and ``astm_ratio``; ``readings``: how many were read.
     """
-    if not isinstance(readings, Readings):
-        readings = _as_columns(readings, config)
     c = readings.columns()
     order = np.argsort(c["time_us"], kind="stable")
     t_sorted = c["time_us"][order]
@@ -385,15 +370,6 @@ def _fit_date(c: dict[str, np.ndarray], rows: np.ndarray, times_us: np.ndarray, 
                 hours=c["time_us"][r] / 3.6e9)
         fits[session] = fit_series(series, config, date, session)
     return fits
-
-
-def _as_columns(readings: Iterable[Reading], config: Config) -> Readings:
-    names = tuple(c.name for c in config.channels)
-    out = Readings(names)
-    for r in readings:
-        out.append(r.line, (r.time_utc.astimezone(_dt.UTC) - _EPOCH) // _US,
-                   names.index(r.channel), r.signal_v, r.pressure_hpa, r.detector_temp_c)
-    return out
 
 
 _KINDS = ((stat.S_ISDIR, "a directory"), (stat.S_ISFIFO, "a named pipe (FIFO)"),
