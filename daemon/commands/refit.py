@@ -315,15 +315,15 @@ def refit_readings(readings: Readings, config: Config) -> dict[str, Any]:
     tz = config.tz
     local_date = np.array([(_EPOCH + int(us) * _US).astimezone(tz).date().toordinal()
                            for us in times_us], dtype=np.int64)
-    # Rows are in time order, so each local date is one slice of ``order``.
-    bounds = np.append(first_row, t_sorted.size)
-    cuts = np.flatnonzero(np.diff(local_date)) + 1
+    # The local date of each row of ``order`` (a date need not be one stretch of time:
+    # a zone may fall back across midnight).
+    row_date = np.repeat(local_date, np.diff(np.append(first_row, t_sorted.size)))
     results: list[dict[str, Any]] = []
     details: list[dict[str, Any]] = []
-    for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, times_us.size], strict=True):
-        date = _dt.date.fromordinal(int(local_date[lo])).isoformat()
-        rows = order[bounds[lo]:bounds[hi]]
-        day = _fit_date(c, rows, times_us[lo:hi], date, config)
+    for ordinal in np.unique(local_date):
+        date = _dt.date.fromordinal(int(ordinal)).isoformat()
+        day = _fit_date(c, order[row_date == ordinal], times_us[local_date == ordinal],
+                        date, config)
         contract = {session: [result_contract(row) for row in day.get(session, ())]
                     for session in ("am", "pm")}
         apply_day_check(contract["am"], contract["pm"], config.fit)
@@ -338,7 +338,7 @@ def refit_readings(readings: Readings, config: Config) -> dict[str, Any]:
 def _fit_date(c: dict[str, np.ndarray], rows: np.ndarray, times_us: np.ndarray, date: str,
               config: Config) -> dict[str, list[dict]]:
     """The session fits of one local date: ``rows`` index the columns ``c`` in time
-    order, ``times_us`` are that date's distinct instants."""
+    order, ``times_us`` are that date's distinct instants, sorted."""
     times = [_EPOCH + int(us) * _US for us in times_us]
     pos = solar.sun_position(times, config.site)
     zenith = np.asarray(pos.apparent_zenith_deg, dtype=float)
