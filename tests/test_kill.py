@@ -35,9 +35,11 @@ SERIAL_KILLS = 12
 SAMPLES_PER_OK = 6 * (10 + 5)  # six channels, burst of 10 and dark of 5 (pico-sereno.yaml)
 
 
-def kill_rounds(db: Path, rounds: int, delay_s: tuple[float, float], seed: int,
+def kill_rounds(db: Path, rounds: int, reports: tuple[int, int], seed: int,
                 urls: list[str] = (), log: Path | None = None) -> Committed:
-    """Start the child, let it write for a random while, SIGKILL it, audit; repeat."""
+    """Start the child, let it report a random number of commits, SIGKILL it after a
+    random few milliseconds more (so the kill falls anywhere in the writes that
+    follow, whatever the machine's speed), audit; repeat."""
     rng = random.Random(seed)
     committed = Committed()
     before: dict[str, int] = {}
@@ -48,10 +50,11 @@ def kill_rounds(db: Path, rounds: int, delay_s: tuple[float, float], seed: int,
             cwd=ROOT, stdout=subprocess.PIPE, text=True,
             stderr=log.open("a") if log else subprocess.DEVNULL)
         assert child.stdout.readline().strip() == "ready"
-        time.sleep(rng.uniform(*delay_s))
+        said = [child.stdout.readline() for _ in range(rng.randint(*reports))]
+        time.sleep(rng.uniform(0.0, 0.05))
         child.kill()
         out, _ = child.communicate(timeout=30)
-        committed.add(out)
+        committed.add("".join(said) + out)
         counts = audit(db, committed, SAMPLES_PER_OK)
         assert all(counts[k] >= n for k, n in before.items()), (before, counts)
         before = counts
@@ -60,7 +63,7 @@ def kill_rounds(db: Path, rounds: int, delay_s: tuple[float, float], seed: int,
 
 @pytest.mark.slow
 def test_fifty_kills_lose_nothing_committed(tmp_path):
-    committed = kill_rounds(tmp_path / "kill.db", KILLS, (0.0, 0.6), seed=20271215)
+    committed = kill_rounds(tmp_path / "kill.db", KILLS, (1, 150), seed=20271215)
     # The kills did land during acquisition, fits and plans, not only between them.
     assert len(committed.measurements) > KILLS
     assert committed.plans and committed.events and committed.results
@@ -70,7 +73,7 @@ def test_fifty_kills_lose_nothing_committed(tmp_path):
 def test_kills_through_the_real_serial_path_lose_nothing_committed(tmp_path):
     load_config(CONFIG)  # the child's configuration, checked here for a clear failure
     with simulator("pico-sereno-clear", seed=11, port="pty") as ends:
-        committed = kill_rounds(tmp_path / "kill.db", SERIAL_KILLS, (0.5, 4.0),
+        committed = kill_rounds(tmp_path / "kill.db", SERIAL_KILLS, (1, 120),
                                 seed=20271216, urls=[ends.radiometer, ends.tracker],
                                 log=tmp_path / "child.log")
     # Measurements came over the line, so the kills fell among real exchanges.

