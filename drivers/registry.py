@@ -21,13 +21,21 @@ from typing import Any
 
 from drivers.interfaces import DriverConfigError, Radiometer, Tracker
 
-RADIOMETER_DRIVERS: dict[str, str] = {"reference": "drivers.reference:open_radiometer"}
-TRACKER_DRIVERS: dict[str, str] = {"reference": "drivers.reference:open_tracker"}
+RADIOMETER_DRIVERS: dict[str, str] = {
+    "reference": "drivers.reference:open_radiometer",
+    "modbus": "drivers.modbus:open_radiometer",
+}
+TRACKER_DRIVERS: dict[str, str] = {
+    "reference": "drivers.reference:open_tracker",
+    "modbus": "drivers.modbus:open_tracker",
+}
 
 # (kind, driver) -> "module:function" taking the raw options mapping (or None).
 OPTION_CHECKS: dict[tuple[str, str], str] = {
     ("radiometer", "reference"): "drivers.registry:no_options",
     ("tracker", "reference"): "drivers.registry:no_options",
+    ("radiometer", "modbus"): "drivers.modbus_map:check_radiometer_options",
+    ("tracker", "modbus"): "drivers.modbus_map:check_tracker_options",
 }
 
 
