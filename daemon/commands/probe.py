@@ -157,6 +157,12 @@ def _by_hand(port: Port) -> str:
     return f"python -m serial.tools.miniterm {port.url}{speed} --eol CRLF --echo"
 
 
+def _no_port(device: str, url: str) -> str:
+    return (f"{device}: no such port {url}: is it plugged in and powered? List the ports "
+            f"with 'python -m serial.tools.list_ports -v' and set {_config_key(device)} in "
+            f"the configuration (or give --{device}-port)")
+
+
 def _port_problem(device: str, port: Port, exc: PortUnavailable) -> tuple[str, str]:
     code = _errno_of(exc)
     url = port.url
@@ -168,10 +174,7 @@ def _port_problem(device: str, port: Port, exc: PortUnavailable) -> tuple[str, s
             f"('sudo usermod -aG {group} $USER', then log in again) or fix the device's "
             "udev rule")
     if code in (errno.ENOENT, errno.ENODEV, errno.ENXIO):
-        return NO_PORT, (
-            f"{device}: no such port {url}: is it plugged in and powered? List the ports "
-            f"with 'python -m serial.tools.list_ports -v' and set {key} in the "
-            f"configuration (or give --{device}-port)")
+        return NO_PORT, _no_port(device, url)
     if code in (errno.EBUSY, errno.EAGAIN, errno.EWOULDBLOCK) or "in use" in str(exc):
         return PORT_BUSY, (
             f"{device}: {url} is in use by another program: stop the service first "
@@ -262,10 +265,7 @@ def explain_family(device: str, port: Port, command: str, exc: BaseException,
         return DEVICE_ERROR, f"{device}: {command}: {exc}"
     if isinstance(exc, LinkError):
         if counters.exchanges == 0 and is_device_path(url) and not os.path.exists(url):
-            return NO_PORT, (
-                f"{device}: no such port {url}: is it plugged in and powered? List the "
-                "ports with 'python -m serial.tools.list_ports -v' and set "
-                f"{_config_key(device)} in the configuration (or give --{device}-port)")
+            return NO_PORT, _no_port(device, url)
         if counters.garbage or counters.crc_errors:
             unreadable = counters.garbage + counters.crc_errors
             return NOT_PROTOCOL, (
