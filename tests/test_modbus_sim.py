@@ -25,6 +25,7 @@ from sim_instrument.modbus_server import (
 )
 from sim_instrument.model import SimulatedStation
 from sim_instrument.scenario import load_scenario
+from tests.test_modbus_protocol import rtu
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIG = ROOT / "config" / "pico-sereno-modbus.yaml"
@@ -88,13 +89,7 @@ def test_a_request_with_a_bad_crc_gets_no_answer(station):
     emulator = ModbusEmulator("radiometer", station, threading.Lock(), RAD, "rtu")
     assembler = emulator.new_assembler()
     # 01 04 00 14 00 06 + CRC (Modbus over Serial Line V1.02 sec. 6.2.2), then damaged.
-    good = bytes.fromhex("010400140006")
-    crc = 0xFFFF
-    for byte in good:
-        crc ^= byte
-        for _ in range(8):
-            crc = (crc >> 1) ^ 0xA001 if crc & 1 else crc >> 1
-    frame = good + crc.to_bytes(2, "little")
+    frame = rtu(0x01, 0x04, 0x00, 0x14, 0x00, 0x06)
     assert isinstance(assembler, FrameAssembler)
     assert assembler.feed(frame[:-1] + bytes([frame[-1] ^ 0xFF])) == []
     (pdu,) = assembler.feed(frame)
