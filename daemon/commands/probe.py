@@ -278,7 +278,8 @@ def explain_family(device: str, port: Port, command: str, exc: BaseException,
         return NO_ANSWER, (
             f"{device}: no answer to {command} on {url} ({tries} tries of "
             f"{port.timeout_s:g} s): is the {device} powered, is {key}.unit_id its "
-            "address, and are the bus wires (A/B) the right way round?")
+            "address (or are the radiometer and tracker ports swapped?), and are the "
+            "bus wires (A/B) the right way round?")
     if isinstance(exc, ValueError | ArithmeticError):
         return BAD_REPLY, (f"{device}: the reply to {command} makes no sense "
                            f"({type(exc).__name__}: {str(exc)[:120]}): check the data "
