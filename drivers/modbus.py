@@ -52,6 +52,10 @@ from drivers.modbus_map import (
 from drivers.transport import PORT_FAILURES, LinkCounters, LinkShutDown, LinkTimeout
 
 log = logging.getLogger(__name__)
+# pymodbus logs each timeout or refused open as an ERROR ("No response received ...")
+# although we retry it; this module logs every fault with what became of it and counts
+# it, so only pymodbus's own failures (CRITICAL) pass. Lower it to debug pymodbus.
+logging.getLogger("pymodbus.logging").setLevel(logging.CRITICAL)
 
 DATATYPE = ModbusClientMixin.DATATYPE
 #: Exception codes that mean "this request is wrong" (V1.1b3 sec. 7): not retried.
