@@ -251,3 +251,24 @@ def test_no_shutter_in_the_map_says_what_to_change():
     link = ModbusLink("/dev/null", 19200, 0.2, 0, m.link, name="dut")
     with pytest.raises(DeviceError, match="dark_shutter or set acquisition.dark_samples: 0"):
         ModbusRadiometer(link, m).read_dark(3)
+
+
+def test_park_once_sends_one_request_and_no_retry(line):
+    # The stop path: one 06 Write Single Register (V1.1b3 sec. 6.6) even with retries left.
+    park = rtu(0x02, 0x06, u16(10, 7))
+    tracker, peer = line([(park, b"")], TRACKER_MAP, retries=3)
+    with pytest.raises(LinkError, match="after 1 attempt"):
+        tracker.park_once(timeout_s=2.0)
+    peer.check()
+    assert tracker.link_counters()["retries"] == 0
+
+
+def test_after_shutdown_nothing_more_is_sent(line):
+    request = rtu(0x01, 0x04, u16(20, 2))
+    reply = rtu(0x01, 0x04, 4, u16(100, 200))
+    radiometer, peer = line([(request, reply)], RADIOMETER_MAP, retries=3)
+    radiometer.read_housekeeping()
+    peer.check()
+    radiometer.shutdown(timeout_s=1.0)
+    with pytest.raises(LinkError, match="shut down; read 2 input register"):
+        radiometer.read_housekeeping()  # the peer's script is used up: a send would fail it
