@@ -439,6 +439,8 @@ class ModbusEmulator:
 
     def handle(self, pdu: Any) -> tuple[bytes | None, float]:
         """The response frame to one request PDU (None: not for this unit)."""
+        log.debug("%s: unit %d function %d address %s", self.kind, pdu.dev_id,
+                  pdu.function_code, getattr(pdu, "address", "-"))
         if pdu.dev_id != self.unit_id:
             return None, 0.0  # another unit on the bus answers that
         if self.exception_rate and self._rng.random() < self.exception_rate:
