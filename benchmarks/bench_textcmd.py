@@ -47,7 +47,7 @@ def main() -> int:
     cfg = load_config(CONFIG)
     station = SimulatedStation(load_scenario("pico-sereno-clear"), seed=1, speed=0)
     station.set_clock(datetime(2027, 2, 15, 18, 30, tzinfo=UTC))
-    with StationServer(station, "pty", emulator=text_emulator, record=True) as server:
+    with StationServer(station, "pty", make_emulator=text_emulator, record=True) as server:
         urls = server.urls
         r = TextRadiometer(cfg.radiometer.options, urls["radiometer"], BAUD, 2.0, 3)
         t = TextTracker(cfg.tracker.options, urls["tracker"], BAUD, 2.0, 3)

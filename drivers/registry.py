@@ -21,15 +21,23 @@ from typing import Any
 
 from drivers.interfaces import DriverConfigError, Radiometer, Tracker
 
-RADIOMETER_DRIVERS: dict[str, str] = {"reference": "drivers.reference:open_radiometer",
-                                      "text": "drivers.textcmd:open_radiometer"}
-TRACKER_DRIVERS: dict[str, str] = {"reference": "drivers.reference:open_tracker",
-                                   "text": "drivers.textcmd:open_tracker"}
+RADIOMETER_DRIVERS: dict[str, str] = {
+    "reference": "drivers.reference:open_radiometer",
+    "modbus": "drivers.modbus:open_radiometer",
+    "text": "drivers.textcmd:open_radiometer",
+}
+TRACKER_DRIVERS: dict[str, str] = {
+    "reference": "drivers.reference:open_tracker",
+    "modbus": "drivers.modbus:open_tracker",
+    "text": "drivers.textcmd:open_tracker",
+}
 
 # (kind, driver) -> "module:function" taking the raw options mapping (or None).
 OPTION_CHECKS: dict[tuple[str, str], str] = {
     ("radiometer", "reference"): "drivers.registry:no_options",
     ("tracker", "reference"): "drivers.registry:no_options",
+    ("radiometer", "modbus"): "drivers.modbus_map:check_radiometer_options",
+    ("tracker", "modbus"): "drivers.modbus_map:check_tracker_options",
     ("radiometer", "text"): "drivers.textcmd_spec:check_radiometer_options",
     ("tracker", "text"): "drivers.textcmd_spec:check_tracker_options",
 }

@@ -7,6 +7,11 @@ way out it writes the station's truth file if asked.
 
     heliotrope-sim --scenario pico-sereno-clear --port pty
     heliotrope-sim --scenario my-day.yaml --port tcp:7700 --speed 60 --truth truth.json
+    heliotrope-sim --scenario pico-sereno-clear --family modbus-rtu \
+        --register-map config/pico-sereno-modbus.yaml
+
+``--family`` picks the device family served (FAMILIES below): the reference line
+protocol, or Modbus RTU / Modbus TCP behind the register maps of a station's YAML.
 
 The instrument clock starts at the site's local mean solar noon on the scenario's date,
 so that a burst typed by hand sees the sun up (``--start-utc scenario`` keeps the
@@ -30,6 +35,8 @@ import selectors
 import signal
 import sys
 import tempfile
+from collections.abc import Callable
+from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -40,24 +47,6 @@ EX_USAGE = 2
 EX_CONFIG = 78
 
 log = logging.getLogger("heliotrope-sim")
-
-#: --family: the device emulators a driver family talks to ("module:function"; None is
-#: the reference protocol's DeviceEmulator).
-FAMILIES: dict[str, str | None] = {
-    "reference": None,
-    "text": "sim_instrument.text_server:text_emulator",
-}
-
-
-def _emulator(family: str) -> Any:
-    spec = FAMILIES[family]
-    if spec is None:
-        return None
-    import importlib
-
-    module, function = spec.split(":")
-    return getattr(importlib.import_module(module), function)
-
 
 def parse_port_spec(spec: str) -> tuple[str, int]:
     """``"pty"`` -> ("pty", 0); ``"tcp:PORT"`` -> ("tcp", PORT). Raises ValueError."""
@@ -96,6 +85,59 @@ def start_clock(spec: str | None, scenario_start: datetime, longitude_deg: float
     return when.astimezone(UTC)
 
 
+@dataclass(frozen=True)
+class Family:
+    """One device family the simulator serves.
+
+    ``setup(args, seed)`` returns the StationServer keywords of the family (its
+    ``make_emulator`` and ``line_faults``) or raises ValueError with the fix;
+    ``endpoints`` are the --port kinds it can use; ``url`` turns an endpoint's url into
+    what the family's driver takes as its port."""
+
+    setup: Callable[[argparse.Namespace, int], dict[str, Any]]
+    endpoints: tuple[str, ...]
+    url: Callable[[str], str] = lambda url: url
+
+
+def _reference_setup(args: argparse.Namespace, seed: int) -> dict[str, Any]:
+    if args.register_map is not None:
+        raise ValueError("--register-map is for the modbus families")
+    faults = LineFaults.parse(args.line_faults) if args.line_faults.strip() else None
+    return {"line_faults": faults}
+
+
+def _modbus_setup(args: argparse.Namespace, seed: int) -> dict[str, Any]:
+    from sim_instrument.modbus_server import ModbusFaults, emulator_factory, load_register_maps
+
+    if args.register_map is None:
+        raise ValueError(f"--family {args.family} needs --register-map STATION.yaml (the "
+                         "configuration whose instrument options hold the register maps)")
+    faults = ModbusFaults.parse(args.line_faults) if args.line_faults.strip() else None
+    radiometer, tracker, link = load_register_maps(args.register_map)
+    want = args.family.removeprefix("modbus-")
+    if link != want:
+        raise ValueError(f"--register-map {args.register_map}: its link is {link}; serve it "
+                         f"with --family modbus-{link}")
+    return {"line_faults": faults.line() if faults else None,
+            "make_emulator": emulator_factory(radiometer, tracker, link,
+                                              faults.exception if faults else 0.0, seed)}
+
+
+def _text_setup(args: argparse.Namespace, seed: int) -> dict[str, Any]:
+    from sim_instrument.text_server import text_emulator
+
+    return {**_reference_setup(args, seed), "make_emulator": text_emulator}
+
+
+#: --family name -> Family. A new family adds one line here.
+FAMILIES: dict[str, Family] = {
+    "reference": Family(_reference_setup, ("pty", "tcp")),
+    "modbus-rtu": Family(_modbus_setup, ("pty",)),
+    "modbus-tcp": Family(_modbus_setup, ("tcp",), url=lambda u: u.removeprefix("socket://")),
+    "text": Family(_text_setup, ("pty", "tcp")),
+}
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(
         prog="heliotrope-sim",
@@ -110,6 +152,14 @@ def build_parser() -> argparse.ArgumentParser:
     ap.add_argument("--port", default="pty", metavar="pty|tcp:PORT",
                     help="pty: two pseudo-terminals; tcp:PORT: radiometer on 127.0.0.1:PORT, "
                          "tracker on PORT+1 (tcp:0 picks free ports). Default: pty")
+    ap.add_argument("--family", default="reference", choices=sorted(FAMILIES),
+                    help="device family to serve: the reference line protocol; Modbus "
+                         "RTU (on pseudo-terminals) / Modbus TCP (on loopback) behind "
+                         "--register-map; or text (a SCPI voltmeter and a short-command "
+                         "tracker, sim_instrument/text_server.py). Default: reference")
+    ap.add_argument("--register-map", type=Path, metavar="STATION.yaml",
+                    help="for the modbus families: the station configuration whose "
+                         "instrument.*.options hold the register maps to serve")
     ap.add_argument("--speed", type=float, default=1.0, metavar="X",
                     help="instrument seconds per real second (0 freezes the clock between "
                          "CLK commands). Default: 1")
@@ -132,11 +182,8 @@ def build_parser() -> argparse.ArgumentParser:
                     help="damage replies at random for reliability tests, e.g. "
                          "'drop=0.05,garble=0.05,truncate=0.02,corrupt=0.02,stale=0.05,"
                          "late=0.01'; replaces the scenario's own line faults (its "
-                         "scheduled events still happen)")
-    ap.add_argument("--family", choices=sorted(FAMILIES), default="reference",
-                    help="the command set served: reference (drivers/PROTOCOL.md) or text "
-                         "(a SCPI voltmeter and a short-command tracker, "
-                         "sim_instrument/text_server.py). Default: reference")
+                         "scheduled events still happen). Modbus families: "
+                         "'drop=,corrupt=,truncate=,exception='")
     ap.add_argument("-v", "--verbose", action="store_true",
                     help="log every request and reply to standard error")
     return ap
@@ -206,7 +253,13 @@ def main(argv: list[str] | None = None) -> int:
                         stream=sys.stderr, format="heliotrope-sim: %(levelname)s %(message)s")
     try:
         endpoint, tcp_port = parse_port_spec(args.port)
-        faults = LineFaults.parse(args.line_faults) if args.line_faults.strip() else None
+        family = FAMILIES[args.family]
+        if endpoint not in family.endpoints:
+            raise ValueError(f"--family {args.family} serves on "
+                             f"{' or '.join(family.endpoints)}, not {endpoint}: "
+                             + ("use --port pty" if "pty" in family.endpoints
+                                else "use --port tcp:PORT (tcp:0 picks free ports)"))
+        family_kwargs = family.setup(args, args.seed)
         if args.speed < 0:
             raise ValueError(f"--speed {args.speed:g}: must be 0 or more")
         if args.seed < 0:
@@ -232,9 +285,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         scenario = station.scenario
         server = StationServer(station, endpoint, tcp_port, reply_delay_scale=delay_scale,
-                               line_faults=faults, seed=args.seed, fault_plan=scenario.faults,
-                               longitude_deg=scenario.site.longitude_deg,
-                               emulator=_emulator(args.family))
+                               seed=args.seed, fault_plan=scenario.faults,
+                               longitude_deg=scenario.site.longitude_deg, **family_kwargs)
     except OSError as exc:
         where = f"127.0.0.1:{tcp_port} or {tcp_port + 1}" if endpoint == "tcp" else "a pty"
         print(f"heliotrope-sim: cannot listen on {where}: {exc.strerror or exc}. Pick "
@@ -243,7 +295,8 @@ def main(argv: list[str] | None = None) -> int:
     with server:
         urls = server.urls
         site = scenario.site
-        print(json.dumps({"radiometer": urls["radiometer"], "tracker": urls["tracker"],
+        print(json.dumps({"radiometer": family.url(urls["radiometer"]),
+                          "tracker": family.url(urls["tracker"]),
                           "pid": os.getpid(),
                           "site": {"name": site.name, "latitude_deg": site.latitude_deg,
                                    "longitude_deg": site.longitude_deg,

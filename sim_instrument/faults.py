@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import random
 from dataclasses import dataclass, field, fields
+from typing import Any
 
 #: Kinds of scheduled event and the devices each may hit.
 LINE_EVENT_KINDS = ("garbage", "drop", "truncate", "corrupt", "stale", "late")
@@ -65,25 +66,31 @@ class LineFaults:
     @classmethod
     def parse(cls, spec: str) -> LineFaults:
         """From ``"drop=0.05,corrupt=0.02"``; raises ValueError saying what is wrong."""
-        values: dict[str, float] = {}
-        names = [f.name for f in fields(cls)]
-        for item in filter(None, (s.strip() for s in spec.split(","))):
-            name, sep, value = item.partition("=")
-            if not sep or name not in names:
-                raise ValueError(f"line fault {item!r}: expected NAME=PROBABILITY with NAME "
-                                 f"one of {', '.join(names)}")
-            try:
-                prob = float(value)
-            except ValueError:
-                raise ValueError(f"line fault {item!r}: {value!r} is not a number") from None
-            if not 0.0 <= prob <= 1.0:
-                raise ValueError(f"line fault {item!r}: probability must be 0 to 1")
-            values[name] = prob
-        return cls(**values)
+        return parse_fault_spec(cls, spec)
 
     @property
     def any(self) -> bool:
         return any(getattr(self, f.name) for f in fields(self))
+
+
+def parse_fault_spec(cls: type, spec: str, what: str = "line fault") -> Any:
+    """``cls`` (a dataclass of probabilities) from ``"NAME=P,NAME=P"``; raises ValueError
+    saying what is wrong."""
+    values: dict[str, float] = {}
+    names = [f.name for f in fields(cls)]
+    for item in filter(None, (s.strip() for s in spec.split(","))):
+        name, sep, value = item.partition("=")
+        if not sep or name not in names:
+            raise ValueError(f"{what} {item!r}: expected NAME=PROBABILITY with NAME "
+                             f"one of {', '.join(names)}")
+        try:
+            prob = float(value)
+        except ValueError:
+            raise ValueError(f"{what} {item!r}: {value!r} is not a number") from None
+        if not 0.0 <= prob <= 1.0:
+            raise ValueError(f"{what} {item!r}: probability must be 0 to 1")
+        values[name] = prob
+    return cls(**values)
 
 
 @dataclass(frozen=True)

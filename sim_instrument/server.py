@@ -134,6 +134,10 @@ class DeviceEmulator:
             }
         self._restart_counters()
 
+    def new_assembler(self) -> LineAssembler:
+        """What cuts this device's requests out of the byte stream."""
+        return LineAssembler()
+
     def _restart_counters(self) -> None:
         self.started = time.monotonic()
         self.requests = 0
@@ -488,7 +492,7 @@ class PtyEndpoint(_Endpoint):
         else:
             self.url = slave_path
         os.set_blocking(self.master, False)
-        self.lines = LineAssembler()
+        self.lines = self.emulator.new_assembler()
         self.selector.register(self.master, selectors.EVENT_READ)
 
     def _close_pty(self) -> None:
@@ -558,7 +562,7 @@ class TcpEndpoint(_Endpoint):
         # Loopback only: the simulator must never be reachable from the network.
         self.listener = socket.create_server(("127.0.0.1", port))
         self.listener.setblocking(False)
-        self.lines = LineAssembler()
+        self.lines = self.emulator.new_assembler()
         self.selector.register(self.listener, selectors.EVENT_READ)
 
     def vanish(self, duration_s: float) -> None:
@@ -581,7 +585,7 @@ class TcpEndpoint(_Endpoint):
             self._drop_client()
             conn.setblocking(False)
             self.client = conn
-            self.lines = LineAssembler()
+            self.lines = self.emulator.new_assembler()
             self.selector.register(conn, selectors.EVENT_READ)
             log.debug("%s: client connected", self.emulator.kind)
             return
@@ -647,10 +651,10 @@ class StationServer:
         The site's longitude [degrees east], to place events in local solar time.
     record
         Keep every chunk each endpoint writes (``server.transcripts()``).
-    emulator
-        Makes each device's emulator from ``(kind, station, lock, reply_delay_scale)``:
-        :class:`DeviceEmulator` (the reference protocol) unless another command set is
-        served (:func:`sim_instrument.text_server.text_emulator`).
+    make_emulator
+        ``(kind, station, lock, reply_delay_scale)`` -> the device behind an endpoint:
+        :class:`DeviceEmulator` (the reference protocol) unless another family's
+        (:mod:`sim_instrument.modbus_server`, :func:`sim_instrument.text_server.text_emulator`).
 
     With a ``port_vanish`` event on pseudo-terminals, the urls are symbolic links in a
     private temporary directory, re-pointed when the port returns.
@@ -662,7 +666,7 @@ class StationServer:
                  reply_delay_scale: float = 0.0, line_faults: LineFaults | None = None,
                  seed: int = 0, fault_plan: FaultPlan | None = None,
                  longitude_deg: float = 0.0, record: bool = False,
-                 emulator: Callable[..., Any] | None = None) -> None:
+                 make_emulator: Callable[..., Any] = DeviceEmulator) -> None:
         if endpoint not in ("pty", "tcp"):
             raise ValueError(f"endpoint {endpoint!r} must be 'pty' or 'tcp'")
         if endpoint == "tcp" and tcp_port and not 1 <= tcp_port <= 65534:
@@ -675,8 +679,7 @@ class StationServer:
         self._link_dir: str | None = None
         if endpoint == "pty" and plan.vanishes:
             self._link_dir = tempfile.mkdtemp(prefix="heliotrope-sim-")
-        make = emulator or DeviceEmulator
-        emulators = [make(kind, station, self.lock, reply_delay_scale)
+        emulators = [make_emulator(kind, station, self.lock, reply_delay_scale)
                      for kind in (RADIOMETER, TRACKER)]
         try:
             for i, emulator in enumerate(emulators):

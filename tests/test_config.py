@@ -91,7 +91,7 @@ BAD = [
     ("acquisition.lock_timeout_s", 600,
      "acquisition.lock_timeout_s: 600 is out of range; allowed 1 to 120 s"),
     ("instrument.tracker.driver", "acme",
-     "instrument.tracker.driver: 'acme' is not allowed; known drivers: reference, text"),
+     "instrument.tracker.driver: 'acme' is not allowed; known drivers: modbus, reference, text"),
     ("acquisition.burst_samples", 0,
      "acquisition.burst_samples: 0 is out of range; allowed 1 to 1000"),
     ("fit.max_residual_sd", True,

@@ -94,7 +94,7 @@ def test_the_tracker_refuses_with_an_error_line(station):
 def drivers_on_pty(station, request):
     faults = getattr(request, "param", None)
     cfg = load_config(CONFIG)
-    server = StationServer(station, "pty", line_faults=faults, seed=5, emulator=text_emulator)
+    server = StationServer(station, "pty", line_faults=faults, seed=5, make_emulator=text_emulator)
     with server:
         urls = server.urls
         r = TextRadiometer(cfg.radiometer.options, urls["radiometer"], 19200, 0.5, 3)

@@ -11,6 +11,10 @@ denied (with the serial group), port in use (by the service?), nothing listening
 simulator), no answer, an answer in some other protocol (line speed), the wrong device
 on the port (swapped ports), an error reply.
 
+Other driver families (Modbus, ...) are probed through the Radiometer and Tracker
+interfaces alone: identify, one burst, housekeeping, tracker state, each timed, with
+the same kinds of advice; still nothing that moves, sets or resets.
+
 Imports pyserial and the drivers, nothing heavy (no numpy, pvlib or sqlite-utils).
 """
 
@@ -153,6 +157,12 @@ def _by_hand(port: Port) -> str:
     return f"python -m serial.tools.miniterm {port.url}{speed} --eol CRLF --echo"
 
 
+def _no_port(device: str, url: str) -> str:
+    return (f"{device}: no such port {url}: is it plugged in and powered? List the ports "
+            f"with 'python -m serial.tools.list_ports -v' and set {_config_key(device)} in "
+            f"the configuration (or give --{device}-port)")
+
+
 def _port_problem(device: str, port: Port, exc: PortUnavailable) -> tuple[str, str]:
     code = _errno_of(exc)
     url = port.url
@@ -164,10 +174,7 @@ def _port_problem(device: str, port: Port, exc: PortUnavailable) -> tuple[str, s
             f"('sudo usermod -aG {group} $USER', then log in again) or fix the device's "
             "udev rule")
     if code in (errno.ENOENT, errno.ENODEV, errno.ENXIO):
-        return NO_PORT, (
-            f"{device}: no such port {url}: is it plugged in and powered? List the ports "
-            f"with 'python -m serial.tools.list_ports -v' and set {key} in the "
-            f"configuration (or give --{device}-port)")
+        return NO_PORT, _no_port(device, url)
     if code in (errno.EBUSY, errno.EAGAIN, errno.EWOULDBLOCK) or "in use" in str(exc):
         return PORT_BUSY, (
             f"{device}: {url} is in use by another program: stop the service first "
@@ -249,13 +256,47 @@ def _transport(device: str, port: Port, factory: Callable[..., Any] | None) -> T
     return Transport(port.url, port.baudrate, port.timeout_s, port.retries, **kwargs)
 
 
-def _call(device: str, port: Port, transport: Transport, command: str,
+def explain_family(device: str, port: Port, command: str, exc: BaseException,
+                   counters: LinkCounters) -> tuple[str, str]:
+    """:func:`explain` for the configured families (Modbus...): what the driver saw."""
+    url = port.url
+    key = f"instrument.{device}.options"
+    if isinstance(exc, DeviceError):
+        return DEVICE_ERROR, f"{device}: {command}: {exc}"
+    if isinstance(exc, LinkError):
+        if counters.exchanges == 0 and is_device_path(url) and not os.path.exists(url):
+            return NO_PORT, _no_port(device, url)
+        if counters.garbage or counters.crc_errors:
+            unreadable = counters.garbage + counters.crc_errors
+            return NOT_PROTOCOL, (
+                f"{device}: {url} answers, but {unreadable} repl(ies) failed their check: "
+                f"check the line speed ({port.baudrate} bit/s configured), parity and stop "
+                f"bits ({key}.serial) and the bus wiring")
+        if counters.exchanges == 0 and "cannot open" in str(exc):
+            return CANNOT_CONNECT, f"{exc}"
+        tries = port.retries + 1
+        return NO_ANSWER, (
+            f"{device}: no answer to {command} on {url} ({tries} tries of "
+            f"{port.timeout_s:g} s): is the {device} powered, is {key}.unit_id its "
+            "address (or are the radiometer and tracker ports swapped?), and are the "
+            "bus wires (A/B) the right way round?")
+    if isinstance(exc, ValueError | ArithmeticError):
+        return BAD_REPLY, (f"{device}: the reply to {command} makes no sense "
+                           f"({type(exc).__name__}: {str(exc)[:120]}): check the data "
+                           f"types and scales in {key}")
+    return BAD_REPLY, f"{device}: {command} failed: {exc}"
+
+
+def _call(device: str, port: Port, transport: Any, command: str,
           call: Callable[[], Any], describe: Callable[[Any], tuple[str, dict[str, Any]]],
-          checks: list[Check]) -> Any:
-    """Run one driver call, time it, and append its Check; the result or None."""
+          checks: list[Check], explain: Callable[..., tuple[str, str]] = explain) -> Any:
+    """Run one driver call, time it, and append its Check; the result or None.
+
+    ``transport`` is what the driver talks through: a Transport (opened apart from the
+    call) or anything with ``counters``."""
     t0 = time.monotonic()
     try:
-        if not transport.is_open:
+        if isinstance(transport, Transport) and not transport.is_open:
             # Open apart from the exchange so a missing port fails at once, not after
             # the retries and their back-off.
             transport.open()
@@ -373,6 +414,9 @@ def probe_station(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
     if not 1 <= burst_samples <= p.MAX_SAMPLES:
         raise ValueError(f"burst of {burst_samples} samples: the protocol allows "
                          f"1-{p.MAX_SAMPLES}")
+    if radiometer.driver != "reference" or tracker.driver != "reference":
+        return probe_family(radiometer, tracker, burst_samples=burst_samples,
+                            channel_names=channel_names)
     checks: list[Check] = []
     notes: list[str] = []
 
@@ -393,12 +437,9 @@ def probe_station(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
                              "fix instrument.channels")
             burst = _call(RADIOMETER, radiometer, rad.transport, burst_cmd,
                           lambda: rad.read_burst(burst_samples), _describe_burst, checks)
-            if burst is not None and any(burst.saturated):
-                names = (list(channel_names) if len(channel_names) == n
-                         else [str(i + 1) for i in range(n)])
-                hot = " ".join(nm for nm, s in zip(names, burst.saturated, strict=True) if s)
-                notes.append(f"radiometer: channel(s) {hot} reached full scale in the "
-                             "burst: check the gain and filters before a sunny session")
+            note = _saturation_note(burst, n, channel_names)
+            if note:
+                notes.append(note)
             _call(RADIOMETER, radiometer, rad.transport, p.HK, rad.read_housekeeping,
                   _describe_housekeeping, checks)
 
@@ -413,6 +454,80 @@ def probe_station(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
                 notes.append("tracker reports FAULT: a person should look at the mount "
                              "before the service runs")
         notes += sun_hints(burst, state)
+    finally:
+        rad.close()
+        trk.close()
+    return ProbeReport(radiometer.url, tracker.url, checks, notes)
+
+
+def _saturation_note(burst: Any, n: int, channel_names: Sequence[str]) -> str | None:
+    if burst is None or not any(burst.saturated):
+        return None
+    names = list(channel_names) if len(channel_names) == n else [str(i + 1) for i in range(n)]
+    hot = " ".join(nm for nm, s in zip(names, burst.saturated, strict=True) if s)
+    return (f"radiometer: channel(s) {hot} reached full scale in the burst: check the gain "
+            "and filters before a sunny session")
+
+
+def probe_family(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
+                 channel_names: Sequence[str] = ()) -> ProbeReport:
+    """The probe through the Radiometer and Tracker interfaces of any driver family:
+    ``identify``, ``read_burst``, ``read_housekeeping``, ``identify`` and ``state``.
+    Never ``goto``, ``follow_sun``, ``park``, ``set_clock`` or ``reset``."""
+    from drivers import registry
+
+    checks: list[Check] = []
+    notes: list[str] = []
+    rad = registry.open_radiometer(radiometer.driver, radiometer.url, radiometer.baudrate,
+                                   radiometer.timeout_s, radiometer.retries,
+                                   radiometer.options)
+    trk = registry.open_tracker(tracker.driver, tracker.url, tracker.baudrate,
+                                tracker.timeout_s, tracker.retries, tracker.options)
+
+    class _Counted:  # what _call reads of a link: the driver's own counters
+        def __init__(self, device: Any) -> None:
+            self.device = device
+
+        @property
+        def counters(self) -> LinkCounters:
+            known = {f.name for f in dataclasses.fields(LinkCounters)}
+            return LinkCounters(**{k: v for k, v in self.device.link_counters().items()
+                                   if k in known})
+
+    def call(device: str, port: Port, dev: Any, command: str, fn: Callable[[], Any],
+             describe: Callable[[Any], tuple[str, dict[str, Any]]]) -> Any:
+        return _call(device, port, _Counted(dev), command, fn, describe, checks,
+                     explain=explain_family)
+
+    try:
+        identity = call(RADIOMETER, radiometer, rad, "identify", rad.identify,
+                        _describe_identity(rad.channel_count))
+        burst_cmd = f"burst {burst_samples}"
+        if identity is None:
+            checks += [_not_tried(RADIOMETER, burst_cmd),
+                       _not_tried(RADIOMETER, "housekeeping")]
+        else:
+            n = rad.channel_count()
+            if channel_names and n != len(channel_names):
+                notes.append(f"radiometer has {n} channels in its map, the configuration "
+                             f"lists {len(channel_names)} ({' '.join(channel_names)}): "
+                             "fix instrument.channels or the register map")
+            burst = call(RADIOMETER, radiometer, rad, burst_cmd,
+                         lambda: rad.read_burst(burst_samples), _describe_burst)
+            note = _saturation_note(burst, n, channel_names)
+            if note:
+                notes.append(note)
+            call(RADIOMETER, radiometer, rad, "housekeeping", rad.read_housekeeping,
+                 _describe_housekeeping)
+        identity = call(TRACKER, tracker, trk, "identify", trk.identify,
+                        _describe_identity(lambda: None))
+        if identity is None:
+            checks.append(_not_tried(TRACKER, "state"))
+        else:
+            state = call(TRACKER, tracker, trk, "state", trk.state, _describe_tracker)
+            if state is not None and state.mode == "fault":
+                notes.append("tracker reports FAULT: a person should look at the mount "
+                             "before the service runs")
     finally:
         rad.close()
         trk.close()

@@ -15,7 +15,7 @@ import os
 import subprocess
 import sys
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import date, datetime
@@ -24,8 +24,14 @@ from pathlib import Path
 from daemon.config.settings import Config
 
 SIM_START_TIMEOUT_S = 30.0
-#: The simulator's ``--family`` that serves each radiometer driver.
-SIM_FAMILIES = {"reference": "reference", "text": "text"}
+
+#: Radiometer driver -> the ``heliotrope-sim --family`` that serves its bench twin, by
+#: link kind ("" for families with one). Modbus families also get ``--register-map``.
+SIM_FAMILIES: dict[str, dict[str, str]] = {
+    "reference": {"": "reference"},
+    "modbus": {"rtu": "modbus-rtu", "tcp": "modbus-tcp"},
+    "text": {"": "text"},
+}
 
 
 class BenchError(Exception):
@@ -42,18 +48,20 @@ class SimEndpoints:
 
 @contextmanager
 def simulator(scenario: str, seed: int, port: str = "pty",
-              truth_path: Path | None = None, family: str = "reference"
-              ) -> Iterator[SimEndpoints]:
+              truth_path: Path | None = None,
+              sim_args: Sequence[str] = ()) -> Iterator[SimEndpoints]:
     """Start ``heliotrope-sim`` as a child process and yield its endpoints.
 
     The child is tied to us by its standard input (``--stdin-lifeline``): if this
     process dies, the pipe closes and the simulator exits too. On leaving the block it
-    is asked to stop with SIGTERM so it writes its truth file.
+    is asked to stop with SIGTERM so it writes its truth file. ``sim_args`` are more
+    arguments for it (the device family: :func:`family_args`).
     """
     cmd = [sys.executable, "-m", "sim_instrument", "--scenario", scenario, "--port", port,
-           "--seed", str(seed), "--stdin-lifeline", "--family", family]
+           "--seed", str(seed), "--stdin-lifeline"]
     if truth_path is not None:
         cmd += ["--truth", str(truth_path)]
+    cmd += list(sim_args)
     proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     try:
@@ -104,6 +112,36 @@ def _stop(proc: subprocess.Popen) -> None:
     for stream in (proc.stdin, proc.stdout, proc.stderr):
         if stream:
             stream.close()
+
+
+def family_args(config: Config, port: str = "pty") -> tuple[tuple[str, ...], str]:
+    """The simulator arguments that serve ``config``'s drivers, and the --port to use.
+
+    Raises BenchError when the drivers have no simulator twin."""
+    driver = config.radiometer.driver
+    if config.tracker.driver != driver:
+        raise BenchError(f"the radiometer driver is {driver!r} and the tracker driver "
+                         f"{config.tracker.driver!r}; the bench simulates one family")
+    table = SIM_FAMILIES.get(driver)
+    if table is None:
+        raise BenchError(f"no simulator serves the {driver!r} driver; known: "
+                         f"{', '.join(sorted(SIM_FAMILIES))}")
+    link = getattr(getattr(config.radiometer.options, "link", None), "kind", "")
+    family = table.get(link) or table.get("")
+    if family is None:
+        raise BenchError(f"no simulator serves the {driver!r} driver on a {link} link")
+    if family == "reference":
+        return (), port
+    if family == "text":
+        return ("--family", "text"), port
+    if config.source.startswith("<"):
+        raise BenchError("the Modbus simulator reads the register maps from the "
+                         "configuration file; load the configuration from a file")
+    if family == "modbus-tcp" and port == "pty":
+        port = "tcp:0"
+    elif family == "modbus-rtu":
+        port = "pty"
+    return ("--family", family, "--register-map", config.source), port
 
 
 SITE_MATCH_DEG = 0.05  # about 5 km: the same site for the sun's position
@@ -166,18 +204,21 @@ class DayRun:
 
 @contextmanager
 def bench_rig(config: Config, store_path: Path, scenario: str, seed: int, port: str = "pty",
-              truth_path: Path | None = None) -> Iterator[tuple[Config, object, object, object]]:
+              truth_path: Path | None = None, sim_args: Sequence[str] = ()
+              ) -> Iterator[tuple[Config, object, object, object]]:
     """The simulator, the configuration pointed at it, an open store and both drivers.
 
-    Yields ``(config, store, radiometer, tracker)``; everything is closed on leaving.
+    The simulator serves the family of the configuration's drivers (:func:`family_args`);
+    ``sim_args`` are more simulator arguments (e.g. ``--line-faults``). Yields
+    ``(config, store, radiometer, tracker)``; everything is closed on leaving.
     """
     from daemon.station.acquisition import open_devices
     from daemon.store.writer import Store
 
+    extra, port = family_args(config, port)
     store = Store.open(store_path)
     try:
-        family = SIM_FAMILIES.get(config.radiometer.driver, "reference")
-        with simulator(scenario, seed, port, truth_path, family) as ends:
+        with simulator(scenario, seed, port, truth_path, extra + tuple(sim_args)) as ends:
             cfg = with_ports(config, ends)
             radiometer, tracker = open_devices(cfg)
             try:
@@ -190,7 +231,8 @@ def bench_rig(config: Config, store_path: Path, scenario: str, seed: int, port: 
 
 
 def run_simulated_day(config: Config, day: date, store_path: Path, scenario: str,
-                      seed: int, port: str = "pty", work_dir: Path | None = None) -> DayRun:
+                      seed: int, port: str = "pty", work_dir: Path | None = None,
+                      sim_args: Sequence[str] = ()) -> DayRun:
     """Plan ``day``, start the simulator, acquire the whole day and fit both sessions."""
     from daemon.station.acquisition import Station, local_midnight_utc, run_day
     from daemon.station.clock import SimClock
@@ -202,7 +244,8 @@ def run_simulated_day(config: Config, day: date, store_path: Path, scenario: str
     plan = plan_day(config, day)
     outcomes = []
     try:
-        with bench_rig(config, store_path, scenario, seed, port, truth_path) as rig:
+        with bench_rig(config, store_path, scenario, seed, port, truth_path,
+                       sim_args) as rig:
             cfg, store, radiometer, tracker = rig
             clock = SimClock(local_midnight_utc(cfg, day))
             station = Station(cfg, radiometer, tracker, store, clock)
