@@ -420,9 +420,12 @@ def _add_operator_view(sub) -> None:
     c = sub.add_parser("export", help="stored data as CSV or JSON, streamed")
     _add_dates(c)
     c.add_argument("--what", required=True,
-                   choices=("measurements", "samples", "results", "aod", "events"))
-    c.add_argument("--format", default="csv", choices=("csv", "json"),
-                   help="default: %(default)s")
+                   choices=("measurements", "samples", "results", "aod", "events",
+                            "readings"),
+                   help="readings: the CSV file `heliotrope refit` reads")
+    c.add_argument("--format", default="csv", choices=("csv", "json", "netcdf"),
+                   help="default: %(default)s; netcdf (CF-1.8, NetCDF-4) is for --what "
+                   "measurements with --out, and needs the netcdf extra")
     c.add_argument("--out", metavar="FILE", help="write here instead of standard output")
     c.add_argument("--db", default=_default_db(), help=db_help)
     c.set_defaults(func=cmd_export)
@@ -550,7 +553,10 @@ def build_parser() -> argparse.ArgumentParser:
         "(optional columns pressure_hpa, detector_temp_c) exactly as the service fits a "
         "session; air masses come from the configuration's site. Touches no store. A "
         "malformed file gives its line number and exit code 65.")
-    c.add_argument("--config", required=True, metavar="FILE", help="configuration file")
+    c.add_argument("--config", metavar="FILE", help="configuration file (default: the one "
+                   "the store given with --db recorded)")
+    c.add_argument("--db", metavar="STORE", help="take the configuration this store recorded "
+                   "(read only; `export --what readings` writes the CSV from a store)")
     c.add_argument("--csv", required=True, metavar="READINGS", help="readings CSV file")
     c.add_argument("--json", action="store_true", help="print JSON")
     c.set_defaults(func=cmd_refit)
