@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import sqlite3
 from pathlib import Path
 
 import pytest
@@ -98,3 +99,34 @@ def test_a_recorded_configuration_this_version_refuses_is_exit_78(day, tmp_path,
                  str(path)]) == 78
     err = capsys.readouterr().err
     assert "no_such_section" in err and "recorded by the store" in err and "--config" in err
+
+
+def test_a_store_from_before_provenance_is_upgraded_and_keeps_its_results(tmp_path, capsys):
+    """A store at m004 (the schema before this one): opening it adds m005 in place, its
+    old results point to no configuration, and new results to the recorded one."""
+    from sqlite_utils import Database
+
+    from daemon.store import writer
+
+    path = tmp_path / "old.db"
+    db = Database(path)
+    writer.migrations.apply(db, stop_before="m005_configurations")
+    db.close()
+    row = {"channel": "500", "wavelength_nm": 500.0, "v0": 3.0, "v0_1au": 3.1,
+           "v0_rel_unc": 0.003, "tau": 0.12, "n_used": 17, "n_total": 17,
+           "airmass_min": 2.0, "airmass_max": 6.0, "accepted": True, "reasons": []}
+    conn = sqlite3.connect(path)
+    conn.execute("INSERT INTO session_results (plan_date, session, channel, v0_1au, "
+                 "accepted, fitted_utc) VALUES ('2027-02-14', 'am', '500', 3.1, 1, "
+                 "'2027-02-14T20:00:00+00:00')")
+    conn.commit()
+    conn.close()
+    with Store.open(path) as store:
+        cid = store.record_configuration(CONFIG_PATH.read_text(), str(CONFIG_PATH), "0.1.0",
+                                         NOW)
+        store.save_session_results(DAY.isoformat(), "am", [row], fitted_utc=NOW)
+    assert main(["results", "--from", "2027-02-14", "--to", DAY.isoformat(), "--db",
+                 str(path), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert [(r["date"], r["configuration_id"]) for r in out["results"]] == \
+        [("2027-02-14", None), (DAY.isoformat(), cid)]

@@ -61,7 +61,10 @@ def test_every_command_of_the_block_runs(campaign):
         assert code == expected, (argv, code, err)
     _, _, out, _ = _run(campaign, "status")
     assert "simulated" in out and "NTP" not in out
-    assert (work / "day.html").stat().st_size > 0 and (work / "aod.csv").stat().st_size > 0
+    for made in ("day.html", "aod.csv", "langley.png", "bench.nc", "readings.csv"):
+        assert (work / made).stat().st_size > 0, made
+    # PNG signature (ISO/IEC 15948, 5.2).
+    assert (work / "langley.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
 def test_calibration_and_results_point_to_the_demo_configuration(campaign):
