@@ -130,3 +130,13 @@ def test_a_store_from_before_provenance_is_upgraded_and_keeps_its_results(tmp_pa
     out = json.loads(capsys.readouterr().out)
     assert [(r["date"], r["configuration_id"]) for r in out["results"]] == \
         [("2027-02-14", None), (DAY.isoformat(), cid)]
+
+
+def test_demo_never_appends_simulated_days_to_a_station_store(tmp_path, capsys):
+    path = tmp_path / "station.db"
+    with Store.open(path) as store:
+        store.record_configuration(CONFIG_PATH.read_text(), str(CONFIG_PATH), "0.1.0", NOW)
+    before = path.read_bytes()
+    assert main(["demo", "--append", "--db", str(path)]) == 64
+    assert "station's" in capsys.readouterr().err
+    assert path.read_bytes() == before

@@ -196,6 +196,12 @@ def cmd_demo(args: argparse.Namespace) -> int:
             if not store_path.exists():
                 raise CommandError(f"{store_path} does not exist; make it first with "
                                    f"`heliotrope demo --db {store_path}`", EX_NOINPUT)
+            from daemon.store.reader import configuration_origins
+            if "service" in _read_store(str(store_path), configuration_origins):
+                raise CommandError(f"{store_path} holds a station's measurements (its service "
+                                   "recorded a configuration there); simulated days never go "
+                                   "into a station's store: append to a store `heliotrope "
+                                   "demo` made", EX_USAGE)
             try:
                 first = args.date_given or next_campaign_day(store_path) or DEMO_DATE
             except BenchError as exc:
