@@ -169,10 +169,13 @@ def test_heartbeat_far_in_the_future_is_a_clock_warning(day, tmp_path):
     assert st["exit_code"] == WARNING and "clock" in st["problems"][0]
 
 
-def test_command_exit_codes_and_80_columns(day, tmp_path, capsys):
+def test_command_exit_codes_and_80_columns(day, tmp_path, capsys, monkeypatch):
     path = _copy(day, tmp_path)
+    # A fixed clock inside the synthetic day: the real one would leave its plan behind.
+    fixed = _target_time(day, "am", 8) + dt.timedelta(seconds=40)
+    monkeypatch.setattr("daemon.commands.status._now", lambda: fixed)
     with Store.open(path) as s:
-        s.heartbeat(dt.datetime.now(UTC))
+        s.heartbeat(fixed)
     assert main(["status", "--db", str(path)]) == OK
     text = capsys.readouterr().out
     assert text.startswith("OK: heartbeat")
@@ -184,7 +187,7 @@ def test_command_exit_codes_and_80_columns(day, tmp_path, capsys):
     st = json.loads(capsys.readouterr().out)
     assert st["state"] == "OK" and st["timezone"] == "America/Mexico_City"
     with Store.open(path) as s:
-        s.heartbeat(dt.datetime.now(UTC) - dt.timedelta(minutes=20))
+        s.heartbeat(fixed - dt.timedelta(minutes=20))
     assert main(["status", "--db", str(path)]) == CRITICAL
     assert capsys.readouterr().out.startswith("CRITICAL: stale")
     assert main(["status", "--db", str(tmp_path / "none.db")]) == CRITICAL
@@ -200,3 +203,69 @@ def test_utc_with_local_time_beside_it():
     assert utc_local(t, ZoneInfo("America/Mexico_City")) == \
         "2027-02-15 14:05:12 UTC (08:05 local)"
     assert utc_local(t, ZoneInfo("UTC"), with_date=False) == "14:05:12 UTC"
+
+
+# Performance data as the monitoring plugins' development guidelines write it:
+# 'label'=value[UOM];[warn];[crit];[min];[max] (monitoring-plugins.org, "Performance data").
+PERF_RE = r"'([^']+)'=(-?[0-9.]+|U)(s|%|B|KB|MB|c)?;([^;]*);([^;]*);([^;]*);([^;\s]*)"
+
+
+def _perf(text: str) -> dict[str, tuple]:
+    import re
+
+    tail = text.split("|", 1)[1]
+    return {m[0]: m[1:] for m in re.findall(PERF_RE, tail)}
+
+
+def test_performance_data_and_the_age_of_every_reading(day, tmp_path):
+    from daemon.commands.status import format_status
+
+    path = _copy(day, tmp_path)
+    now = _target_time(day, "am", 8) + dt.timedelta(seconds=40)
+    with Store.open(path) as s:
+        s.heartbeat(now - dt.timedelta(seconds=30))
+    st = station_status(path, now)
+    text = format_status(st, now)
+    perf = _perf(text)
+    assert set(perf) == {"heartbeat_age", "disk_free", "detector_temp", "targets_today"}
+    assert perf["heartbeat_age"][:5] == ("30", "s", "300", "900", "0")
+    assert perf["disk_free"][1:4] == ("%", "10:", "2:")  # alert below: range "N:"
+    assert float(perf["detector_temp"][0]) == pytest.approx(
+        st["housekeeping"]["detector_temp_c"], abs=0.005)
+    # Nine morning targets measured by now (the synthetic day measures every target).
+    assert perf["targets_today"][0] == "9" and st["targets_today"]["measured"] == 9
+    assert int(perf["targets_today"][5]) == st["targets_today"]["planned"] > 9
+    # Every reading with its age (the synthetic store holds the whole day, so the last
+    # measurement is later than this morning moment: "ahead of this clock").
+    lines = text.splitlines()
+    for label in ("heartbeat", "last measurement", "tracker", "temperatures", "supply"):
+        i = next(i for i, x in enumerate(lines) if x.startswith(label))
+        entry = " ".join([lines[i]] + [x.strip() for x in lines[i + 1:i + 3]
+                                       if x.startswith(" ")])
+        assert " ago" in entry or "ahead of this clock" in entry, entry
+    assert max(len(line) for line in text.splitlines()[1:]) <= 80
+
+
+def test_a_future_heartbeat_reads_ahead_never_in_the_future_ago(day, tmp_path):
+    from daemon.commands.status import format_status
+
+    path = _copy(day, tmp_path)
+    now = _target_time(day, "am", 2)
+    with Store.open(path) as s:
+        s.heartbeat(now + dt.timedelta(hours=3))
+    text = format_status(station_status(path, now), now)
+    assert "in the future ago" not in text and "3.0 h ahead of this clock" in text
+
+
+def test_a_simulated_store_says_so_instead_of_blaming_ntp(day, tmp_path):
+    path = _copy(day, tmp_path)
+    now = dt.datetime(2026, 12, 2, 12, 0, tzinfo=UTC)  # long before the simulated day
+    with Store.open(path) as s:
+        s.record_configuration("site: {}\n", "demo.yaml", "0.1.0", now, origin="bench")
+        s.heartbeat(day.plan.targets[-1].time_utc + dt.timedelta(minutes=5))
+    st = station_status(path, now)
+    assert st["simulated"] and st["exit_code"] == WARNING
+    assert "simulated" in st["problems"][0]
+    assert not any("NTP" in p or "stale" in p for p in st["problems"])
+    # Ages are on the store's own clock: its last measurement came before its heartbeat.
+    assert 0 <= st["last_measurement"]["age_s"] < 3600

@@ -129,16 +129,16 @@ def calibrate_command(args: Any) -> int:
     """``heliotrope calibrate``: combine, store, compute AOD; print the record."""
     import os
 
-    from daemon.commands.errors import EX_CONFIG, EX_DATAERR, CommandError
+    from daemon.commands.errors import EX_DATAERR, CommandError
+    from daemon.commands.storedconfig import choose_config
     from daemon.commands.tables import dumps
-    from daemon.config.settings import ConfigError, load_config
     from daemon.store.writer import StoreError
 
-    try:
-        config = load_config(args.config)
-    except ConfigError as exc:
-        raise CommandError(str(exc), EX_CONFIG) from None
-    db = args.db or os.environ.get("HELIOTROPE_DB") or config.store_path
+    db = args.db or os.environ.get("HELIOTROPE_DB")
+    chosen = choose_config(args.config, db, "calibrate needs the channels and the campaign "
+                           "settings")
+    config = chosen.config
+    db = db or config.store_path
     if args.to < args.from_:
         raise CommandError(f"--to {args.to} is before --from {args.from_}; swap them", 64)
     if not os.path.exists(db):
@@ -150,8 +150,15 @@ def calibrate_command(args: Any) -> int:
     except StoreError as exc:
         raise CommandError(str(exc), 74) from None
     try:
-        record = calibrate(store, config, args.from_, args.to,
-                           _dt.datetime.now(_dt.UTC))
+        now = _dt.datetime.now(_dt.UTC)
+        # Provenance: the calibration points to the configuration it was made with.
+        if chosen.stored is not None:
+            store.configuration_id = chosen.stored["id"]
+        else:
+            from daemon.store.reader import software_version
+            store.record_configuration(config.text, config.source, software_version(), now,
+                                       origin="operator")
+        record = calibrate(store, config, args.from_, args.to, now)
     except CalibrationError as exc:
         raise CommandError(str(exc), 1) from None
     except ValueError as exc:

@@ -29,6 +29,8 @@ from daemon.commands.errors import (
 from daemon.commands.tables import dumps, results_table, table
 
 DEFAULT_DB = "/var/lib/heliotrope/heliotrope.db"
+DEMO_MAX_DAYS = 366
+DEMO_DATE = date(2027, 2, 15)
 REPO_CONFIG = Path(__file__).resolve().parents[2] / "config"
 
 
@@ -168,7 +170,12 @@ def plan_table(plan: dict) -> str:
 def cmd_demo(args: argparse.Namespace) -> int:
     import tempfile
 
-    from daemon.station.bench import BenchError, run_simulated_day
+    from daemon.station.bench import (
+        BenchError,
+        campaign_days,
+        next_campaign_day,
+        run_simulated_campaign,
+    )
     if args.config is None:
         args.config = str(REPO_CONFIG / "pico-sereno.yaml")
         if not Path(args.config).exists():
@@ -176,32 +183,75 @@ def cmd_demo(args: argparse.Namespace) -> int:
                                f"({args.config}), which this installation does not have; "
                                "pass --config with config/pico-sereno.yaml from a copy of "
                                "the sources", EX_NOINPUT)
+    if args.days < 1 or args.days > DEMO_MAX_DAYS:
+        raise CommandError(f"--days {args.days}: give 1 to {DEMO_MAX_DAYS} days", EX_USAGE)
+    if args.append and not args.db:
+        raise CommandError("--append adds days to the store given with --db; pass "
+                           "--db FILE", EX_USAGE)
     cfg = _load_config(args.config)
     with tempfile.TemporaryDirectory(prefix="heliotrope-demo-") as tmp:
         store_path = Path(args.db) if args.db else Path(tmp) / "demo.db"
-        if args.db and store_path.exists():
+        first = args.date_given or DEMO_DATE
+        if args.append:
+            if not store_path.exists():
+                raise CommandError(f"{store_path} does not exist; make it first with "
+                                   f"`heliotrope demo --db {store_path}`", EX_NOINPUT)
+            from daemon.store.reader import configuration_origins
+            if "service" in _read_store(str(store_path), configuration_origins):
+                raise CommandError(f"{store_path} holds a station's measurements (its service "
+                                   "recorded a configuration there); simulated days never go "
+                                   "into a station's store: append to a store `heliotrope "
+                                   "demo` made", EX_USAGE)
+            try:
+                first = args.date_given or next_campaign_day(store_path) or DEMO_DATE
+            except BenchError as exc:
+                raise CommandError(str(exc), EX_NOINPUT) from None
+        elif args.db and store_path.exists():
             raise CommandError(f"{store_path} already exists; the demo writes a fresh store. "
-                               "Choose a new path or remove the old file.", EX_USAGE)
+                               "Choose a new path, remove the old file, or add days to it "
+                               "with --append.", EX_USAGE)
+        days = campaign_days(first, args.days)
         if not args.json:
-            print(f"simulating {args.date} at {cfg.site.name} "
+            span = str(first) if len(days) == 1 else f"{days[0]} to {days[-1]}"
+            print(f"simulating {span} at {cfg.site.name} "
                   f"(scenario {args.scenario}, seed {args.seed}, port {args.port}) ...",
                   flush=True)
+
+        def progress(run) -> None:
+            if not args.json and len(days) > 1:
+                ok = sum(bool(r["accepted"]) for r in run.results)
+                print(f"{run.day}: {run.targets_ok} of {run.targets_planned} targets, "
+                      f"{ok} of {len(run.results)} channel fits accepted "
+                      f"({run.wall_s:.1f} s)", flush=True)
+
         try:
-            run = run_simulated_day(cfg, args.date, store_path, args.scenario, args.seed,
-                                    args.port, work_dir=Path(tmp))
+            runs = run_simulated_campaign(cfg, days, store_path, args.scenario, args.seed,
+                                          args.port, work_dir=Path(tmp), on_day=progress)
         except BenchError as exc:
             raise CommandError(str(exc), EX_UNAVAILABLE) from None
+    run = runs[-1]
     truth = run.truth.get("channels", {})
+    wall = sum(r.wall_s for r in runs)
     if args.json:
-        print(dumps({"results": run.results,
-                     "truth": {k: {"v0_1au": v["v0_1au"]} for k, v in truth.items()},
-                     "targets_planned": run.targets_planned, "targets_ok": run.targets_ok,
-                     "wall_s": round(run.wall_s, 3)}))
+        out = {"results": run.results,
+               "truth": {k: {"v0_1au": v["v0_1au"]} for k, v in truth.items()},
+               "targets_planned": run.targets_planned, "targets_ok": run.targets_ok,
+               "wall_s": round(wall, 3)}
+        if len(runs) > 1:
+            out["days"] = [{"date": r.day.isoformat(), "targets_planned": r.targets_planned,
+                            "targets_ok": r.targets_ok, "results": r.results} for r in runs]
+        print(dumps(out))
         return 0
+    if len(runs) > 1:
+        print(f"last day, {run.day}:")
     print(f"{run.targets_ok} of {run.targets_planned} targets measured; "
           "V0 normalised to 1 AU")
     print(results_table(run.results, truth))
-    print(f"wall time {run.wall_s:.1f} s")
+    print(f"wall time {wall:.1f} s")
+    if args.db and len(runs) > 1:
+        print(f"next: `heliotrope calibrate --from {days[0]} --to {days[-1]} --db {args.db}`, "
+              f"then `heliotrope export --what aod --from {days[0]} --to {days[-1]} "
+              f"--db {args.db}`")
     return 0
 
 
@@ -282,9 +332,11 @@ def cmd_results(args: argparse.Namespace) -> int:
     last = args.to or args.from_
     if last < args.from_:
         raise CommandError(f"--to {last} is before --from {args.from_}; swap them", EX_USAGE)
-    rows = _read_store(args.db, lambda conn: results_between(conn, args.from_, last))
+    rows, configs = _read_store(args.db, lambda conn: _with_provenance(
+        conn, results_between(conn, args.from_, last), args.from_, last))
     if args.json:
-        print(dumps({"from": args.from_.isoformat(), "to": last.isoformat(), "results": rows}))
+        print(dumps({"from": args.from_.isoformat(), "to": last.isoformat(), "results": rows,
+                     "configurations": [configs[k] for k in sorted(configs)]}))
         return 0
     if not rows:
         print(f"no session results from {args.from_} to {last} in {args.db}")
@@ -292,7 +344,33 @@ def cmd_results(args: argparse.Namespace) -> int:
     for day in sorted({r["date"] for r in rows}):
         print(f"{day}")
         print(results_table([r for r in rows if r["date"] == day]))
+    print(provenance_lines(rows, configs))
     return 0
+
+
+def _with_provenance(conn, rows: list[dict], first: date, last: date):
+    """The result rows, each with the ``configuration_id`` that produced it, and the
+    recorded configurations they name (id -> row without the text)."""
+    from daemon.store.reader import configurations_by_id, result_configurations
+
+    ids = result_configurations(conn, first, last)
+    for r in rows:
+        r["configuration_id"] = ids.get((r["date"], r["session"], r["channel"]))
+    configs = configurations_by_id(conn, {i for i in ids.values() if i is not None})
+    return rows, configs
+
+
+def provenance_lines(rows: list[dict], configs: dict[int, dict]) -> str:
+    """Which configuration produced the results: one line per recorded configuration."""
+    lines = []
+    for cid in sorted({r["configuration_id"] for r in rows if r["configuration_id"]}):
+        c = configs.get(cid)
+        if c is not None:
+            lines.append(f"configuration {cid}: sha256 {c['sha256'][:16]}, {c['origin']}, "
+                         f"heliotrope {c['software_version']}, from {c['source']}")
+    if any(r["configuration_id"] is None for r in rows):
+        lines.append("some results were stored before configurations were recorded")
+    return "\n".join(lines)
 
 
 def cmd_status(args: argparse.Namespace) -> int:
@@ -322,8 +400,8 @@ def cmd_ssh_gate(args: argparse.Namespace) -> int:
 
 def _add_operator_view(sub) -> None:
     db_help = "store path (default: %(default)s, from $HELIOTROPE_DB when set)"
-    cfg_help = ("the service's configuration (default: $HELIOTROPE_CONFIG, else "
-                "/etc/heliotrope/heliotrope.yaml)")
+    cfg_help = ("the service's configuration (default: the one the store recorded, else "
+                "$HELIOTROPE_CONFIG, else /etc/heliotrope/heliotrope.yaml)")
 
     c = sub.add_parser("status", help="is the service alive and well; exit 0 ok, 1 warning, "
                        "2 stale or failing")
@@ -348,9 +426,12 @@ def _add_operator_view(sub) -> None:
     c = sub.add_parser("export", help="stored data as CSV or JSON, streamed")
     _add_dates(c)
     c.add_argument("--what", required=True,
-                   choices=("measurements", "samples", "results", "aod", "events"))
-    c.add_argument("--format", default="csv", choices=("csv", "json"),
-                   help="default: %(default)s")
+                   choices=("measurements", "samples", "results", "aod", "events",
+                            "readings"),
+                   help="readings: the CSV file `heliotrope refit` reads")
+    c.add_argument("--format", default="csv", choices=("csv", "json", "netcdf"),
+                   help="default: %(default)s; netcdf (CF-1.8, NetCDF-4) is for --what "
+                   "measurements with --out, and needs the netcdf extra")
     c.add_argument("--out", metavar="FILE", help="write here instead of standard output")
     c.add_argument("--db", default=_default_db(), help=db_help)
     c.set_defaults(func=cmd_export)
@@ -424,8 +505,14 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--config", help="site configuration (default: the source tree's "
                    "config/pico-sereno.yaml)")
     c.add_argument("--scenario", default="pico-sereno-clear")
-    c.add_argument("--date", type=_parse_date, default=date(2027, 2, 15),
-                   help="simulated local date (default: %(default)s)")
+    c.add_argument("--date", type=_parse_date, dest="date_given", metavar="DATE",
+                   help=f"first simulated local date (default: {DEMO_DATE}; with --append, "
+                   "the day after the store's newest)")
+    c.add_argument("--days", type=int, default=1, metavar="N",
+                   help="simulate N consecutive days into one store, enough for "
+                   "`calibrate` (default: %(default)s)")
+    c.add_argument("--append", action="store_true",
+                   help="add the days to the existing store given with --db")
     c.add_argument("--seed", type=int, default=1)
     c.add_argument("--port", default="pty", help="pty or tcp:0 (default: %(default)s)")
     c.add_argument("--db", help="keep the store at this new path (default: a temporary one)")
@@ -458,7 +545,9 @@ def build_parser() -> argparse.ArgumentParser:
         "is computed and stored. This command WRITES to the store: it opens it with the "
         "service's writer (safe while the service runs).")
     _add_dates(c, to_required=True)
-    _add_service_config(c)
+    c.add_argument("--config", metavar="FILE", help="configuration file (default: the one "
+                   "the store recorded, else $HELIOTROPE_CONFIG, else "
+                   "/etc/heliotrope/heliotrope.yaml)")
     c.add_argument("--db", help="store path (default: $HELIOTROPE_DB, else the "
                    "configuration's store.path)")
     c.add_argument("--json", action="store_true", help="print JSON")
@@ -470,7 +559,10 @@ def build_parser() -> argparse.ArgumentParser:
         "(optional columns pressure_hpa, detector_temp_c) exactly as the service fits a "
         "session; air masses come from the configuration's site. Touches no store. A "
         "malformed file gives its line number and exit code 65.")
-    c.add_argument("--config", required=True, metavar="FILE", help="configuration file")
+    c.add_argument("--config", metavar="FILE", help="configuration file (default: the one "
+                   "the store given with --db recorded)")
+    c.add_argument("--db", metavar="STORE", help="take the configuration this store recorded "
+                   "(read only; `export --what readings` writes the CSV from a store)")
     c.add_argument("--csv", required=True, metavar="READINGS", help="readings CSV file")
     c.add_argument("--json", action="store_true", help="print JSON")
     c.set_defaults(func=cmd_refit)

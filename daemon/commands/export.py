@@ -19,6 +19,13 @@ What can be exported (``--what``), for local dates ``--from`` to ``--to``:
 ``events``
     the service's events between local midnight of ``--from`` and local midnight after
     ``--to`` (the site's time zone from the stored plans)
+``readings``
+    exactly the file ``heliotrope refit --csv`` reads (header ``time_utc,channel,signal,
+    pressure_hpa,detector_temp_c``, no units in it): per morning and afternoon
+    measurement that was measured, locked and not saturated, the dark-corrected mean
+    signal of each channel [V], the pressure [hPa] and detector temperature [degC] the
+    service's fit uses. A burst's spread (the cloud screen) is not in it: refit fits
+    every reading it is given.
 
 Standard library only: this is a read command.
 """
@@ -74,10 +81,16 @@ EVENT_COLUMNS: tuple[tuple[str, str | None], ...] = (
     ("id", None), ("time_utc", None), ("level", None), ("kind", None), ("message", None),
     ("detail", None),
 )
+# The refit input format (daemon/commands/refit.py): bare names, units in its docstring.
+READING_COLUMNS: tuple[tuple[str, str | None], ...] = (
+    ("time_utc", None), ("channel", None), ("signal", None), ("pressure_hpa", None),
+    ("detector_temp_c", None),
+)
 COLUMNS = {"measurements": MEASUREMENT_COLUMNS, "samples": SAMPLE_COLUMNS,
-           "results": RESULT_COLUMNS, "aod": AOD_COLUMNS, "events": EVENT_COLUMNS}
+           "results": RESULT_COLUMNS, "aod": AOD_COLUMNS, "events": EVENT_COLUMNS,
+           "readings": READING_COLUMNS}
 WHATS = tuple(COLUMNS)
-FORMATS = ("csv", "json")
+FORMATS = ("csv", "json")  # netcdf: daemon/commands/netcdf.py
 
 _MEASUREMENTS_SQL = sample_stats_cte(
     "SELECT id FROM measurements WHERE plan_date BETWEEN ?1 AND ?2") + """
@@ -141,6 +154,22 @@ def measurement_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterato
                            None if saturated is None else bool(saturated), sun_mean, sd,
                            n_sun, dark_mean if n_dark else None, n_dark) + r[23:]
         yield dict(zip(names, values, strict=True))
+
+
+def reading_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
+    """The refit input: per usable morning or afternoon measurement and channel, the
+    dark-corrected mean signal [V] with the pressure and detector temperature the
+    service's screening gives the fit (daemon.science.screening)."""
+    for r in measurement_rows(conn, first, last):
+        if (r["status"] != "ok" or r["session"] not in ("am", "pm") or not r["locked"]
+                or r["saturated"] or r["sun_mean_v"] is None or not r["n_sun"]):
+            continue
+        dark = r["dark_mean_v"] or 0.0
+        pressure = r["housekeeping_pressure_hpa"]
+        yield {"time_utc": r["time_utc"], "channel": r["channel"],
+               "signal": r["sun_mean_v"] - dark,
+               "pressure_hpa": r["pressure_hpa"] if pressure is None else pressure,
+               "detector_temp_c": r["detector_temp_c"]}
 
 
 def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
@@ -208,7 +237,7 @@ def aod_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
 
 
 SOURCES = {"measurements": measurement_rows, "samples": sample_rows, "results": result_rows,
-           "aod": aod_rows, "events": event_rows}
+           "aod": aod_rows, "events": event_rows, "readings": reading_rows}
 
 
 def export_rows(conn: sqlite3.Connection, what: str, first: str | _dt.date,
@@ -258,7 +287,8 @@ def write_csv(rows: Iterable[dict], columns: tuple[tuple[str, str | None], ...],
               out: IO[str]) -> int:
     """Write rows as CSV with a unit-bearing header; return the number of rows."""
     writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(csv_header(columns))
+    writer.writerow(csv_header(columns) if columns is not READING_COLUMNS
+                    else [c for c, _ in columns])
     names = [c for c, _ in columns]
     n = 0
     for row in rows:
@@ -306,6 +336,46 @@ def _require_calibration(conn: sqlite3.Connection, db: Path) -> None:
                            EX_NOTHING)
 
 
+def _export_netcdf(conn: sqlite3.Connection, args: argparse.Namespace, db: Path,
+                   out_path: Path | None, last: _dt.date) -> int:
+    """The measurements as a CF NetCDF-4 file, written beside ``out_path`` and renamed."""
+    from daemon.commands.errors import EX_CANTCREAT, EX_UNAVAILABLE, EX_USAGE, CommandError
+    from daemon.commands.netcdf import NetcdfUnavailable, write_netcdf
+    from daemon.commands.output import publish
+    from daemon.store.reader import software_version, stored_configuration
+
+    if args.what != "measurements" or out_path is None:
+        raise CommandError("--format netcdf writes the measurements (with their aerosol "
+                           "optical depth when calibrated) to a file: use --what "
+                           "measurements --out FILE.nc", EX_USAGE)
+    recorded = stored_configuration(conn)
+    config = None
+    if recorded is not None:
+        from daemon.config.settings import ConfigError, config_from_text
+        try:
+            config = config_from_text(recorded["text"], f"{db}: recorded configuration")
+        except ConfigError:
+            config = None  # channel order and wavelengths then come from the store
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{out_path.name}.", dir=out_path.parent)
+        os.close(fd)
+    except OSError as exc:
+        raise CommandError(f"--out {out_path}: cannot write there ({exc})",
+                           EX_CANTCREAT) from None
+    try:
+        d1, d2 = args.from_.isoformat(), last.isoformat()
+        n = write_netcdf(conn, measurement_rows(conn, d1, d2), d1, d2, Path(tmp),
+                         config=config, configuration=recorded, version=software_version())
+        publish(tmp, out_path)
+    except NetcdfUnavailable as exc:
+        raise CommandError(str(exc), EX_UNAVAILABLE) from None
+    except OSError as exc:
+        raise CommandError(f"--out {out_path}: cannot write ({exc})", EX_CANTCREAT) from None
+    finally:
+        Path(tmp).unlink(missing_ok=True)
+    return n
+
+
 def cmd_export(args: argparse.Namespace) -> int:
     from daemon.commands.errors import EX_CANTCREAT, EX_NOINPUT, EX_USAGE, CommandError
     from daemon.commands.output import publish
@@ -325,6 +395,11 @@ def cmd_export(args: argparse.Namespace) -> int:
     try:
         if args.what == "aod":
             _require_calibration(conn, db)
+        if args.format == "netcdf":
+            n = _export_netcdf(conn, args, db, out_path, last)
+            print(f"{n} measurement{'s' if n != 1 else ''} written to {out_path} (NetCDF-4, "
+                  "CF-1.8)", file=sys.stderr)
+            return 0
         if out_path is None:
             export(conn, args.what, args.from_, last, args.format, sys.stdout)
             sys.stdout.flush()

@@ -33,13 +33,11 @@ from __future__ import annotations
 
 import argparse
 import math
-import os
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-DEFAULT_CONFIG = "/etc/heliotrope/heliotrope.yaml"
 PLOT_EXTRA_HINT = "install the plot extra: pip install 'heliotrope[plot]'"
 USED, REJECTED, EXCLUDED = "used", "rejected", "excluded"
 AIRMASS_LABEL = "air mass"
@@ -545,18 +543,13 @@ def render_png(views: list[SessionView], path: Path) -> None:
 
 # --------------------------------------------------------------------------- command
 
-def service_config(path: str | None):
-    """The service's configuration for the plot and the report (CommandError if bad)."""
-    from daemon.commands.errors import EX_CONFIG, CommandError
-    from daemon.config.settings import ConfigError, load_config
+def service_config(path: str | None, db: str | Path | None = None):
+    """The configuration for the plot and the report: ``--config``, else the one the
+    store recorded, else the service's file (CommandError if bad)."""
+    from daemon.commands.storedconfig import choose_config
 
-    path = path or os.environ.get("HELIOTROPE_CONFIG") or DEFAULT_CONFIG
-    try:
-        return load_config(path)
-    except ConfigError as exc:
-        raise CommandError(f"{exc}. The plot and the report need the service's configuration "
-                           "(channels, screening and fit settings): pass --config FILE or set "
-                           "HELIOTROPE_CONFIG", EX_CONFIG) from None
+    return choose_config(path, db, "The plot and the report need the service's "
+                         "configuration (channels, screening and fit settings)").config
 
 
 def session_views(db: str | Path, config, plan_date: str, channel: str,
@@ -583,7 +576,7 @@ def cmd_plot(args: argparse.Namespace) -> int:
     from daemon.commands.tables import dumps
     from daemon.store.reader import StoreReadError
 
-    config = service_config(args.config)
+    config = service_config(args.config, args.db)
     names = [ch.name for ch in config.channels]
     if args.channel not in names:
         raise CommandError(f"--channel {args.channel!r} is not in {config.source}; "

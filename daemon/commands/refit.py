@@ -436,14 +436,12 @@ def refit_file(path: str | Path, config: Config) -> dict[str, Any]:
 
 def refit_command(args: Any) -> int:
     """``heliotrope refit``: fit a readings CSV offline and print the results."""
-    from daemon.commands.errors import EX_CONFIG, EX_DATAERR, EX_NOINPUT, CommandError
+    from daemon.commands.errors import EX_DATAERR, EX_NOINPUT, CommandError
+    from daemon.commands.storedconfig import choose_config
     from daemon.commands.tables import dumps, results_table
-    from daemon.config.settings import ConfigError, load_config
 
-    try:
-        config = load_config(args.config)
-    except ConfigError as exc:
-        raise CommandError(str(exc), EX_CONFIG) from None
+    config = choose_config(args.config, getattr(args, "db", None),
+                           "refit needs the site and the channels").config
     try:
         out = refit_file(args.csv, config)
     except FileNotFoundError:

@@ -739,7 +739,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     from daemon.commands.plot import service_config
     from daemon.store.reader import StoreReadError
 
-    config = service_config(args.config)
+    config = service_config(args.config, args.db)
     out = Path(args.out).expanduser() if args.out else None
     if out is not None:
         try:

@@ -19,12 +19,12 @@ import argparse
 import datetime as _dt
 import shutil
 import sqlite3
-import sys
 from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from daemon.commands.tables import dumps, fmt, table
+from daemon.commands.tables import dumps, fmt
+from daemon.store.reader import software_version
 
 OK, WARNING, CRITICAL = 0, 1, 2
 STATE_NAMES = {OK: "OK", WARNING: "WARNING", CRITICAL: "CRITICAL"}
@@ -75,50 +75,30 @@ def utc_local(when: str | _dt.datetime | None, tz: ZoneInfo, with_date: bool = T
 
 
 def age_text(seconds: float | None) -> str:
-    """A short age: ``42 s``, ``7 min``, ``3.5 h``, ``2.0 d``."""
+    """A short length of time: ``42 s``, ``7 min``, ``3.5 h``, ``2.0 d`` (sign dropped)."""
     if seconds is None:
         return "-"
     s = abs(seconds)
     if s < 120:
-        text = f"{s:.0f} s"
-    elif s < 7200:
-        text = f"{s / 60:.0f} min"
-    elif s < 172800:
-        text = f"{s / 3600:.1f} h"
-    else:
-        text = f"{s / 86400:.1f} d"
-    return text if seconds >= 0 else f"{text} in the future"
+        return f"{s:.0f} s"
+    if s < 7200:
+        return f"{s / 60:.0f} min"
+    if s < 172800:
+        return f"{s / 3600:.1f} h"
+    return f"{s / 86400:.1f} d"
 
 
-# --------------------------------------------------------------------------- version
+def ago(seconds: float | None) -> str:
+    """``7 min ago`` for a past reading, ``3.5 h ahead of this clock`` for one stamped
+    in the future (a clock is wrong, or the store is a simulated one)."""
+    if seconds is None:
+        return "age unknown"
+    return f"{age_text(seconds)} ago" if seconds >= 0 else \
+        f"{age_text(seconds)} ahead of this clock"
 
-def software_version() -> str:
-    """The installed heliotrope version.
 
-    Read from the distribution's METADATA file on ``sys.path``: importing
-    ``importlib.metadata`` costs about 50 ms, a third of the read commands' budget.
-    """
-    for entry in sys.path:
-        try:
-            base = Path(entry or ".")
-            found = sorted(base.glob("heliotrope-*.dist-info"))
-        except OSError:
-            continue
-        for info in found:
-            try:
-                with (info / "METADATA").open(encoding="utf-8") as fh:
-                    for line in fh:
-                        if line.startswith("Version:"):
-                            return line.split(":", 1)[1].strip()
-                        if not line.strip():
-                            break
-            except OSError:
-                continue
-    from importlib import metadata
-    try:
-        return metadata.version("heliotrope")
-    except metadata.PackageNotFoundError:
-        return "unknown (not installed)"
+def _age_s(when: str | None, now: _dt.datetime) -> float | None:
+    return None if when is None else round((now - parse_utc(when)).total_seconds(), 1)
 
 
 # --------------------------------------------------------------------------- the checks
@@ -206,7 +186,11 @@ def station_status(db_path: str | Path, now: _dt.datetime,
                            "version": software_version(),
                            "store": {"path": str(path),
                                      "size_bytes": storeread.store_files_size(path)},
-                           "disk": _disk(path)}
+                           "disk": _disk(path),
+                           "thresholds": {"heartbeat_warn_s": warn_heartbeat_min * 60,
+                                          "heartbeat_crit_s": crit_heartbeat_min * 60,
+                                          "disk_warn_free_pct": WARN_DISK_FREE_PCT,
+                                          "disk_crit_free_pct": CRIT_DISK_FREE_PCT}}
     try:
         conn = storeread.open_readonly(path)
     except storeread.StoreError as exc:
@@ -276,7 +260,20 @@ def _collect(conn, now: _dt.datetime, out: dict, problems: list,
     age = None if beat is None else (now - beat).total_seconds()
     out["service"] = {"heartbeat_utc": None if beat is None else beat.isoformat(),
                       "heartbeat_age_s": None if age is None else round(age, 1)}
-    if beat is None:
+    origins = storeread.configuration_origins(conn)
+    simulated = "bench" in origins and "service" not in origins
+    out["simulated"] = simulated
+    if simulated:
+        # Its times are the simulator's clock: ages and plans say nothing of a station.
+        last_beat = utc_local(beat, ZoneInfo("UTC")) if beat else "never"
+        problems.append((WARNING, "a simulated store (made on the bench by `heliotrope "
+                                  "demo`): its times are the simulated clock's, last "
+                                  f"heartbeat {last_beat}"
+                                  "; point --db at a station's store to watch a station"))
+        if beat is not None:
+            now = beat  # the ages below are then on the store's own (simulated) clock
+            out["service"]["heartbeat_age_s"] = 0.0
+    elif beat is None:
         problems.append((CRITICAL, "the service has never written a heartbeat: "
                                    "is heliotroped running?"))
     elif age < -FUTURE_SKEW_S:
@@ -292,7 +289,8 @@ def _collect(conn, now: _dt.datetime, out: dict, problems: list,
     latest_plan = storeread.stored_plan(conn)
     out["timezone"] = (latest_plan or {}).get("timezone") or "UTC"
     out["site_name"] = (latest_plan or {}).get("site_name")
-    _plan_check(plans, latest_plan, now, out, problems)
+    if not simulated:
+        _plan_check(plans, latest_plan, now, out, problems)
 
     last = storeread.last_measurement(conn)
     out["last_measurement"] = last
@@ -305,9 +303,25 @@ def _collect(conn, now: _dt.datetime, out: dict, problems: list,
         else:
             problems.append((WARNING, f"the last measurement failed: {last['failure']}"))
 
-    out["next_target"] = _next_target(plans, now)
+    if last is not None:
+        last["age_s"] = _age_s(last["time_utc"], now)
+    nxt = _next_target(plans, now)
+    if nxt is not None:
+        nxt["in_s"] = -_age_s(nxt["time_utc"], now)
+    out["next_target"] = nxt
     hk = storeread.latest_housekeeping(conn)
+    if hk is not None:
+        hk["age_s"] = _age_s(hk["time_utc"], now)
     out["housekeeping"] = hk
+    # "Today" of a simulated store is the day of its last measurement.
+    day_of = parse_utc(last["time_utc"]) if simulated and last is not None else now
+    today = day_of.astimezone(site_zone(out["timezone"])).date()
+    todays = [p for p in plans if p.get("date") == today.isoformat()]
+    out["targets_today"] = {
+        "date": today.isoformat(), "measured": storeread.targets_measured(
+            conn, today, now.astimezone(_dt.UTC).isoformat()),
+        "planned": (sum(1 for t in todays[0]["targets"] if t["session"] in ("am", "pm"))
+                    if todays else None)}
 
     end = (now + _dt.timedelta(seconds=1)).astimezone(_dt.UTC).isoformat()
     faults = storeread.events_between(conn, since, end, FAULT_LEVELS)
@@ -320,17 +334,23 @@ def _collect(conn, now: _dt.datetime, out: dict, problems: list,
         newest = faults[-1]
         problems.append((worst, f"{len(faults)} fault event{'s' if len(faults) != 1 else ''} "
                                 f"in 24 h (newest: {newest['kind']}: {newest['message']})"))
-    out["tracker"] = _tracker(last, _planned_park(plans, now), faults)
+    out["tracker"] = tr = _tracker(last, _planned_park(plans, now), faults)
+    tr["age_s"] = _age_s(tr["time_utc"], now)
+    for f in out["faults_24h"]["latest"]:
+        f["age_s"] = _age_s(f["time_utc"], now)
 
 
 def _finish(out: dict, problems: list[tuple[int, str]]) -> dict[str, Any]:
     problems.sort(key=lambda p: -p[0])
     code = problems[0][0] if problems else OK
     for key in ("service", "last_measurement", "next_target", "tracker", "housekeeping",
-                "faults_24h", "timezone", "site_name", "plan"):
+                "faults_24h", "timezone", "site_name", "plan", "targets_today"):
         out.setdefault(key, None)
-    return {"state": STATE_NAMES[code], "exit_code": code,
-            "problems": [p[1] for p in problems], **out}
+    out.setdefault("simulated", False)
+    st = {"state": STATE_NAMES[code], "exit_code": code,
+          "problems": [p[1] for p in problems], **out}
+    st["perfdata"] = perfdata(st)
+    return st
 
 
 # --------------------------------------------------------------------------- output
@@ -339,31 +359,69 @@ def _mib(n: int | None) -> str:
     return "-" if n is None else f"{n / 2**20:.1f} MiB"
 
 
-def format_status(st: dict[str, Any], now: _dt.datetime) -> str:
-    """The status as a few aligned lines for an 80-column terminal."""
+def _perf_number(value: float | None, spec: str) -> str:
+    return "U" if value is None else format(value, spec)  # U: the plugins' "unknown"
+
+
+def perfdata(st: dict[str, Any]) -> str:
+    """Performance data in the monitoring-plugin format, ``'label'=value[UOM];warn;crit;
+    min;max`` separated by spaces: heartbeat age [s], free disk [%] (alert below the
+    thresholds, range ``N:``), detector temperature [deg C, no unit of the format], and
+    the targets measured today (max: those planned)."""
+    th = st["thresholds"]
+    svc = st.get("service") or {}
+    disk = st.get("disk") or {}
+    hk = st.get("housekeeping") or {}
+    today = st.get("targets_today") or {}
+    items = [
+        f"'heartbeat_age'={_perf_number(svc.get('heartbeat_age_s'), '.0f')}s;"
+        f"{th['heartbeat_warn_s']:.0f};{th['heartbeat_crit_s']:.0f};0;",
+        f"'disk_free'={_perf_number(disk.get('free_pct'), '.1f')}%;"
+        f"{th['disk_warn_free_pct']:g}:;{th['disk_crit_free_pct']:g}:;0;100",
+        f"'detector_temp'={_perf_number(hk.get('detector_temp_c'), '.2f')};;;;",
+        f"'targets_today'={_perf_number(today.get('measured'), 'd')};;;0;"
+        + ("" if today.get("planned") is None else str(today["planned"])),
+    ]
+    return " ".join(items)
+
+
+def _at(when: str | None, age_s: float | None, tz: ZoneInfo, with_date: bool = True) -> str:
+    """A reading's time with its age beside it."""
+    return f"{utc_local(when, tz, with_date)}, {ago(age_s)}" if when else "never"
+
+
+def format_status(st: dict[str, Any], now: _dt.datetime, width: int = 80) -> str:
+    """The status for a person: the head line (state and worst problem, never wrapped),
+    then aligned lines wrapped at ``width`` columns, every reading with its age, then
+    the performance data after a ``|`` (monitoring-plugin convention)."""
     tz = site_zone(st.get("timezone"))
     if st["problems"]:
         head = f"{st['state']}: {st['problems'][0]}"
     else:
-        head = f"{st['state']}: heartbeat {age_text(st['service']['heartbeat_age_s'])} ago"
+        head = f"{st['state']}: heartbeat {ago(st['service']['heartbeat_age_s'])}"
     rows: list[list[str]] = []
+    if st.get("simulated"):
+        rows.append(["store kind", "simulated (bench): times are the simulated clock's"])
     svc = st.get("service")
     if svc is not None:
-        rows.append(["heartbeat", f"{utc_local(svc['heartbeat_utc'], tz)}, "
-                                  f"{age_text(svc['heartbeat_age_s'])} ago"
-                     if svc["heartbeat_utc"] else "never"])
+        rows.append(["heartbeat", _at(svc["heartbeat_utc"], svc["heartbeat_age_s"], tz)])
     last = st.get("last_measurement")
     if last is not None:
         what = f"{last['session']} m={fmt(last['target_airmass'], '.2f')} {last['status']}"
-        rows.append(["last measurement", f"{utc_local(last['time_utc'], tz)}, {what}"])
+        rows.append(["last measurement", f"{_at(last['time_utc'], last['age_s'], tz)}; {what}"])
     elif svc is not None:
         rows.append(["last measurement", "none yet"])
     nxt = st.get("next_target")
     if nxt is not None:
-        rows.append(["next target", f"{utc_local(nxt['time_utc'], tz)}, {nxt['session']} "
+        rows.append(["next target", f"{utc_local(nxt['time_utc'], tz)}, in "
+                                    f"{age_text(nxt['in_s'])}; {nxt['session']} "
                                     f"m={nxt['airmass']:.2f}"])
     elif svc is not None:
         rows.append(["next target", "none in the stored plans"])
+    today = st.get("targets_today")
+    if today is not None:
+        planned = "" if today["planned"] is None else f" of {today['planned']} planned"
+        rows.append(["targets today", f"{today['measured']}{planned} measured ({today['date']})"])
     plan = st.get("plan")
     if plan is not None:
         rows.append(["newest plan", (plan["newest_date"] or "none")
@@ -375,22 +433,22 @@ def format_status(st: dict[str, Any], now: _dt.datetime) -> str:
         if tr["pointing_error_deg"] is not None and tr["source"] == "last measurement":
             text += f", {tr['pointing_error_deg']:.3f} deg off"
         if tr["time_utc"]:
-            text += f" at {utc_local(tr['time_utc'], tz, with_date=False)}"
+            text += f"; {_at(tr['time_utc'], tr['age_s'], tz)}"
         rows.append(["tracker", text])
     hk = st.get("housekeeping")
     if hk is not None:
+        when = _at(hk["time_utc"], hk["age_s"], tz)
         rows.append(["temperatures", f"detector {fmt(hk['detector_temp_c'], '.1f')} C, "
                                      f"case {fmt(hk['case_temp_c'], '.1f')} C, "
-                                     f"ambient {fmt(hk['ambient_temp_c'], '.1f')} C"])
-        rows.append(["supply", f"{fmt(hk['supply_v'], '.2f')} V "
-                               f"at {utc_local(hk['time_utc'], tz, with_date=False)}"])
+                                     f"ambient {fmt(hk['ambient_temp_c'], '.1f')} C; {when}"])
+        rows.append(["supply", f"{fmt(hk['supply_v'], '.2f')} V; {when}"])
     faults = st.get("faults_24h")
     if faults is not None:
         if faults["count"]:
             levels = ", ".join(f"{n} {lvl}" for lvl, n in faults["by_level"].items() if n)
             rows.append(["faults (24 h)", f"{faults['count']} ({levels})"])
             for f in faults["latest"][:3]:
-                rows.append(["", f"{utc_local(f['time_utc'], tz, with_date=False)} "
+                rows.append(["", f"{utc_local(f['time_utc'], tz)} ({ago(f['age_s'])}) "
                                  f"{f['kind']}: {f['message']}"])
         else:
             rows.append(["faults (24 h)", "none"])
@@ -402,16 +460,36 @@ def format_status(st: dict[str, Any], now: _dt.datetime) -> str:
     rows.append(["version", f"heliotrope {st['version']}"])
     for p in st["problems"][1:]:
         rows.append(["also", p])
-    lines = table(["", ""], rows).splitlines()[1:]
-    return "\n".join([head] + [_clip(line) for line in lines])
+    label_w = max(len(r[0]) for r in rows)
+    # The head stays one line, however long: monitors and mail subjects take line one.
+    lines = [head]
+    for label, value in rows:
+        wrapped = _wrap(value, width - label_w - 2, "")
+        lines.append(f"{label.ljust(label_w)}  {wrapped[0]}".rstrip())
+        lines += [" " * (label_w + 2) + more for more in wrapped[1:]]
+    # Performance data after a '|' in the long output, one item a line: the plugin
+    # format allows it there (a first line stays readable at 80 columns).
+    items = st["perfdata"].split(" ")
+    lines += [f"| {items[0]}"] + items[1:]
+    return "\n".join(lines)
 
 
-def _clip(line: str, width: int = 80) -> str:
-    return line if len(line) <= width else line[: width - 3] + "..."
+def _wrap(text: str, width: int, indent: str) -> list[str]:
+    """Words over lines of at most ``width`` columns (a word longer than a line, such
+    as a deep path, is split over lines): nothing is cut off."""
+    import textwrap
+
+    return textwrap.wrap(text, width, subsequent_indent=indent,
+                         break_on_hyphens=False) or [""]
+
+
+def _now() -> _dt.datetime:
+    """The command's clock (the system's); tests put a fixed one in its place."""
+    return _dt.datetime.now(_dt.UTC)
 
 
 def cmd_status(args: argparse.Namespace) -> int:
-    now = _dt.datetime.now(_dt.UTC)
+    now = _now()
     if args.warn_minutes <= 0 or args.crit_minutes < args.warn_minutes:
         from daemon.commands.errors import EX_USAGE, CommandError
         raise CommandError(f"--warn-minutes {args.warn_minutes:g} and --crit-minutes "

@@ -145,6 +145,9 @@ class Config:
     fit: FitSettings = field(default_factory=FitSettings)
     store_path: str = "/var/lib/heliotrope/heliotrope.db"
     source: str = "<memory>"
+    #: The YAML text it was read from (recorded in the store as provenance); "" when
+    #: built from data.
+    text: str = field(default="", compare=False, repr=False)
 
     @property
     def tz(self) -> ZoneInfo:
@@ -628,6 +631,15 @@ def load_config(path: str | Path) -> Config:
     except ConfigError as exc:
         raise ConfigError(f"{path}: {exc}") from None
     try:
-        return parse_config(data, source=str(path))
+        return replace(parse_config(data, source=str(path)), text=text)
     except ConfigError as exc:
         raise ConfigError(f"{path}: {exc}") from None
+
+
+def config_from_text(text: str, source: str) -> Config:
+    """Validate configuration YAML ``text`` (a stored copy) as :func:`load_config` does
+    a file; errors name ``source``."""
+    try:
+        return replace(parse_config(_parse_yaml(text), source=source), text=text)
+    except ConfigError as exc:
+        raise ConfigError(f"{source}: {exc}") from None

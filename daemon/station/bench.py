@@ -248,6 +248,7 @@ def run_simulated_day(config: Config, day: date, store_path: Path, scenario: str
                        sim_args) as rig:
             cfg, store, radiometer, tracker = rig
             clock = SimClock(local_midnight_utc(cfg, day))
+            _record_bench_configuration(store, config, clock.now())
             station = Station(cfg, radiometer, tracker, store, clock)
             fits = run_day(station, day, plan, on_step=outcomes.append)
         # The simulator writes its truth file when it stops, on leaving the rig.
@@ -259,3 +260,55 @@ def run_simulated_day(config: Config, day: date, store_path: Path, scenario: str
                   targets_planned=len([t for t in plan.targets if t.session in ("am", "pm")]),
                   targets_ok=sum(1 for o in outcomes if o.ok),
                   wall_s=time.perf_counter() - t0, store_path=str(store_path))
+
+
+def _record_bench_configuration(store, config: Config, now: datetime) -> None:
+    """Provenance of a simulated store: the configuration as loaded (before it was
+    pointed at the simulator's ports), marked as the bench's, on the simulated clock."""
+    from daemon.store.reader import software_version
+
+    if config.text:
+        store.record_configuration(config.text, config.source, software_version(), now,
+                                   origin="bench")
+
+
+# --------------------------------------------------------------------------- campaigns
+
+def campaign_days(first: date, n_days: int) -> list[date]:
+    """``n_days`` consecutive local dates from ``first``."""
+    if n_days < 1:
+        raise ValueError(f"a campaign needs at least one day; got {n_days}")
+    return [date.fromordinal(first.toordinal() + i) for i in range(n_days)]
+
+
+def next_campaign_day(store_path: Path) -> date | None:
+    """The day after the newest date the store at ``store_path`` holds (a plan or a
+    measurement), for appending days to a bench store; None for an empty store."""
+    import sqlite3
+
+    conn = sqlite3.connect(f"file:{store_path}?mode=ro", uri=True)
+    try:
+        row = conn.execute("SELECT max(d) FROM (SELECT max(plan_date) AS d FROM plans "
+                           "UNION ALL SELECT max(plan_date) FROM measurements)").fetchone()
+    except sqlite3.Error as exc:
+        raise BenchError(f"{store_path}: cannot read its dates ({exc}); pass a store that "
+                         "`heliotrope demo` made") from None
+    finally:
+        conn.close()
+    return None if row[0] is None else date.fromordinal(date.fromisoformat(row[0]).toordinal()
+                                                        + 1)
+
+
+def run_simulated_campaign(config: Config, days: list[date], store_path: Path, scenario: str,
+                           seed: int, port: str = "pty", work_dir: Path | None = None,
+                           on_day=None) -> list[DayRun]:
+    """One simulated day after the other into the same store, each with its own
+    simulator run and seed (``seed + i``: the days differ as real days do)."""
+    runs = []
+    for i, day in enumerate(days):
+        run = run_simulated_day(config, day, store_path, scenario, seed + i, port,
+                                work_dir=work_dir)
+        runs.append(run)
+        if on_day is not None:
+            on_day(run)
+    return runs

@@ -392,10 +392,14 @@ def main(argv: list[str] | None = None) -> int:
         return EX_CONFIG
 
     from daemon.station.acquisition import open_devices
+    from daemon.store.reader import software_version
     from daemon.store.writer import Store, StoreError
 
     try:
         store = Store.open(config.store_path)
+        # Provenance: every result from now on points to the text this start runs with.
+        store.record_configuration(config.text, config.source, software_version(),
+                                   datetime.now(UTC))
     except StoreError as exc:
         print(f"heliotroped: {exc}", file=sys.stderr)
         return EX_IOERR

@@ -18,6 +18,7 @@ The operator's commands never use this module: see :mod:`daemon.store.reader`.
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import json
 import math
 import sqlite3
@@ -46,6 +47,9 @@ __all__ = ["ChannelStats", "MeasurementRecord", "SessionPoint", "Store", "StoreE
 
 STATUSES = ("ok", "failed")
 EVENT_LEVELS = ("debug", "info", "warning", "error", "critical")
+#: Who recorded a configuration: the station, the simulator bench, an operator's
+#: command that writes (calibrate with --config).
+CONFIG_ORIGINS = ("service", "bench", "operator")
 BUSY_TIMEOUT_S = 5.0
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
@@ -170,6 +174,23 @@ def m004_indexes_by_date(db: Database) -> None:
     # second index on samples would nearly double the store's largest table.
 
 
+@migrations()
+def m005_configurations(db: Database) -> None:
+    # Provenance: the configuration text each run used, by its SHA-256, with the
+    # software version and who ran it ('service', or 'bench' for a simulated store).
+    # Results and calibrations point to the configuration that produced them.
+    db["configurations"].create({
+        "id": int, "sha256": str, "text": str, "source": str, "software_version": str,
+        "origin": str, "first_used_utc": str, "last_used_utc": str,
+    }, pk="id", not_null=["sha256", "text", "software_version", "origin", "first_used_utc",
+                          "last_used_utc"])
+    db["configurations"].create_index(["sha256", "software_version", "origin"], unique=True)
+    for table in ("session_results", "calibrations"):
+        # A plain ALTER keeps the table (no rebuild): old rows point nowhere (NULL).
+        db.execute(f"ALTER TABLE {table} ADD COLUMN configuration_id INTEGER "
+                   "REFERENCES configurations(id)")
+
+
 # Every migration is pending on an empty database: that lists the names this version knows.
 KNOWN_MIGRATIONS = frozenset(m.name for m in migrations.pending(
     Database(memory=True, execute_plugins=False)))
@@ -292,6 +313,9 @@ class Store:
         self.db = db
         self.path = path
         self._lock = threading.RLock()
+        #: The configuration this process runs with (see :meth:`record_configuration`);
+        #: session results and calibrations saved from now on point to it.
+        self.configuration_id: int | None = None
 
     @property
     def conn(self) -> sqlite3.Connection:
@@ -354,6 +378,39 @@ class Store:
         self.close()
 
     # ------------------------------------------------------------------ writing
+
+    def record_configuration(self, text: str, source: str, software_version: str,
+                             now: _dt.datetime, origin: str = "service") -> int:
+        """Record the configuration this run uses (its text, SHA-256 and the software
+        version) and make it the one later results and calibrations point to.
+
+        The same text, version and origin reuse their row (its ``last_used_utc`` moves
+        to ``now``); ``origin`` is 'service' for the station and 'bench' for a store
+        filled by the simulator. Returns the row id.
+        """
+        if origin not in CONFIG_ORIGINS:
+            raise ValueError(f"origin must be one of {', '.join(CONFIG_ORIGINS)}; "
+                             f"got {origin!r}")
+        if not text.strip():
+            raise ValueError("an empty configuration text cannot be recorded; pass the "
+                             "text of the YAML file the run loaded")
+        digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
+        when = utc_iso(now)
+        with self._lock, self.db.atomic():
+            row = self.db.conn.execute(
+                "SELECT id FROM configurations WHERE sha256 = ? AND software_version = ? "
+                "AND origin = ?", (digest, software_version, origin)).fetchone()
+            if row is None:
+                cid = int(self.db["configurations"].insert({
+                    "sha256": digest, "text": text, "source": source,
+                    "software_version": software_version, "origin": origin,
+                    "first_used_utc": when, "last_used_utc": when}).last_pk)
+            else:
+                cid = int(row[0])
+                self.db.conn.execute("UPDATE configurations SET last_used_utc = ?, "
+                                     "source = ? WHERE id = ?", (when, source, cid))
+        self.configuration_id = cid
+        return cid
 
     def record_measurement(self, rec: MeasurementRecord) -> int:
         """Write one measurement with its samples and housekeeping atomically.
@@ -473,6 +530,7 @@ class Store:
                 "earth_sun_factor": _num(r.get("earth_sun_factor")),
                 "residual_sd": _num(r.get("residual_sd")),
                 "fitted_utc": fitted if isinstance(fitted, str) else utc_iso(fitted),
+                "configuration_id": self.configuration_id,
             })
             points += _fit_point_rows(date, session, str(r["channel"]), r.get("fit_points", ()))
         with self._lock, self.db.atomic():
@@ -510,7 +568,8 @@ class Store:
         """
         cal = {"created_utc": utc_iso(created_utc), "first_date": check_plan_date(first_date),
                "last_date": check_plan_date(last_date), "site_name": site_name,
-               "settings": _dumps(settings), "notes": _dumps(list(notes))}
+               "settings": _dumps(settings), "notes": _dumps(list(notes)),
+               "configuration_id": self.configuration_id}
         text = ("channel", "sessions", "reasons", "usable")
         with self._lock, self.db.atomic():
             cid = int(self.db["calibrations"].insert(cal).last_pk)
