@@ -59,7 +59,7 @@ from typing import Any
 import pvlib
 import yaml
 
-from sim_instrument import sky
+from sim_instrument import filters, sky
 from sim_instrument.faults import EVENT_KINDS, FaultEvent, FaultPlan, LineFaults
 
 SCENARIO_DIR = Path(__file__).resolve().parent / "scenarios"
@@ -117,10 +117,19 @@ class Atmosphere:
     aerosol_variability_period_s: float = 900.0
     precipitable_water_cm: float = 1.0
     clouds: tuple[Cloud, ...] = ()
+    sky: str = "independent"  # INDEPENDENT_SKY or REFERENCE_SKY
+    aerosol_scale_height_km: float = 1.5  # independent sky: aerosol layer above the station
+    water_vapour_scale_height_km: float = 2.0  # independent sky: water-vapour layer
 
 
 SPECTRAL = "spectral"
 BROADBAND = "broadband"
+
+#: The sky of :mod:`sim_instrument.spectral_sky` (filters, other published physics).
+INDEPENDENT_SKY = "independent"
+#: The sky of :mod:`sim_instrument.sky`: Beer-Lambert at the channel centre with the
+#: fitter's own simplifications (kept for the tests written against it).
+REFERENCE_SKY = "reference"
 
 
 @dataclass(frozen=True)
@@ -134,6 +143,11 @@ class Channel:
     responsivity_v_per_w_m2: float = 0.0  # broadband only
     temp_coeff_per_k: float = 0.0  # relative responsivity change per kelvin
     reference_temp_c: float = 25.0
+    # Filter function: a CSV file (absolute path), or a Gaussian; neither given means
+    # a Gaussian at wavelength_nm with FWHM bandwidth_nm (channel_filter).
+    filter_file: str | None = None
+    filter_centre_nm: float | None = None
+    filter_fwhm_nm: float | None = None
 
 
 @dataclass(frozen=True)
@@ -379,7 +393,14 @@ def _atmosphere(s: _Section) -> Atmosphere:
         precipitable_water_cm=s.number("precipitable_water_cm", 0.0, 10.0, "cm",
                                        default=d.precipitable_water_cm),
         clouds=tuple(_cloud(_Section(c, path, s.source)) for path, c in s.items("clouds")),
+        sky=s.text("sky", default=d.sky),
+        aerosol_scale_height_km=s.number("aerosol_scale_height_km", 0.1, 10.0, "km",
+                                         default=d.aerosol_scale_height_km),
+        water_vapour_scale_height_km=s.number("water_vapour_scale_height_km", 0.1, 10.0,
+                                              "km", default=d.water_vapour_scale_height_km),
     )
+    if atm.sky not in (INDEPENDENT_SKY, REFERENCE_SKY):
+        raise s._fail("sky", f"must be {INDEPENDENT_SKY} or {REFERENCE_SKY}, got {atm.sky!r}")
     if atm.aerosol_drift_until_solar_h < atm.aerosol_drift_from_solar_h:
         raise s._fail("aerosol_drift_until_solar_h", "must not come before "
                                                      "aerosol_drift_from_solar_h")
@@ -418,13 +439,56 @@ def _channel(s: _Section) -> Channel:
         bandwidth_nm=s.number("bandwidth_nm", 0.5, 50.0, "nm", default=10.0),
         v0_1au_v=s.number("v0_1au_v", 0.0, 100.0, "V", lo_open=True),
         **common,
+        **_filter_keys(s.optional_section("filter")),
     )
     s.finish()
+    try:
+        channel_filter(ch)
+    except filters.FilterError as exc:
+        raise ScenarioError(f"{s.source}: '{s.path}.filter': {exc}") from None
     try:
         sky.ozone_cross_section_cm2(ch.wavelength_nm, ch.bandwidth_nm)
     except ValueError as exc:
         raise ScenarioError(f"{s.source}: '{s.path}.wavelength_nm': {exc}") from None
     return ch
+
+
+def _filter_keys(s: _Section | None) -> dict[str, Any]:
+    """``filter: {file: path}`` (relative to the scenario file) or ``{centre_nm, fwhm_nm}``."""
+    if s is None:
+        return {}
+    if "file" in s.data:
+        name = s.text("file")
+        s.finish()
+        base = Path(s.source).parent if s.source and not s.source.startswith("<") \
+            else Path.cwd()
+        return {"filter_file": str((base / name).resolve())}
+    keys = {"filter_centre_nm": s.number("centre_nm", 280.0, 4000.0, "nm"),
+            "filter_fwhm_nm": s.number("fwhm_nm", 0.1, 100.0, "nm")}
+    s.finish()
+    return keys
+
+
+_FILTER_CACHE: dict[tuple, filters.Filter] = {}
+
+
+def channel_filter(ch: Channel) -> filters.Filter:
+    """The filter function of a spectral channel (cached per file or Gaussian).
+
+    Raises filters.FilterError for a bad file.
+    """
+    if ch.filter_file is not None:
+        key: tuple = ("file", ch.filter_file)
+    elif ch.filter_centre_nm is not None:
+        key = ("gauss", ch.filter_centre_nm, ch.filter_fwhm_nm)
+    else:
+        key = ("gauss", ch.wavelength_nm, ch.bandwidth_nm)
+    filt = _FILTER_CACHE.get(key)
+    if filt is None:
+        filt = filters.load_filter_csv(key[1]) if key[0] == "file" else \
+            filters.gaussian(key[1], key[2])
+        _FILTER_CACHE[key] = filt
+    return filt
 
 
 def _thermal(s: _Section | None) -> Thermal:
