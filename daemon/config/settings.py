@@ -13,6 +13,7 @@ fast.
 
 from __future__ import annotations
 
+import logging
 import math
 import os
 import re
@@ -26,6 +27,8 @@ import yaml
 from drivers import registry
 from drivers.interfaces import DriverConfigError
 from drivers.registry import RADIOMETER_DRIVERS, TRACKER_DRIVERS
+
+log = logging.getLogger(__name__)
 
 EX_CONFIG = 78  # sysexits.h: configuration error
 # The longest one command may go unanswered, all retries included. With the slew and
@@ -117,6 +120,15 @@ class FitSettings:
     min_fraction_kept: float = 0.6  # never reject more than 1 - this
     min_points: int = 8
     min_airmass_span: float = 2.0
+    # "scaled": residual limits tested at fit.false_refusal_rate against the scatter a
+    # stable sky gives (max_residual_sd per point, plus the burst's own scatter), the
+    # largest residual against a quantile that grows with the point count; "absolute":
+    # the BSRN-style fixed limits max_residual_sd and max_abs_residual in ln V.
+    acceptance: str = "scaled"
+    false_refusal_rate: float = 0.01  # per criterion, on a stable sky ("scaled")
+    # Correct V0 for the band's curvature, the aerosol layer's and the ozone layer's air
+    # mass (README, "The calibration engine"); false: state them as uncertainty only.
+    correct_model_terms: bool = True
     max_residual_sd: float = 0.003  # in ln V (BSRN Operations Manual, sec. 7.4.2.1)
     max_cv: float = 0.02  # burst coefficient of variation above which a burst is rejected
     max_abs_residual: float = 0.006  # largest residual of a kept point, in ln V (BSRN)
@@ -128,7 +140,9 @@ class FitSettings:
     angstrom_channels: tuple[str, str] | None = None  # None: nearest to 440 and 870 nm
     campaign_min_sessions: int = 3  # accepted sessions a calibration needs per channel
     campaign_clip_sigma: float = 3.0  # sessions further than this from the mean are flagged
-    tau_drift_per_hour: float = 0.0007  # unseen optical-depth drift allowed for, at 500 nm
+    # Deprecated and ignored (the drift allowance now comes from the data: the same day's
+    # other session and the stored campaign's repeatability); kept so old files load.
+    tau_drift_per_hour: float | None = None
     # Same-day morning and afternoon V0 at 1 AU may differ by this fraction (or by three
     # combined uncertainties, when larger) before both are refused as drifting.
     max_am_pm_difference: float = 0.01
@@ -536,6 +550,10 @@ def _read_fit(s: _Section | None) -> FitSettings:
         min_fraction_kept=s.number("min_fraction_kept", 0.1, 1.0, default=0.6),
         min_points=s.integer("min_points", 3, 10000, default=8),
         min_airmass_span=s.number("min_airmass_span", 0.1, 39.0, default=2.0),
+        acceptance=s.string("acceptance", default="scaled", pattern="scaled|absolute",
+                            hint="allowed 'scaled' or 'absolute'"),
+        false_refusal_rate=s.number("false_refusal_rate", 1e-4, 0.2, default=0.01),
+        correct_model_terms=s.boolean("correct_model_terms", default=True),
         max_residual_sd=s.number("max_residual_sd", 1e-5, 1.0, default=0.003, unit="in ln V"),
         max_cv=s.number("max_cv", 1e-5, 1.0, default=0.02),
         max_abs_residual=s.number("max_abs_residual", 1e-4, 1.0, default=0.006, unit="in ln V"),
@@ -550,8 +568,7 @@ def _read_fit(s: _Section | None) -> FitSettings:
         angstrom_channels=_angstrom_channels(s),
         campaign_min_sessions=s.integer("campaign_min_sessions", 1, 10000, default=3),
         campaign_clip_sigma=s.number("campaign_clip_sigma", 1.0, 10.0, default=3.0),
-        tau_drift_per_hour=s.number("tau_drift_per_hour", 0.0, 0.1, default=0.0007,
-                                    unit="per hour"),
+        tau_drift_per_hour=_deprecated_drift(s),
         max_am_pm_difference=s.number("max_am_pm_difference", 0.001, 0.5, default=0.01),
     )
     if fit.airmass_max <= fit.airmass_min:
@@ -559,6 +576,16 @@ def _read_fit(s: _Section | None) -> FitSettings:
                           f"airmass_min {fit.airmass_min:g}; allowed airmass_min to 40")
     s.finish()
     return fit
+
+
+def _deprecated_drift(s: _Section) -> float | None:
+    value = s.number("tau_drift_per_hour", 0.0, 0.1, unit="per hour", optional=True)
+    if value is not None:
+        log.warning("%s: deprecated and ignored; the V0 uncertainty now takes its drift "
+                    "allowance from the data (the same day's other session and the stored "
+                    "campaign's repeatability, see README 'The calibration engine'); remove "
+                    "the key", s._key("tau_drift_per_hour"))
+    return value
 
 
 def _angstrom_channels(s: _Section) -> tuple[str, str] | None:
