@@ -294,6 +294,32 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
     return shifts, terms
 
 
+def model_terms(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float,
+                pressure_hpa: float | None = None) -> tuple[dict[str, float], dict[str, float]]:
+    """:func:`systematic_terms` as ``fit.correct_model_terms`` applies them.
+
+    Corrected: the shifts and what is left of each term. Not corrected: no shifts, and
+    each bias counts in full, rms about zero (JCGM 100:2008, GUM, sec. F.2.4.5).
+    """
+    shifts, terms = systematic_terms(channel, config, airmass, tau_total, pressure_hpa)
+    if config.fit.correct_model_terms:
+        return shifts, terms
+    return {}, {k: math.hypot(u, shifts[k]) for k, u in terms.items()}
+
+
+def shared_unc(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float) -> float:
+    """The part of a window channel's V0 uncertainty its sessions share [fraction].
+
+    The root sum of squares of the :data:`SYSTEMATIC_TERMS` (:func:`model_terms`): the
+    same model is wrong the same way on every clear day, so a campaign does not divide
+    it by its number of sessions. Zero for a water-vapour channel.
+    """
+    if channel.water_vapour:
+        return 0.0
+    _, terms = model_terms(channel, config, airmass, tau_total)
+    return math.sqrt(sum(terms.get(k, 0.0) ** 2 for k in SYSTEMATIC_TERMS))
+
+
 def drift_allowance(stat_and_model_unc: float, repeatability: float | None) -> float:
     """The drift allowance a stored campaign's repeatability gives a session [fraction].
 
@@ -334,13 +360,10 @@ def budget_terms(fit: FitResult, channel: Channel, config: Config, s: ChannelSer
         return fit, {}, notes
     p = s.pressure_hpa[used]
     p_mean = float(np.nanmean(p)) if np.isfinite(p).any() else None
-    shifts, terms = systematic_terms(channel, config, s.airmass[used], fit.tau, p_mean)
+    shifts, terms = model_terms(channel, config, s.airmass[used], fit.tau, p_mean)
     if not config.fit.correct_model_terms:
-        # Left uncorrected, each bias counts in full: rms about zero (GUM, sec. F.2.4.5).
-        terms = {k: math.hypot(u, shifts[k]) for k, u in terms.items()}
         notes.append("model terms not corrected (fit.correct_model_terms: false): stated "
                      "as uncertainty")
-        shifts = {}
     total = sum(shifts.values())
     if shifts and math.isfinite(fit.ln_v0):
         fit = replace(fit, ln_v0=fit.ln_v0 - total, v0=math.exp(fit.ln_v0 - total))

@@ -482,22 +482,43 @@ class Store:
                 [(date, session, rec["channel"]) for rec in records])
             self.db["fit_points"].insert_all(points)
 
+    def _stored_result(self, columns: str, date: str, session: str,
+                       channel: str) -> tuple[Any, ...]:
+        row = self.db.conn.execute(
+            f"SELECT {columns} FROM session_results WHERE plan_date = ? AND session = ? "
+            "AND channel = ?", (date, session, channel)).fetchone()
+        if row is None:
+            raise ValueError(f"no stored result for {date} {session} channel {channel!r}")
+        return tuple(row)
+
     def refuse_session_result(self, plan_date: str | _dt.date, session: str, channel: str,
                               reason: str) -> None:
         """Mark one stored session result as not accepted, with ``reason`` first among
         its reasons (a later check, such as the same day's other session, refused it)."""
         date = check_plan_date(plan_date)
         with self._lock, self.db.atomic():
-            row = self.db.conn.execute(
-                "SELECT reasons, notes FROM session_results WHERE plan_date = ? AND "
-                "session = ? AND channel = ?", (date, session, channel)).fetchone()
-            if row is None:
-                raise ValueError(f"no stored result for {date} {session} channel {channel!r}")
+            row = self._stored_result("reasons, notes", date, session, channel)
             reasons = [reason] + [r for r in json.loads(row[0] or "[]") if r != reason]
             reasons += [n for n in json.loads(row[1] or "[]") if n not in reasons]
             self.db.conn.execute(
                 "UPDATE session_results SET accepted = 0, reasons = ? WHERE plan_date = ? "
                 "AND session = ? AND channel = ?", (_dumps(reasons), date, session, channel))
+
+    def widen_session_result(self, plan_date: str | _dt.date, session: str, channel: str,
+                             v0_rel_unc: float, note: str) -> None:
+        """Raise one stored result's V0 uncertainty to ``v0_rel_unc`` (never lower it) and
+        add ``note`` to its notes (a later check, the same day's other session, found
+        more scatter than it stated alone)."""
+        date = check_plan_date(plan_date)
+        with self._lock, self.db.atomic():
+            row = self._stored_result("v0_rel_unc, notes", date, session, channel)
+            if row[0] is not None and row[0] >= v0_rel_unc:
+                return
+            notes = [*json.loads(row[1] or "[]"), note]
+            self.db.conn.execute(
+                "UPDATE session_results SET v0_rel_unc = ?, notes = ? WHERE plan_date = ? "
+                "AND session = ? AND channel = ?",
+                (_num(v0_rel_unc), _dumps(notes), date, session, channel))
 
     def save_calibration(self, created_utc: _dt.datetime, first_date: str, last_date: str,
                          site_name: str, settings: Mapping[str, Any], notes: Sequence[str],
