@@ -63,8 +63,8 @@ class ChannelCalibration:
     the kept sessions about it [percent], ``drift_pct_per_year`` the slope of V0 against
     time relative to the mean [percent per year] (None with fewer than three kept
     sessions on two or more dates). ``sessions`` lists every session with its deviation
-    and whether it was flagged; ``usable`` is False when fewer than the required sessions are kept, and
-    ``reasons`` says why.
+    and whether it was flagged; ``usable`` is False when fewer than the required
+    sessions are kept, and ``reasons`` says why.
     """
 
     channel: str
