@@ -318,10 +318,15 @@ def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
     # aerosol at 940 nm follows the Angstrom law between 870 and 1020 nm. Schmid and
     # Wehrli (1995) repeat the 0.94 um V0 to 1.0 % with a modified Langley.
     from daemon.science import solar
-    from daemon.science.watervapour import band_transmittance
+    from daemon.science.watervapour import (
+        band_transmittance,
+        water_vapour_airmass_from_kasten_young,
+    )
     config = _water_config()
     v0_wv, column_cm = 1.05, 0.8
-    t_wv = band_transmittance(config.channels[-1].filter, AIRMASS,
+    # the water's slant path is its own air mass's (Kasten 1965)
+    t_wv = band_transmittance(config.channels[-1].filter,
+                              water_vapour_airmass_from_kasten_young(AIRMASS),
                               np.full(AIRMASS.size, column_cm), 650.0)
     aer = {n: TRUTH[n][1] - float(solar.rayleigh_optical_depth(WAVELENGTH[n], 650.0))
            for n in ("870", "1020")}
@@ -351,26 +356,29 @@ def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
         unfitted = storeread.fit_points(store.conn, DAY, "am", "940")
     finally:
         store.close()
-    # The stored points are the modified Langley's: x = m^b with the b derived from the
-    # filter, and y = ln V plus the known extinctions lies on ln(V0 f) - a W^b x.
+    # The stored points are the modified Langley's: x = m_w^b with the water-vapour air
+    # mass m_w (Kasten 1965) and the b derived from the filter, and y = ln V plus the
+    # known extinctions lies on ln(V0 f) - a W^b x.
     water = rows[-1]
     b, a_ub = constants["wv_b"], constants["wv_a"] * column_cm ** constants["wv_b"]
     used = [p for p in fitted if p["role"] == "used"]
     assert len(used) == rows[-1]["n_used"] == AIRMASS.size
     for p, m in zip(used, AIRMASS, strict=True):
-        assert p["x"] == pytest.approx(m ** b, rel=1e-12)
+        assert p["x"] == pytest.approx(water_vapour_airmass_from_kasten_young(m) ** b,
+                                       rel=1e-12)
         assert p["y"] == pytest.approx(math.log(v0_wv * ES_FACTOR) - a_ub * p["x"], abs=2e-3)
     assert all(p["role"] == "unfitted" and p["y"] is None for p in unfitted)
     # The plot draws those points against m^b, and the least-squares line of the used
     # points is the fit's own line: its intercept is the stored ln V0.
-    assert view.x_label == f"air mass^{b:.3g}" and view.n_used == rows[-1]["n_used"]
+    # (the plot names the regressor by the power of the Kasten-Young air mass it is)
+    assert view.x_label.startswith("air mass^0.5") and view.n_used == rows[-1]["n_used"]
     assert view.line_source == "least squares of the stored points used"
     assert view.ln_v0 == pytest.approx(math.log(rows[-1]["v0"]), abs=1e-9)
     assert -view.tau == pytest.approx(-a_ub, abs=0.01)
     for q in view.points:
         assert q.ln_v == pytest.approx(view.ln_v0 - view.tau * q.pos_x, abs=2e-4)
     text = plot.render_terminal(view)
-    assert f"air mass^{b:.3g}" in text and "tau" not in text.splitlines()[1]
+    assert view.x_label in text and "tau" not in text.splitlines()[1]
     assert water["channel"] == "940" and water["accepted"], water["reasons"]
     assert water["v0_1au"] == pytest.approx(v0_wv, rel=0.002)
     # The stored session column is the one the signal was made with.

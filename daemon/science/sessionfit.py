@@ -403,6 +403,8 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
     accepted window channels by the Angstrom law; ``a`` and ``b`` from the channel's
     filter (:func:`water_vapour_fit`). A channel without a filter is not fitted.
     """
+    from daemon.science.watervapour import water_vapour_airmass_from_kasten_young
+
     tau_a = aerosol_at(channel.wavelength_nm, aerosol)
     sp = _screened_arrays(s)
     spec = channel.filter
@@ -438,6 +440,7 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
     known = known_extinction(s.airmass, s.ozone_airmass, s.pressure_hpa)
     fit, wv, u_b_rel = water_vapour_fit(s, channel, config, known, p_ref)
     b = wv.b
+    m_w = water_vapour_airmass_from_kasten_young(s.airmass)
     notes = s.notes + [n for n in ext.notes if not n.startswith("no ozone cross-section")]
     notes.append(f"water-vapour channel: modified Langley, ln V plus Rayleigh, ozone and "
                  f"aerosol {tau_a[0]:.4f} (from {tau_a[1]}) against m^{b:.4f}; a = {wv.a:.4f} "
@@ -448,8 +451,8 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
     row = _row(plan_date, session, channel, fit, s.n_total, s.earth_sun_factor, notes,
                ext.failures, None, report_tau=False)
     row.update(water_vapour_row_keys(wv, fit, u_b_rel))
-    x, y = fit_coordinates(s.airmass, s.signal_v, known, b)
-    sx, sy = fit_coordinates(sp.airmass, sp.signal_v,
+    x, y = fit_coordinates(m_w, s.signal_v, known, b)
+    sx, sy = fit_coordinates(water_vapour_airmass_from_kasten_young(sp.airmass), sp.signal_v,
                              known_extinction(sp.airmass, sp.ozone_airmass, sp.pressure_hpa),
                              b)
     row["fit_points"] = fit_point_records(s, fit, x, y, sx, sy)
@@ -460,6 +463,11 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
                      pressure_hpa: float) -> tuple[FitResult, Any, float]:
     """The modified-Langley fit with a, b from the filter, and b's share of V0's uncertainty.
 
+    The regressor is ``m_w^b`` with ``m_w`` the water-vapour air mass (Kasten 1965,
+    :func:`daemon.science.watervapour.water_vapour_airmass`), not Kasten-Young's: the
+    water sits low, and at air mass 6 the two differ by 2 %, which the long
+    extrapolation of the modified Langley turns into several per cent of V0.
+
     First a, b over the channel's ``water_vapour_range_cm``; the fit's slope gives the
     session's column ``W = (slope / a)^(1/b)``; then a, b again over that column
     +/- :data:`WATER_VAPOUR_REFINE` (the session's own range) and the final fit. The fit
@@ -468,13 +476,21 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
 
     Returns the fit (``v0_rel_unc`` including b's part), the constants used and b's part.
     """
-    from daemon.science.watervapour import derive_constants  # pvlib: only for this channel
+    from daemon.science.watervapour import (  # pvlib: only for this channel
+        derive_constants,
+        water_vapour_airmass_from_kasten_young,
+    )
 
     window = (config.fit.airmass_min, config.fit.airmass_max)
     spec = channel.filter
 
+    m_w = water_vapour_airmass_from_kasten_young(s.airmass)
+    # The window stays the configured one in Kasten-Young air mass: its edges in m_w.
+    lo, hi = water_vapour_airmass_from_kasten_young(np.array(window))
+    settings = replace(config.fit, airmass_min=float(lo), airmass_max=float(hi))
+
     def run(b: float) -> FitResult:
-        return fit_session(s.airmass, s.signal_v, config.fit, ln_correction=known,
+        return fit_session(m_w, s.signal_v, settings, ln_correction=known,
                            regressor_exponent=b, hours=s.hours,
                            drift_per_hour=drift_per_hour(channel, config))
 

@@ -70,6 +70,29 @@ class WaterVapourConstants:
         return w
 
 
+def water_vapour_airmass(apparent_zenith_deg) -> np.ndarray:
+    """Relative air mass of water vapour, Kasten (1965).
+
+    ``m_w = 1 / (cos z + 0.0548 (92.65 - z)^-1.452)``, z the apparent zenith [degrees]:
+    water vapour sits low, so its slant path grows faster towards the horizon than the
+    whole atmosphere's (at 80 degrees 5.71 against Kasten-Young's 5.59). Kasten, F.
+    (1965), "A new table and approximation formula for the relative optical air mass",
+    Arch. Meteor. Geophys. Bioklim. B14:206-223 (coefficients from memory, as quoted
+    for water vapour by Gueymard's SMARTS model). NaN above 90 degrees.
+    """
+    z = np.asarray(apparent_zenith_deg, dtype=float)
+    with np.errstate(invalid="ignore"):
+        m = 1.0 / (np.cos(np.radians(z)) + 0.0548 * (92.65 - z) ** -1.452)
+    return np.where(z <= 90.0, m, np.nan)
+
+
+def water_vapour_airmass_from_kasten_young(airmass) -> np.ndarray:
+    """:func:`water_vapour_airmass` at the zenith of a Kasten-Young air mass."""
+    from daemon.science.solar import apparent_zenith_from_airmass  # pvlib
+
+    return water_vapour_airmass(apparent_zenith_from_airmass(np.asarray(airmass, dtype=float)))
+
+
 @lru_cache(maxsize=1)
 def _spectrl2_water() -> tuple[np.ndarray, np.ndarray]:
     """SPECTRL2 wavelengths [nm] and water-vapour absorption coefficients [cm^-1]."""
