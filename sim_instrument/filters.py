@@ -12,7 +12,6 @@ This module is the simulator's own: the daemon has its own filter reader
 
 from __future__ import annotations
 
-import csv
 import math
 from dataclasses import dataclass
 from functools import lru_cache
@@ -20,6 +19,8 @@ from pathlib import Path
 
 import numpy as np
 import pvlib
+
+from drivers.filtertable import FilterFileError, read_filter_table
 
 _trapezoid = getattr(np, "trapezoid", None) or np.trapz  # numpy < 2 has only trapz
 
@@ -64,57 +65,13 @@ def gaussian(centre_nm: float, fwhm_nm: float) -> Filter:
                   f"Gaussian {centre_nm:g} nm, FWHM {fwhm_nm:g} nm")
 
 
-def parse_filter_rows(rows: list[list[str]], source: str) -> Filter:
-    """A filter from CSV rows (header first); errors name the source and the line."""
-    if not rows:
-        raise FilterError(f"{source}: empty file; give a header 'wavelength_nm,"
-                          f"relative_response' and at least 3 rows")
-    header = [h.strip().lower() for h in rows[0]]
-    if header[:2] != ["wavelength_nm", "relative_response"] or len(header) != 2:
-        raise FilterError(f"{source}: line 1: the header must be 'wavelength_nm,"
-                          f"relative_response', got {','.join(rows[0])!r}")
-    wl: list[float] = []
-    resp: list[float] = []
-    for lineno, row in enumerate(rows[1:], start=2):
-        if not row or all(not c.strip() for c in row):
-            continue
-        if len(row) != 2:
-            raise FilterError(f"{source}: line {lineno}: expected 2 columns (wavelength_nm, "
-                              f"relative_response), got {len(row)}")
-        try:
-            x, y = float(row[0]), float(row[1])
-        except ValueError:
-            raise FilterError(f"{source}: line {lineno}: not a number: "
-                              f"{','.join(row)!r}") from None
-        if not (math.isfinite(x) and math.isfinite(y)):
-            raise FilterError(f"{source}: line {lineno}: values must be finite")
-        if y < 0:
-            raise FilterError(f"{source}: line {lineno}: negative response {y:g}; "
-                              f"responses are relative and must be >= 0")
-        if wl and x <= wl[-1]:
-            raise FilterError(f"{source}: line {lineno}: wavelength {x:g} nm does not "
-                              f"increase (previous {wl[-1]:g} nm); sort the rows")
-        wl.append(x)
-        resp.append(y)
-    if len(wl) < 3:
-        raise FilterError(f"{source}: {len(wl)} data rows; a filter needs at least 3")
-    r = np.asarray(resp)
-    if r.max() <= 0:
-        raise FilterError(f"{source}: every response is 0; the filter passes nothing")
-    return Filter(np.asarray(wl), r / r.max(), f"file {source}")
-
-
 def load_filter_csv(path: str | Path) -> Filter:
-    """Read a two-column filter file (``wavelength_nm,relative_response``)."""
-    p = Path(path)
+    """Read a filter table file (format and checks: :mod:`drivers.filtertable`)."""
     try:
-        with p.open(newline="", encoding="utf-8") as fh:
-            rows = list(csv.reader(fh))
-    except OSError as exc:
-        raise FilterError(f"{p}: cannot read the filter file ({exc.strerror})") from None
-    except UnicodeDecodeError:
-        raise FilterError(f"{p}: not a UTF-8 text file") from None
-    return parse_filter_rows(rows, str(p))
+        wl, resp = read_filter_table(Path(path))
+    except FilterFileError as exc:
+        raise FilterError(str(exc)) from None
+    return Filter(np.asarray(wl), np.asarray(resp), f"file {path}")
 
 
 @lru_cache(maxsize=1)

@@ -24,6 +24,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import yaml
 
+from daemon.config.filterfile import FilterFileError, FilterSpec, gaussian_spec, read_filter_spec
 from drivers import registry
 from drivers.interfaces import DriverConfigError
 from drivers.registry import RADIOMETER_DRIVERS, TRACKER_DRIVERS
@@ -73,6 +74,12 @@ class Channel:
     # Fitted with the modified Langley (ln V against m^b); the loader's default is true
     # for a band inside 925-955 nm.
     water_vapour: bool = False
+    # Filter function (``filter:``); None or given=False: a Gaussian at wavelength_nm
+    # with FWHM bandwidth_nm (daemon.config.filterfile).
+    filter: FilterSpec | None = None
+    # Precipitable water the site expects [cm]: the range over which a water-vapour
+    # channel's modified-Langley constants are derived (daemon.science.watervapour).
+    water_vapour_range_cm: tuple[float, float] = (0.1, 3.0)
 
 
 @dataclass(frozen=True)
@@ -430,7 +437,37 @@ def _timezone(s: _Section) -> str:
     return name
 
 
-def _read_channels(parent: _Section) -> tuple[Channel, ...]:
+def _read_filter(s: _Section | None, base: Path, wavelength_nm: float,
+                 bandwidth_nm: float) -> FilterSpec:
+    """``filter: {file: ..}`` or ``{centre_nm, fwhm_nm}``; else the default Gaussian."""
+    if s is None:
+        return gaussian_spec(wavelength_nm, bandwidth_nm, given=False)
+    if "file" in s.data:
+        name = s.string("file")
+        s.finish()
+        try:
+            return read_filter_spec(base / name)
+        except FilterFileError as exc:
+            raise ConfigError(f"{s._key('file')}: {exc}") from None
+    spec = gaussian_spec(s.number("centre_nm", 280, 4000, unit="nm"),
+                         s.number("fwhm_nm", 0.1, 100, unit="nm"), given=True)
+    s.finish()
+    return spec
+
+
+def _read_column_range(s: _Section | None) -> tuple[float, float]:
+    """``water_vapour_range_cm: {min: .., max: ..}`` [cm]; default 0.1 to 3 cm."""
+    if s is None:
+        return Channel.water_vapour_range_cm
+    lo = s.number("min", 0.01, 10, unit="cm")
+    hi = s.number("max", 0.01, 10, unit="cm")
+    if hi < lo:
+        raise ConfigError(f"{s._key('max')}: {hi:g} cm is below min {lo:g} cm")
+    s.finish()
+    return (lo, hi)
+
+
+def _read_channels(parent: _Section, base: Path = Path(".")) -> tuple[Channel, ...]:
     channels = []
     for path, raw in parent.items("channels"):
         s = _Section(raw, path)
@@ -447,6 +484,11 @@ def _read_channels(parent: _Section) -> tuple[Channel, ...]:
                                                 unit="V per W m^-2 nm^-1", optional=True),
             water_vapour=s.boolean("water_vapour", default=None),
         ))
+        ch = channels[-1]
+        channels[-1] = replace(ch, filter=_read_filter(s.section("filter", required=False),
+                                                       base, ch.wavelength_nm, ch.bandwidth_nm),
+                               water_vapour_range_cm=_read_column_range(
+                                   s.section("water_vapour_range_cm", required=False)))
         if channels[-1].water_vapour is None:
             channels[-1] = replace(channels[-1], water_vapour=_in_water_band(channels[-1]))
         s.finish()
@@ -622,7 +664,8 @@ def parse_config(data: Any, source: str = "<memory>") -> Config:
     top = _Section(data, "")
     site = _read_site(top.section("site"))
     inst = top.section("instrument")
-    channels = _read_channels(inst)
+    base = Path(source).parent if not source.startswith("<") else Path.cwd()
+    channels = _read_channels(inst, base)
     radiometer = _read_port(inst.section("radiometer"), RADIOMETER_DRIVERS, "radiometer")
     tracker = _read_port(inst.section("tracker"), TRACKER_DRIVERS, "tracker")
     inst.finish()

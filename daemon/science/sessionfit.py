@@ -620,25 +620,35 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
                       repeatability: Mapping[str, float] | None = None) -> dict[str, Any]:
     """The modified Langley: ln V plus the known extinctions against m^b.
 
-    ``V = V0 exp(-tau_R m - tau_O3 m_O3 - tau_a m - a (u m)^b)`` for a water-vapour
-    band (water-vapour absorption as a power of the slant column, b about 0.5-0.6;
-    docs/REFERENCES.md, from memory), so ``ln V + tau_R m + tau_O3 m_O3 + tau_a m`` is a
-    straight line in ``m^b`` with intercept ln V0. ``tau_a`` comes from the session's
-    accepted window channels by the Angstrom law.
+    ``V = V0 exp(-tau_R m - tau_O3 m_O3 - tau_a m - a (W m)^b)`` for a water-vapour
+    band, so ``ln V + tau_R m + tau_O3 m_O3 + tau_a m`` is a straight line in ``m^b``
+    with intercept ln V0 and slope ``-a W^b``. ``tau_a`` comes from the session's
+    accepted window channels by the Angstrom law; ``a`` and ``b`` from the channel's
+    filter (:func:`water_vapour_fit`). A channel without a filter is not fitted.
     """
-    b = config.fit.water_vapour_exponent
+    from daemon.science.watervapour import water_vapour_airmass_from_kasten_young
+
     tau_a = aerosol_at(channel.wavelength_nm, aerosol)
     sp = _screened_arrays(s)
-    if tau_a is None:
+    spec = channel.filter
+    failure = None
+    if spec is None or not spec.given:
+        failure = ("not fitted: water-vapour channel without a filter function; give the "
+                   "channel 'filter: {file: <csv>}' or 'filter: {centre_nm: .., fwhm_nm: ..}' "
+                   "so that the modified Langley's a and b can be derived from it")
+    elif tau_a is None:
+        failure = (f"not fitted: water-vapour channel; the modified Langley needs the aerosol "
+                   f"from at least two accepted window channels, and this session has "
+                   f"{len(aerosol)}")
+    if failure is not None:
+        b0 = config.fit.water_vapour_exponent
         row = _row(plan_date, session, channel, None, s.n_total, s.earth_sun_factor,
-                   s.notes, [f"not fitted: water-vapour channel; the modified Langley needs "
-                             f"the aerosol from at least two accepted window channels, and "
-                             f"this session has {len(aerosol)}"])
-        # No aerosol, no corrected ln V: the points are kept with x only.
+                   s.notes, [failure])
+        # No constants or no aerosol, no corrected ln V: the points are kept with x only.
         row["fit_points"] = fit_point_records(
-            s, None, fit_coordinates(s.airmass, s.signal_v, regressor_exponent=b)[0],
+            s, None, fit_coordinates(s.airmass, s.signal_v, regressor_exponent=b0)[0],
             np.full(s.airmass.shape, math.nan),
-            fit_coordinates(sp.airmass, sp.signal_v, regressor_exponent=b)[0],
+            fit_coordinates(sp.airmass, sp.signal_v, regressor_exponent=b0)[0],
             np.full(sp.airmass.shape, math.nan))
         return row
     ext = extinction_corrections(s, channel, config)
@@ -651,25 +661,95 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
         return tau_r_i * m + tau_o3 * m_o3 + tau_a[0] * m
 
     known = known_extinction(s.airmass, s.ozone_airmass, s.pressure_hpa)
-    fit = fit_session(s.airmass, s.signal_v, config.fit, ln_correction=known,
-                      regressor_exponent=b, hours=s.hours, burst_sd_ln=s.burst_sd_ln)
+    fit, wv, u_b_rel = water_vapour_fit(s, channel, config, known, p_ref)
+    b = wv.b
+    m_w = water_vapour_airmass_from_kasten_young(s.airmass)
     rep = (repeatability or {}).get(channel.name)
-    allowance = drift_allowance(fit.v0_stat_unc, rep)
+    allowance = drift_allowance(fit.v0_rel_unc, rep)
     fit = _with_budget(fit, {"campaign_repeatability": allowance},
                        [f"drift allowance {100 * allowance:.3f} % from the stored campaign's "
                         f"repeatability {100 * rep:.3f} % for this channel"]
                        if allowance > 0.0 else [], s, config)
     notes = s.notes + [n for n in ext.notes if not n.startswith("no ozone cross-section")]
     notes.append(f"water-vapour channel: modified Langley, ln V plus Rayleigh, ozone and "
-                 f"aerosol {tau_a[0]:.4f} (from {tau_a[1]}) against m^{b:g}")
+                 f"aerosol {tau_a[0]:.4f} (from {tau_a[1]}) against m^{b:.4f}; a = {wv.a:.4f} "
+                 f"+/- {wv.u_a:.4f}, b = {b:.4f} +/- {wv.u_b:.4f} from the filter "
+                 f"({spec.source}) and SPECTRL2 water vapour at {wv.pressure_hpa:.0f} hPa, "
+                 f"{wv.column_range_cm[0]:.2f}-{wv.column_range_cm[1]:.2f} cm; b's "
+                 f"uncertainty adds {100 * u_b_rel:.2f} % to V0's")
     row = _row(plan_date, session, channel, fit, s.n_total, s.earth_sun_factor, notes,
                ext.failures, None, report_tau=False)
-    x, y = fit_coordinates(s.airmass, s.signal_v, known, b)
-    sx, sy = fit_coordinates(sp.airmass, sp.signal_v,
+    row.update(water_vapour_row_keys(wv, fit, u_b_rel))
+    x, y = fit_coordinates(m_w, s.signal_v, known, b)
+    sx, sy = fit_coordinates(water_vapour_airmass_from_kasten_young(sp.airmass), sp.signal_v,
                              known_extinction(sp.airmass, sp.ozone_airmass, sp.pressure_hpa),
                              b)
     row["fit_points"] = fit_point_records(s, fit, x, y, sx, sy)
     return row
+
+
+def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: np.ndarray,
+                     pressure_hpa: float) -> tuple[FitResult, Any, float]:
+    """The modified-Langley fit with a, b from the filter, and b's share of V0's uncertainty.
+
+    The regressor is ``m_w^b`` with ``m_w`` the water-vapour air mass (Kasten 1965,
+    :func:`daemon.science.watervapour.water_vapour_airmass`), not Kasten-Young's: the
+    water sits low, and at air mass 6 the two differ by 2 %, which the long
+    extrapolation of the modified Langley turns into several per cent of V0.
+
+    First a, b over the channel's ``water_vapour_range_cm``; the fit's slope gives the
+    session's column ``W = (slope / a)^(1/b)``; then a, b again over that column
+    +/- :data:`WATER_VAPOUR_REFINE` (the session's own range) and the final fit. The fit
+    is repeated with ``b +/- u_b``; half the change of ln V0 is b's part of V0's
+    relative uncertainty, added in quadrature to the fit's.
+
+    Returns the fit (``v0_rel_unc`` including b's part), the constants used and b's part.
+    """
+    from daemon.science.watervapour import (  # pvlib: only for this channel
+        derive_constants,
+        water_vapour_airmass_from_kasten_young,
+    )
+
+    window = (config.fit.airmass_min, config.fit.airmass_max)
+    spec = channel.filter
+
+    m_w = water_vapour_airmass_from_kasten_young(s.airmass)
+    # The window stays the configured one in Kasten-Young air mass: its edges in m_w.
+    lo, hi = water_vapour_airmass_from_kasten_young(np.array(window))
+    settings = replace(config.fit, airmass_min=float(lo), airmass_max=float(hi))
+
+    def run(b: float) -> FitResult:
+        return fit_session(m_w, s.signal_v, settings, ln_correction=known,
+                           regressor_exponent=b, hours=s.hours, burst_sd_ln=s.burst_sd_ln)
+
+    wv = derive_constants(spec, pressure_hpa, window, channel.water_vapour_range_cm)
+    fit = run(wv.b)
+    if math.isfinite(fit.tau) and fit.tau > 0:
+        column = (fit.tau / wv.a) ** (1.0 / wv.b)
+        lo, hi = channel.water_vapour_range_cm
+        column = min(max(column, lo), hi)
+        wv = derive_constants(spec, pressure_hpa, window,
+                              (column / WATER_VAPOUR_REFINE, column * WATER_VAPOUR_REFINE))
+        fit = run(wv.b)
+    if not math.isfinite(fit.ln_v0):
+        return fit, wv, math.nan
+    up, down = run(wv.b + wv.u_b), run(wv.b - wv.u_b)
+    u_b_rel = abs(up.ln_v0 - down.ln_v0) / 2.0 if math.isfinite(up.ln_v0 + down.ln_v0) \
+        else math.nan
+    return with_terms(fit, {"water_vapour_exponent": u_b_rel}), wv, u_b_rel
+
+
+#: The session's own column range for the refined a, b: its first estimate times or
+#: divided by this factor (covers the first estimate's error from the wider range's b).
+WATER_VAPOUR_REFINE = 1.3
+
+
+def water_vapour_row_keys(wv: Any, fit: FitResult, u_b_rel: float) -> dict[str, Any]:
+    """The row's water-vapour keys: a, b, their uncertainties, b's part, the column."""
+    column = (fit.tau / wv.a) ** (1.0 / wv.b) if math.isfinite(fit.tau) and fit.tau > 0 \
+        else math.nan
+    return {"wv_a": wv.a, "wv_b": wv.b, "wv_u_a": wv.u_a, "wv_u_b": wv.u_b,
+            "wv_v0_rel_unc_b": u_b_rel, "precipitable_water_cm": column}
 
 
 # --------------------------------------------------------------------------- same day

@@ -53,6 +53,10 @@ _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 migrations = Migrations("heliotrope")
 
+#: session_results columns of a water-vapour channel (m006), the same keys in a fit row.
+WATER_VAPOUR_RESULT_COLUMNS = ("wv_a", "wv_b", "wv_u_a", "wv_u_b", "wv_v0_rel_unc_b",
+                               "precipitable_water_cm")
+
 
 @migrations()
 def m001_initial(db: Database) -> None:
@@ -168,6 +172,18 @@ def m004_indexes_by_date(db: Database) -> None:
     # sample_index), fit_points (plan_date, session, channel, measurement_id), aod
     # (measurement_id, channel) and measurement_channels (measurement_id, channel); a
     # second index on samples would nearly double the store's largest table.
+
+
+@migrations()
+def m006_water_vapour(db: Database) -> None:
+    # A water-vapour channel's modified-Langley constants (T = exp(-a (m W)^b), derived
+    # from its filter), their standard uncertainties, b's share of V0's relative
+    # uncertainty and the session's column [cm], with its result. Per measurement,
+    # the precipitable water [cm] from a calibrated water-vapour channel, in the aod
+    # table (its aod is NULL on that row). NULL for window channels and older rows.
+    for column in WATER_VAPOUR_RESULT_COLUMNS:
+        db["session_results"].add_column(column, float)
+    db["aod"].add_column("precipitable_water_cm", float)
 
 
 # Every migration is pending on an empty database: that lists the names this version knows.
@@ -473,6 +489,7 @@ class Store:
                 "earth_sun_factor": _num(r.get("earth_sun_factor")),
                 "residual_sd": _num(r.get("residual_sd")),
                 "fitted_utc": fitted if isinstance(fitted, str) else utc_iso(fitted),
+                **{k: _num(r.get(k)) for k in WATER_VAPOUR_RESULT_COLUMNS},
             })
             points += _fit_point_rows(date, session, str(r["channel"]), r.get("fit_points", ()))
         with self._lock, self.db.atomic():
