@@ -272,7 +272,10 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
     tau_o3 = 0.0 if sigma is None else ozone_optical_depth(sigma, config.site.ozone_du)
     tau_a = tau_total - tau_r - tau_o3 if math.isfinite(tau_total) else 0.0
     tau_a = max(tau_a, 0.0)
-    z = np.asarray(solar.apparent_zenith_from_airmass(m), dtype=float)
+    z = np.atleast_1d(np.asarray(solar.apparent_zenith_from_airmass(m), dtype=float))
+    m, z = m[np.isfinite(z)], z[np.isfinite(z)]  # beyond the horizon's air mass: no zenith
+    if m.size < 2 or np.ptp(m) == 0.0:
+        return {}, {}
     elev_m = config.site.elevation_m
 
     def shift(pattern: np.ndarray) -> float:
