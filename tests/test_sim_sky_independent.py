@@ -132,18 +132,16 @@ def test_a_narrow_filter_gives_beer_lambert_at_its_centre():
 
 # ------------------------------------------------------------------------ session series
 
-def _with_940(scenario, water_cm: float):
-    inst = scenario.instrument
-    ch940 = replace(inst.channels[4], name="940", wavelength_nm=940.0, v0_1au_v=1.2)
-    return replace(scenario, instrument=replace(inst, channels=inst.channels + (ch940,)),
-                   atmosphere=replace(scenario.atmosphere, precipitable_water_cm=water_cm))
+def _with_water(scenario, water_cm: float):
+    return replace(scenario, atmosphere=replace(scenario.atmosphere,
+                                                precipitable_water_cm=water_cm))
 
 
 def test_session_series_meets_its_targets_in_the_daemons_geometry():
     # The bursts sit where the daemon's own geometry (NREL SPA and Kasten-Young,
     # daemon.science.solar) puts the air-mass targets.
     from tests.independent_sky import channel_series
-    scen = load_scenario("pico-sereno-clear")
+    scen = load_scenario("pico-sereno-independent")
     r = session_series(scen, dt.date(2025, 2, 12), "am", seed=1, burst_noise_relative=0.0)
     s = channel_series(r, config_for(scen))["500"]
     assert np.all(np.diff(r.epoch_s) > 0) and np.all(np.diff(s.airmass) < 0)  # morning
@@ -156,7 +154,7 @@ def test_session_series_meets_its_targets_in_the_daemons_geometry():
 
 def test_a_western_afternoon_crosses_00_utc():
     # 150 W: local noon is near 22 h UTC, so the afternoon ends on the next UTC date.
-    scen = load_scenario("pico-sereno-clear")
+    scen = load_scenario("pico-sereno-independent")
     west = replace(scen, site=replace(scen.site, longitude_deg=-150.0))
     r = session_series(west, dt.date(2025, 2, 12), "pm", seed=2)
     dates = {t.date() for t in r.times_utc}
@@ -181,7 +179,7 @@ WINDOW = ("380", "440", "500", "675", "870", "1020")
 def test_window_channels_on_the_independent_stable_sky_within_their_uncertainty():
     # Done-when of issue 13 (window channels): the fit's error stays inside three of its
     # own stated uncertainties on a sky it did not write (noise 0.1 % per burst mean).
-    sessions = _stable_sessions(load_scenario("pico-sereno-clear"), 3, 0.001, 5)
+    sessions = _stable_sessions(load_scenario("pico-sereno-independent"), 3, 0.001, 5)
     for r, rows in sessions:
         for name in WINDOW:
             row = rows[name]
@@ -197,7 +195,7 @@ def test_window_channels_on_the_independent_stable_sky_within_0_15_percent():
     # Done-when of issue 13: V0 within 0.15 % of the truth at every wavelength, 380 nm
     # included (stable sky, noise 0.05-0.2 % per burst mean; Schmid and Wehrli 1995
     # report below 0.25 % rms at a 3580 m station, docs/REFERENCES.md).
-    sessions = _stable_sessions(load_scenario("pico-sereno-clear"), 3, 0.001, 5)
+    sessions = _stable_sessions(load_scenario("pico-sereno-independent"), 3, 0.001, 5)
     for name in WINDOW:
         errors = [v0_error(rows[name], r) for r, rows in sessions]
         assert abs(float(np.mean(errors))) < 0.0015, (name, np.mean(errors))
@@ -209,7 +207,7 @@ def test_940_nm_on_the_independent_sky(water_cm):
     # within three stated uncertainties, and a campaign of ten stable days (the mean of
     # its accepted sessions) is within 1 % (Schmid and Wehrli 1995: 1.0 % at 0.94 um with
     # a modified Langley, docs/REFERENCES.md).
-    scen = _with_940(load_scenario("pico-sereno-clear"), water_cm)
+    scen = _with_water(load_scenario("pico-sereno-independent"), water_cm)
     sessions = _stable_sessions(scen, 10, 0.001, 7)
     errors = []
     for r, rows in sessions:
