@@ -88,3 +88,43 @@ def test_column_from_the_constants_inverts_the_transmittance():
 def test_bad_ranges_are_refused():
     with pytest.raises(ValueError, match="airmass_min < airmass_max"):
         wv.derive_constants(FILTER_940, PICO_HPA, (6.0, 2.0), (0.1, 3.0))
+
+
+def test_export_gives_the_precipitable_water_of_each_measurement(tmp_path):
+    # A session on the simulator's independent sky (0.8 cm, its own band integral and
+    # water air mass), stored as the service would, with a calibration at the true V0:
+    # every 940 nm row of 'export --what aod' carries the column, within 3 % of the
+    # sky's truth (two implementations of SPECTRL2 on different air masses).
+    import datetime as dt
+
+    from daemon.station.fitting import update_aod
+    from daemon.store.reader import aod_between
+    from daemon.store.writer import Store
+    from sim_instrument.scenario import load_scenario
+    from sim_instrument.sessions import session_series
+    from tests.independent_sky import config_for, records
+
+    scen = load_scenario("pico-sereno-independent")
+    config = config_for(scen)
+    s = session_series(scen, dt.date(2025, 2, 12), "am", seed=4, burst_noise_relative=0.0005)
+    store = Store.open(tmp_path / "h.db")
+    try:
+        for rec in records(s, config):
+            store.record_measurement(rec)
+        rows = [{"channel": n, "wavelength_nm": config.channel(n).wavelength_nm,
+                 "v0_1au": s.truth[n].v0_1au_v, "v0_1au_unc": 0.001 * s.truth[n].v0_1au_v,
+                 "repeatability_pct": 0.2, "n_sessions": 10, "n_flagged": 0,
+                 "drift_pct_per_year": None, "drift_unc_pct_per_year": None,
+                 "e0_1au_w_m2_nm": None, "astm_ratio": None, "usable": True, "sessions": [],
+                 "reasons": []} for n in s.channels]
+        store.save_calibration(dt.datetime(2025, 3, 1, tzinfo=dt.UTC), "2025-02-12",
+                               "2025-02-12", scen.site.name, {}, [], rows)
+        assert update_aod(store, config, "2025-02-12", "2025-02-12") > 0
+        out = list(aod_between(store.conn, "2025-02-12", "2025-02-12"))
+    finally:
+        store.close()
+    water = [r for r in out if r["channel"] == "940"]
+    assert len(water) == len(s.times_utc)
+    assert all(r["aod"] is None for r in water)
+    np.testing.assert_allclose([r["precipitable_water_cm"] for r in water], 0.8, rtol=0.03)
+    assert all(r["precipitable_water_cm"] is None for r in out if r["channel"] != "940")
