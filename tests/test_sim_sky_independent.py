@@ -222,3 +222,39 @@ def test_940_nm_on_the_independent_sky(water_cm):
         assert row["precipitable_water_cm"] == pytest.approx(water_cm, rel=0.03)
     assert len(errors) >= 10
     assert abs(float(np.mean(errors))) < 0.01
+
+
+def test_the_simulated_station_runs_the_independent_sky():
+    # The protocol's station and session_series are two doors to one sky: a burst's
+    # noise-free mean signal is V0 (r0/r)^2 times the band transmittance of
+    # sim_instrument.spectral_sky at the burst's own geometry and pressure, and the
+    # truth says which sky ran, the filters and the layer air masses.
+    from datetime import UTC, datetime, timedelta
+
+    from sim_instrument import sky as refsky
+    from sim_instrument.model import SimulatedStation
+    scen = load_scenario("pico-sereno-independent")
+    when = datetime(2025, 2, 12, 14, 30, tzinfo=UTC)
+    st = SimulatedStation(scen, seed=0, speed=0.0)
+    st.set_clock(when)
+    site = scen.site
+    geo = refsky.solar_position([when], site.latitude_deg, site.longitude_deg,
+                                site.elevation_m, site.pressure_hpa, site.temperature_c)
+    st.goto(float(geo.azimuth_deg[0]), float(geo.apparent_elevation_deg[0]))
+    st.follow_sun(True)
+    st.set_clock(when + timedelta(seconds=60))
+    assert st.tracker_state()["locked"]
+    st.burst(10)
+    truth = st.truth()
+    assert truth["atmosphere"]["sky"] == "independent"
+    assert truth["channels"]["940"]["filter"] == "Gaussian 940 nm, FWHM 10 nm"
+    reading = truth["readings"][-1]
+    assert reading["airmass_aerosol"] > reading["airmass_rayleigh"]  # a low layer
+    assert reading["airmass_ozone"] != pytest.approx(reading["airmass_rayleigh"], rel=1e-4)
+    wv = reading["channels"]["940"]
+    assert wv["tau_water_vapour"] > 0.0 and wv["tau_effective"] > wv["tau_rayleigh"]
+    # the same instant through session_series' sky
+    r = session_series(scen, dt.date(2025, 2, 12), "am", seed=0, burst_noise_relative=0.0,
+                       times_utc=[datetime.fromisoformat(reading["mean_utc"])])
+    assert reading["channels"]["500"]["signal_v"] == pytest.approx(
+        r.signal_v[0, 2] * reading["field_of_view_fraction"], rel=2e-4)
