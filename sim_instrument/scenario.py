@@ -15,12 +15,16 @@ Layout (units in the key names; "(x)" marks an optional key and its default)::
     weather:                                      # (all defaults)
       ambient_diurnal_range_k (10), humidity_pct (35), humidity_diurnal_range_pct (40),
       wind_m_s (2), wind_diurnal_range_m_s (0), wind_gust_sd_m_s (0),
-      pressure_tide_hpa (0), supply_v (12.6)
+      pressure_tide_hpa (0), pressure_trend_hpa_per_h (0), supply_v (12.6)
     atmosphere:
       ozone_du, aerosol_tau_500, angstrom_alpha,
       aerosol_drift_per_h (0), aerosol_drift_from_solar_h (6),
       aerosol_drift_until_solar_h (12), aerosol_variability (0),
-      aerosol_variability_period_s (900), precipitable_water_cm (1.0)
+      aerosol_variability_period_s (900), precipitable_water_cm (1.0),
+      aerosol_wave (0), aerosol_wave_period_h (6),     # relative sinusoid, random phase
+      aerosol_noon_peak (0), aerosol_noon_peak_width_h (1.5),  # haze peaking at noon
+      sky (independent | reference), aerosol_scale_height_km (1.5),
+      water_vapour_scale_height_km (2.0)
       clouds: [{from_solar_h, until_solar_h, optical_depth, patchiness (0),
                 cell_s (600)}, ...]                # ([])
     instrument:
@@ -91,6 +95,7 @@ class Weather:
     wind_diurnal_range_m_s: float = 0.0  # calmest to windiest (windiest mid-afternoon)
     wind_gust_sd_m_s: float = 0.0  # short-term variability [m/s]
     pressure_tide_hpa: float = 0.0  # semidiurnal tide amplitude [hPa]
+    pressure_trend_hpa_per_h: float = 0.0  # weather: a steady change through the day
     supply_v: float = 12.6  # station supply [V]
 
 
@@ -115,6 +120,10 @@ class Atmosphere:
     aerosol_drift_until_solar_h: float = 12.0
     aerosol_variability: float = 0.0  # relative standard deviation of tau_500
     aerosol_variability_period_s: float = 900.0
+    aerosol_wave: float = 0.0  # relative amplitude of a slow sinusoid in tau_500
+    aerosol_wave_period_h: float = 6.0
+    aerosol_noon_peak: float = 0.0  # tau_500 added at local solar noon (Gaussian in time)
+    aerosol_noon_peak_width_h: float = 1.5  # its standard deviation [h]
     precipitable_water_cm: float = 1.0
     clouds: tuple[Cloud, ...] = ()
     sky: str = "independent"  # INDEPENDENT_SKY or REFERENCE_SKY
@@ -347,6 +356,8 @@ def _weather(s: _Section | None) -> Weather:
                                   default=d.wind_gust_sd_m_s),
         pressure_tide_hpa=s.number("pressure_tide_hpa", 0.0, 5.0, "hPa",
                                    default=d.pressure_tide_hpa),
+        pressure_trend_hpa_per_h=s.number("pressure_trend_hpa_per_h", -5.0, 5.0, "hPa per h",
+                                          default=d.pressure_trend_hpa_per_h),
         supply_v=s.number("supply_v", 5.0, 30.0, "V", default=d.supply_v),
     )
     if w.wind_diurnal_range_m_s / 2.0 > w.wind_m_s:
@@ -390,6 +401,14 @@ def _atmosphere(s: _Section) -> Atmosphere:
                                      default=d.aerosol_variability),
         aerosol_variability_period_s=s.number("aerosol_variability_period_s", 1.0, 86400.0,
                                               "s", default=d.aerosol_variability_period_s),
+        aerosol_wave=s.number("aerosol_wave", 0.0, 0.9, "(relative amplitude)",
+                              default=d.aerosol_wave),
+        aerosol_wave_period_h=s.number("aerosol_wave_period_h", 0.5, 48.0, "h",
+                                       default=d.aerosol_wave_period_h),
+        aerosol_noon_peak=s.number("aerosol_noon_peak", 0.0, 2.0, "(optical depth)",
+                                   default=d.aerosol_noon_peak),
+        aerosol_noon_peak_width_h=s.number("aerosol_noon_peak_width_h", 0.1, 12.0, "h",
+                                           default=d.aerosol_noon_peak_width_h),
         precipitable_water_cm=s.number("precipitable_water_cm", 0.0, 10.0, "cm",
                                        default=d.precipitable_water_cm),
         clouds=tuple(_cloud(_Section(c, path, s.source)) for path, c in s.items("clouds")),

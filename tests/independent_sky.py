@@ -77,6 +77,36 @@ def channel_series(series: SessionSeries, config: Config) -> dict[str, ChannelSe
     return out
 
 
+def records(series: SessionSeries, config: Config) -> list:
+    """The session as the service would store it (no dark signal, lock confirmed)."""
+    from daemon.store.writer import MeasurementRecord
+    from drivers.interfaces import Housekeeping
+
+    by_channel = channel_series(series, config)
+    first = by_channel[series.channels[0]]
+    sun = solar.sun_position(list(series.times_utc), config.site,
+                             pressure_hpa=float(np.mean(series.pressure_hpa)))
+    k = series.samples_v.shape[1]
+    out = []
+    for i, t in enumerate(series.times_utc):
+        p = float(series.pressure_hpa[i])
+        out.append(MeasurementRecord(
+            time_utc=t, plan_date=series.local_date.isoformat(), session=series.session,
+            target_airmass=float(first.airmass[i]), status="ok", failure=None,
+            apparent_zenith_deg=float(sun.apparent_zenith_deg[i]),
+            azimuth_deg=float(sun.azimuth_deg[i]), airmass=float(first.airmass[i]),
+            ozone_airmass=float(first.ozone_airmass[i]),
+            earth_sun_factor=float(first.earth_sun_factor[i]), pressure_hpa=p,
+            pointing_error_deg=0.02, locked=True, duration_s=0.2 * (k - 1),
+            channels=series.channels, sun=tuple(map(tuple, series.samples_v[i].tolist())),
+            dark=tuple((0.0,) * len(series.channels) for _ in range(3)),
+            saturated=(False,) * len(series.channels),
+            housekeeping=Housekeeping(detector_temp_c=25.0, case_temp_c=15.0,
+                                      ambient_temp_c=5.0, supply_v=12.6, humidity_pct=20.0,
+                                      pressure_hpa=p)))
+    return out
+
+
 def fit_rows(series: SessionSeries, config: Config) -> dict[str, dict]:
     """The daemon's fit of one simulated session, by channel name."""
     rows = fit_series(channel_series(series, config), config,

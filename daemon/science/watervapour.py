@@ -194,3 +194,86 @@ def derive_constants(spec: FilterSpec, pressure_hpa: float,
                                 airmass_range=(float(m_lo), float(m_hi)),
                                 column_range_cm=(float(w_lo), float(w_hi)),
                                 pressure_hpa=float(pressure_hpa), max_residual=misfit)
+
+
+@lru_cache(maxsize=32)
+def channel_constants(spec: FilterSpec, pressure_hpa: float, airmass_range: tuple[float, float],
+                      column_range_cm: tuple[float, float]) -> WaterVapourConstants:
+    """:func:`derive_constants`, cached (the filter spec is hashable)."""
+    return derive_constants(spec, pressure_hpa, airmass_range, column_range_cm)
+
+
+def precipitable_water_cm(signal_v: float, v0_1au_v: float, earth_sun_factor: float,
+                          airmass: float, ozone_airmass: float, tau_rayleigh: float,
+                          tau_ozone: float, tau_aerosol: float,
+                          constants: WaterVapourConstants) -> float:
+    """Precipitable water [cm] of one measurement of a calibrated water-vapour channel.
+
+    ``W = ([ln(V0 f / V) - tau_R m - tau_O3 m_O3 - tau_a m] / a)^(1/b) / m_w`` with
+    ``m`` the Kasten-Young air mass (Rayleigh and aerosol), ``m_O3`` the ozone air mass
+    and ``m_w`` the water-vapour air mass (Kasten 1965) at the same zenith; NaN when
+    the water-vapour absorption left is not positive.
+    """
+    slant = math.log(v0_1au_v * earth_sun_factor / signal_v) - tau_rayleigh * airmass - \
+        tau_ozone * ozone_airmass - tau_aerosol * airmass
+    if not slant > 0.0:
+        return math.nan
+    m_w = float(water_vapour_airmass_from_kasten_young(np.array([airmass]))[0])
+    return (slant / constants.a) ** (1.0 / constants.b) / m_w
+
+
+def water_vapour_channels(config, v0: dict) -> list:
+    """Calibrated water-vapour channels with a filter: those that give a column."""
+    return [c for c in config.channels if c.water_vapour and c.name in v0
+            and c.filter is not None and c.filter.given]
+
+
+def point_water(p, channels, config, v0: dict, window_aod: dict, calibration_id: int,
+                aerosol_at) -> list:
+    """``aod`` table rows of one measurement's calibrated water-vapour channels.
+
+    Each row carries the precipitable water [cm] (:func:`precipitable_water_cm`) and
+    a None ``aod``; the aerosol at the channel comes from the same measurement's
+    unflagged window AODs through ``aerosol_at(wavelength_nm, {nm: aod})`` (the
+    session fit's Angstrom interpolation, :func:`daemon.science.sessionfit.aerosol_at`).
+    """
+    from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
+    from daemon.science.screening import point_signal
+    from daemon.science.solar import ozone_airmass, rayleigh_optical_depth
+
+    m, esf = p.airmass, p.earth_sun_factor
+    if not channels or m is None or not m > 0 or esf is None or not esf > 0:
+        return []
+    aerosol = {r["wavelength_nm"]: r["aod"] for r in window_aod.values()
+               if not r["flag"] and r["aod"] is not None and r["aod"] > 0}
+    rows = []
+    for c in channels:
+        ps = point_signal(p, c, config)
+        tau_a = aerosol_at(c.wavelength_nm, aerosol)
+        if ps.signal_v is None or not ps.signal_v > 0 or ps.screened is not None or \
+                tau_a is None:
+            continue
+        pressure = (p.housekeeping.pressure_hpa if p.housekeeping is not None and
+                    p.housekeeping.pressure_hpa is not None else p.pressure_hpa)
+        if pressure is None:
+            pressure = config.site.pressure_hpa or 1013.25
+        m_o3 = p.ozone_airmass if p.ozone_airmass is not None else float(
+            ozone_airmass(p.apparent_zenith_deg, config.site.elevation_m))
+        sigma = channel_cross_section_cm2(c)
+        tau_o3 = 0.0 if sigma is None else ozone_optical_depth(sigma, config.site.ozone_du)
+        tau_r = float(rayleigh_optical_depth(c.wavelength_nm, pressure))
+        k = channel_constants(c.filter, round(float(pressure)), (config.fit.airmass_min,
+                                                                 config.fit.airmass_max),
+                              c.water_vapour_range_cm)
+        cal = v0[c.name]
+        w = precipitable_water_cm(ps.signal_v, cal["v0_1au"], esf, m, m_o3, tau_r, tau_o3,
+                                  tau_a[0], k)
+        rows.append({
+            "measurement_id": p.measurement_id, "channel": c.name,
+            "calibration_id": calibration_id, "wavelength_nm": c.wavelength_nm,
+            "aod": None, "aod_unc": None,
+            "tau_total": math.log(cal["v0_1au"] * esf / ps.signal_v) / m,
+            "tau_rayleigh": tau_r, "tau_ozone": tau_o3, "airmass": m, "ozone_airmass": m_o3,
+            "pressure_hpa": pressure, "flag": None, "precipitable_water_cm": w,
+        })
+    return rows

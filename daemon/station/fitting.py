@@ -18,7 +18,8 @@ from daemon.config.settings import Config
 from daemon.science import solar
 from daemon.science.aod import angstrom_pair, point_alpha, point_aod
 from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
-from daemon.science.sessionfit import apply_day_check, fit_series, screen_channel
+from daemon.science.sessionfit import aerosol_at, apply_day_check, fit_series, screen_channel
+from daemon.science.watervapour import point_water, water_vapour_channels
 from daemon.store.reader import (
     FIT_SESSIONS,
     SESSIONS,
@@ -155,6 +156,7 @@ def update_aod(store: Store, config: Config, first: str, last: str,
     channels = [c for c in config.channels if c.name in v0 and not c.water_vapour]
     if not channels:
         return 0
+    water = water_vapour_channels(config, v0)
     nominal_p = solar.site_pressure_hpa(config.site)
     tau_o3 = {}
     for c in channels:
@@ -168,6 +170,7 @@ def update_aod(store: Store, config: Config, first: str, last: str,
         for p in store.session_points(date, session):
             per_channel = point_aod(p, channels, config, v0, tau_o3, nominal_p, cal["id"])
             rows.extend(per_channel.values())
+            rows.extend(point_water(p, water, config, v0, per_channel, cal["id"], aerosol_at))
             if pair is not None:
                 alpha = point_alpha(p.measurement_id, per_channel, pair, cal["id"])
                 if alpha is not None:

@@ -591,12 +591,14 @@ _AOD_SQL = """
 SELECT m.time_utc, m.plan_date, m.session, a.measurement_id, a.channel, a.wavelength_nm,
        a.aod, a.aod_unc, a.tau_total, a.tau_rayleigh, a.tau_ozone, a.airmass,
        a.ozone_airmass, a.pressure_hpa, a.flag, a.calibration_id, g.angstrom_alpha,
-       g.channel_short, g.channel_long, {water}
+       g.channel_short, g.channel_long, a.precipitable_water_cm
 FROM measurements m CROSS JOIN aod a ON a.measurement_id = m.id
 LEFT JOIN aod_angstrom g ON g.measurement_id = a.measurement_id
 WHERE m.plan_date BETWEEN ? AND ?
 ORDER BY m.plan_date, m.time_utc, m.id, a.wavelength_nm, a.channel
 """
+# A store from before m006 has no precipitable-water column: None there.
+_AOD_SQL_BEFORE_M006 = _AOD_SQL.replace("a.precipitable_water_cm", "NULL")
 
 
 def _has_table(conn: sqlite3.Connection, name: str) -> bool:
@@ -664,10 +666,9 @@ def aod_between(conn: sqlite3.Connection, first: str | _dt.date,
         raise ValueError(f"the end date {d2} is before the start date {d1}; swap them")
     if not (_has_table(conn, "aod") and _has_table(conn, "aod_angstrom")):
         return
-    # Stores from before m006 have no precipitable-water column: None there.
-    water = "a.precipitable_water_cm" if _has_column(conn, "aod", "precipitable_water_cm") \
-        else "NULL"
-    cur = conn.execute(_AOD_SQL.format(water=water), (d1, d2))
+    sql = _AOD_SQL if _has_column(conn, "aod", "precipitable_water_cm") else \
+        _AOD_SQL_BEFORE_M006
+    cur = conn.execute(sql, (d1, d2))
     while True:
         batch = cur.fetchmany(500)
         if not batch:
