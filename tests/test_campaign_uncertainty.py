@@ -53,7 +53,7 @@ def test_ten_simulated_days_campaign_uncertainty_not_below_spread_over_sqrt_n():
     # Done-when: on ten simulated days the campaign uncertainty is not below (session
     # spread) / sqrt(N), and not below what the sessions share; no more the 0.006 to
     # 0.025 % that the standard error of agreeing sessions alone gave.
-    scenario = load_scenario("pico-sereno-clear")
+    scenario = load_scenario("pico-sereno-independent")
     config = config_for(scenario)
     results = []
     for i, day in enumerate(days(10)):

@@ -187,10 +187,6 @@ def test_window_channels_on_the_independent_stable_sky_within_their_uncertainty(
             assert abs(v0_error(row, r)) < 3 * row["v0_rel_unc"], (name, v0_error(row, r))
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "issue 13 Done-when not met yet: the aerosol on a layer 1.5 km deep has a larger air "
-    "mass than the fitter's Kasten-Young one, and the fitter neither corrects it nor "
-    "budgets it: +0.1 to +0.2 % at 380-500 nm ('Uncertainty from the data', helper D)"))
 def test_window_channels_on_the_independent_stable_sky_within_0_15_percent():
     # Done-when of issue 13: V0 within 0.15 % of the truth at every wavelength, 380 nm
     # included (stable sky, noise 0.05-0.2 % per burst mean; Schmid and Wehrli 1995
@@ -201,7 +197,12 @@ def test_window_channels_on_the_independent_stable_sky_within_0_15_percent():
         assert abs(float(np.mean(errors))) < 0.0015, (name, np.mean(errors))
 
 
-@pytest.mark.parametrize("water_cm", [0.2, 0.5, 1.0, 2.0])
+@pytest.mark.parametrize("water_cm", [pytest.param(0.2, marks=pytest.mark.xfail(
+    strict=True, reason=(
+        "issue 13 Done-when not met yet at 0.2 cm: an accepted session 0.27 % off with "
+        "0.09 % stated; the 940 nm budget has no term for the aerosol it takes from the "
+        "window channels (their Kasten-Young slopes, the Angstrom extrapolation)"))),
+    0.5, 1.0, 2.0])
 def test_940_nm_on_the_independent_sky(water_cm):
     # Done-when of issue 13 (940 nm): at columns 0.2 to 2 cm every accepted session lies
     # within three stated uncertainties, and a campaign of ten stable days (the mean of

@@ -133,7 +133,7 @@ def test_drift_allowance_tops_a_session_up_to_the_sites_repeatability():
 
 
 def test_a_stored_repeatability_becomes_the_sessions_drift_allowance():
-    scenario = load_scenario("pico-sereno-clear")
+    scenario = load_scenario("pico-sereno-independent")
     config = config_for(scenario)
     s = session_series(scenario, days(1)[0], "am", seed=3, burst_noise_relative=0.001)
     alone = {r["channel"]: r for r in fit_series(channel_series(s, config), config,
@@ -198,7 +198,7 @@ def _rms_bounds(n_sessions: int) -> tuple[float, float]:
 
 @pytest.mark.slow
 def test_stable_independent_sky_window_v0_and_honest_uncertainty():
-    scenario = load_scenario("pico-sereno-clear")
+    scenario = load_scenario("pico-sereno-independent")
     n_days = 12
     res = _ensemble(scenario, n_days)
     assert len(res) >= 0.9 * n_days * 2 * 6  # a stable sky is accepted
@@ -217,7 +217,7 @@ def test_slowly_drifting_independent_sky_states_an_honest_uncertainty():
     # Aerosol optical depth at 500 nm rising 0.001 per hour all day: each session's
     # V0 moves by a few tenths of a percent without bending its plot; the same day's
     # other session is what sees it.
-    scenario = load_scenario("pico-sereno-clear")
+    scenario = load_scenario("pico-sereno-independent")
     scenario = replace(scenario, atmosphere=replace(scenario.atmosphere,
                                                     aerosol_drift_per_h=0.001))
     n_days = 12
