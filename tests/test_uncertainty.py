@@ -226,3 +226,48 @@ def test_slowly_drifting_independent_sky_states_an_honest_uncertainty():
     lo, hi = _rms_bounds(2 * n_days)
     assert len(res) > n_days * 6
     assert lo < float(np.sqrt(np.mean(z ** 2))) < hi
+
+
+def _fit_days(scenario, config, day_list, repeatability, seed0):
+    rows_all, z = [], []
+    for i, day in enumerate(day_list):
+        rows, truth = {}, {}
+        for session in ("am", "pm"):
+            s = session_series(scenario, day, session, seed=seed0 + i,
+                               burst_noise_relative=0.001)
+            truth[session] = s
+            rows[session] = fit_series(channel_series(s, config), config, day.isoformat(),
+                                       session, repeatability)
+        apply_day_check(rows["am"], rows["pm"], config.fit)
+        for session in ("am", "pm"):
+            for r in rows[session]:
+                rows_all.append(r)
+                if r["accepted"] and r["channel"] != "940":
+                    err = r["v0_1au"] / truth[session].truth[r["channel"]].v0_1au_v - 1.0
+                    z.append(err / r["v0_rel_unc"])
+    return rows_all, np.array(z)
+
+
+@pytest.mark.slow
+def test_a_stored_campaigns_repeatability_makes_later_sessions_honest():
+    # A slowly varying sky (a 6 h sinusoid of 10 % in the aerosol): one session cannot
+    # see it, and the first campaign's sessions understate their error. Its
+    # repeatability, taken as the later sessions' drift allowance, brings their
+    # rms(error/uncertainty) inside the chi-square bounds (_rms_bounds).
+    import datetime as dt
+
+    from daemon.science.campaign import campaign
+
+    scenario = load_scenario("pico-sereno-independent")
+    scenario = replace(scenario, atmosphere=replace(scenario.atmosphere, aerosol_wave=0.1,
+                                                    aerosol_wave_period_h=6.0))
+    config = config_for(scenario)
+    first, z1 = _fit_days(scenario, config, days(10), None, 0)
+    rep = {c.channel: c.repeatability_pct / 100.0 for c in campaign(first, config)
+           if c.repeatability_pct}
+    assert rep
+    _, z2 = _fit_days(scenario, config, days(10, dt.date(2025, 3, 1)), rep, 500)
+    lo, hi = _rms_bounds(20)
+    rms1, rms2 = float(np.sqrt(np.mean(z1 ** 2))), float(np.sqrt(np.mean(z2 ** 2)))
+    assert rms2 < rms1
+    assert lo < rms2 < hi
