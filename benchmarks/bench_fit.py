@@ -38,7 +38,6 @@ from daemon.science.langley import WINDOW_EDGE_TOLERANCE, fit_session  # noqa: E
 from daemon.science.sessionfit import (  # noqa: E402
     ChannelSeries,
     apply_day_check,
-    drift_per_hour,
     extinction_corrections,
     fit_series,
 )
@@ -152,14 +151,12 @@ def speed(n: int = 10_000) -> None:
     ch = config.channels[2]
     ser = series[ch.name]
     ext = extinction_corrections(ser, ch, config)
-    rate = drift_per_hour(ch, config)
     fit_session(ser.airmass, ser.signal_v, config.fit, ln_correction=ext.ln_correction,
-                hours=ser.hours, drift_per_hour=rate)
+                hours=ser.hours)
     t0 = time.perf_counter()
     for _ in range(n):
         fit_session(ser.airmass, ser.signal_v, config.fit, ln_correction=ext.ln_correction,
-                    tau_floor=ext.tau_rayleigh + ext.tau_ozone, hours=ser.hours,
-                    drift_per_hour=rate)
+                    tau_floor=ext.tau_rayleigh + ext.tau_ozone, hours=ser.hours)
     core = time.perf_counter() - t0
     t0 = time.perf_counter()
     for _ in range(n // 6):

@@ -61,6 +61,8 @@ class Conditions:
         self._aerosol_noise = SmoothNoise(rng, atm.aerosol_variability_period_s)
         self._gust_noise = SmoothNoise(rng, 60.0)
         self._cloud_noise = [SmoothNoise(rng, c.cell_s) for c in atm.clouds]
+        # Drawn last, so scenarios without a wave keep their random streams.
+        self._wave_phase = float(rng.uniform(0.0, 2.0 * np.pi)) if atm.aerosol_wave else 0.0
 
     def solar_h(self, epoch_s: np.ndarray | float) -> np.ndarray:
         """Local mean solar time [h]."""
@@ -75,6 +77,12 @@ class Conditions:
         hours = np.clip(h, atm.aerosol_drift_from_solar_h, atm.aerosol_drift_until_solar_h) \
             - atm.aerosol_drift_from_solar_h
         tau = atm.aerosol_tau_500 + atm.aerosol_drift_per_h * hours
+        if atm.aerosol_wave:
+            tau = tau * (1.0 + atm.aerosol_wave * np.sin(
+                2.0 * np.pi * h / atm.aerosol_wave_period_h + self._wave_phase))
+        if atm.aerosol_noon_peak:
+            tau = tau + atm.aerosol_noon_peak * np.exp(
+                -0.5 * ((h - 12.0) / atm.aerosol_noon_peak_width_h) ** 2)
         if atm.aerosol_variability:
             tau = tau * (1.0 + atm.aerosol_variability * self._aerosol_noise(epoch_s))
         return np.maximum(tau, 0.0)
@@ -94,11 +102,14 @@ class Conditions:
         return total
 
     def pressure_hpa(self, epoch_s: np.ndarray | float) -> np.ndarray:
-        """Station pressure with its semidiurnal tide [hPa]."""
+        """Station pressure with its semidiurnal tide and the day's trend [hPa]."""
         site, weather = self.scenario.site, self.scenario.weather
-        return np.asarray(sky.semidiurnal_pressure_hpa(site.pressure_hpa,
-                                                       weather.pressure_tide_hpa,
-                                                       self.solar_h(epoch_s)), dtype=float)
+        h = self.solar_h(epoch_s)
+        p = np.asarray(sky.semidiurnal_pressure_hpa(site.pressure_hpa, weather.pressure_tide_hpa,
+                                                    h), dtype=float)
+        if weather.pressure_trend_hpa_per_h:
+            p = p + weather.pressure_trend_hpa_per_h * (h - 12.0)
+        return p
 
     # ------------------------------------------------------------------ weather
 

@@ -92,10 +92,10 @@ from typing import Any
 
 import numpy as np
 
-from sim_instrument import broadband, sky
+from sim_instrument import broadband, filters, sky, spectral_sky
 from sim_instrument.conditions import Conditions
 from sim_instrument.faults import solar_hour
-from sim_instrument.scenario import BROADBAND, Scenario
+from sim_instrument.scenario import BROADBAND, INDEPENDENT_SKY, Scenario, channel_filter
 
 MAX_SAMPLES = 10_000  # per burst or dark read
 MIN_TRACKER_ELEVATION_DEG = -5.0
@@ -139,8 +139,9 @@ def _json_float(x: float) -> float | None:
     return x if math.isfinite(x) else None
 
 
-def _channel_truth(c: Any) -> dict:
-    """What a channel really is: V0 at 1 AU [V] and how it was built."""
+def _channel_truth(c: Any, filtered: bool) -> dict:
+    """What a channel really is: V0 at 1 AU [V] and how it was built (and its filter,
+    on the independent sky, which integrates over it)."""
     out = {"kind": c.kind, "wavelength_nm": _json_float(c.wavelength_nm),
            "bandwidth_nm": _json_float(c.bandwidth_nm), "v0_1au": c.v0_1au_v,
            "dark_v": c.dark_v, "temp_coeff_per_k": c.temp_coeff_per_k,
@@ -148,6 +149,10 @@ def _channel_truth(c: Any) -> dict:
     if c.kind == BROADBAND:
         out["responsivity_v_per_w_m2"] = c.responsivity_v_per_w_m2
         out["extraterrestrial_w_m2"] = c.v0_1au_v / c.responsivity_v_per_w_m2
+    elif filtered:
+        f = channel_filter(c)
+        out["filter"] = f.description
+        out["filter_centroid_nm"] = f.centroid_nm
     return out
 
 
@@ -222,6 +227,12 @@ class SimulatedStation:
                     np.linspace(c.wavelength_nm - c.bandwidth_nm / 2,
                                 c.wavelength_nm + c.bandwidth_nm / 2, 41)))]
         self._station_height_km = site.elevation_m / 1000.0
+        self._independent = atm.sky == INDEPENDENT_SKY
+        self._bands = {i: filters.band(channel_filter(c)) for i, c in enumerate(channels)
+                       if c.kind != BROADBAND} if self._independent else {}
+        self._sky_constants = spectral_sky.SkyConstants(
+            site.latitude_deg, site.elevation_m, atm.aerosol_scale_height_km,
+            atm.water_vapour_scale_height_km)
 
         self._t_set = _epoch_s(scenario.start_utc, "scenario start_utc")
         self._mono_at_set = self._monotonic()
@@ -332,6 +343,21 @@ class SimulatedStation:
                 self._v0_1au_v, esf,
                 (tau_r, self._tau_ozone, tau_a + tau_cloud[:, None]),
                 (m_col, m_o3[:, None], m_col)) * transmittance_wv
+        tau_o = np.broadcast_to(self._tau_ozone, tau_r.shape).copy()
+        m_a = m_ky
+        if self._independent:
+            state = spectral_sky.SkyState(
+                apparent_zenith_deg=geo.apparent_zenith_deg, pressure_hpa=pressure,
+                tau_500=tau_500, angstrom_alpha=atm.angstrom_alpha, ozone_du=atm.ozone_du,
+                precipitable_water_cm=np.full(len(times), water_cm), tau_cloud=tau_cloud)
+            masses = spectral_sky.airmasses(state, self._sky_constants)
+            m_o3, m_a = masses["ozone"], masses["aerosol"]
+            for c, band in self._bands.items():
+                res = spectral_sky.band_transmittance(band, state, self._sky_constants, masses)
+                sun_v[:, c] = self._v0_1au_v[c] * esf * res.transmittance
+                tau_r[:, c], tau_a[:, c] = res.tau_rayleigh, res.tau_aerosol
+                tau_o[:, c] = res.tau_ozone
+                transmittance_wv[:, c] = res.transmittance_water_vapour
         if self._broadband.any():
             doy = float(index[-1].day_of_year)
             dni = broadband.direct_irradiance_w_m2(
@@ -342,10 +368,10 @@ class SimulatedStation:
             sun_v[:, self._broadband] = dni[:, None] * self._responsivity[self._broadband]
         responsivity = 1.0 + self._temp_coeff * (detector_c[:, None] - self._reference_c)
         sun_v = np.nan_to_num(sun_v, nan=0.0) * responsivity  # sun below the horizon: 0
-        return {"geo": geo, "m_ky": m_ky, "m_o3": m_o3, "esf": esf, "pressure": pressure,
-                "tau_500": tau_500, "tau_cloud": tau_cloud, "detector_c": detector_c,
-                "tau_r": tau_r, "tau_a": tau_a, "t_wv": transmittance_wv, "sun_v": sun_v,
-                "responsivity": responsivity}
+        return {"geo": geo, "m_ky": m_ky, "m_o3": m_o3, "m_a": m_a, "esf": esf,
+                "pressure": pressure, "tau_500": tau_500, "tau_cloud": tau_cloud,
+                "detector_c": detector_c, "tau_r": tau_r, "tau_a": tau_a, "tau_o": tau_o,
+                "t_wv": transmittance_wv, "sun_v": sun_v, "responsivity": responsivity}
 
     def _dark_signal_v(self, detector_c: np.ndarray) -> np.ndarray:
         doubling = self.scenario.instrument.thermal.dark_doubling_k
@@ -417,12 +443,17 @@ class SimulatedStation:
                 }
                 continue
             tau_r = float(parts["tau_r"][mid, c])
-            tau_o = float(self._tau_ozone[c])
+            tau_o = float(parts["tau_o"][mid, c])
             tau_a = float(parts["tau_a"][mid, c])
             t_wv = float(parts["t_wv"][mid, c])
             tau_wv = -math.log(t_wv) / m if t_wv < 1.0 and math.isfinite(m) else 0.0
+            ratio = parts["sun_v"][mid, c] / (self._v0_1au_v[c] * esf
+                                              * parts["responsivity"][mid, c])
             channels[name] = {
                 "tau_total": tau_r + tau_o + tau_a + tau_wv + tau_cloud,
+                # what a straight Langley on the Kasten-Young air mass sees
+                "tau_effective": _json_float(-math.log(ratio) / m) if ratio > 0 and
+                math.isfinite(m) else None,
                 "tau_rayleigh": tau_r,
                 "tau_ozone": tau_o,
                 "tau_aerosol": tau_a,
@@ -445,7 +476,7 @@ class SimulatedStation:
             "apparent_zenith_deg": _json_float(geo.apparent_zenith_deg[mid]),
             "solar_azimuth_deg": _json_float(geo.azimuth_deg[mid]),
             "airmass_rayleigh": _json_float(m),
-            "airmass_aerosol": _json_float(m),
+            "airmass_aerosol": _json_float(parts["m_a"][mid]),
             "airmass_ozone": _json_float(parts["m_o3"][mid]),
             "earth_sun_factor": esf,
             "pressure_hpa": float(parts["pressure"][mid]),
@@ -770,11 +801,15 @@ class SimulatedStation:
                          "longitude_deg": site.longitude_deg, "elevation_m": site.elevation_m,
                          "pressure_hpa": site.pressure_hpa,
                          "temperature_c": site.temperature_c},
-                "atmosphere": {"ozone_du": atm.ozone_du,
+                "atmosphere": {"sky": atm.sky, "ozone_du": atm.ozone_du,
+                               "aerosol_scale_height_km": atm.aerosol_scale_height_km,
+                               "water_vapour_scale_height_km":
+                                   atm.water_vapour_scale_height_km,
                                "aerosol_tau_500": atm.aerosol_tau_500,
                                "angstrom_alpha": atm.angstrom_alpha,
                                "precipitable_water_cm": atm.precipitable_water_cm},
-                "channels": {c.name: _channel_truth(c) for c in self.scenario.instrument.channels},
+                "channels": {c.name: _channel_truth(c, self._independent)
+                             for c in self.scenario.instrument.channels},
                 "radiometer_resets": self._radiometer_resets,
                 "tracker_resets": self._tracker_resets,
                 "readings": [dict(r, channels={k: dict(v) for k, v in r["channels"].items()})

@@ -15,12 +15,16 @@ Layout (units in the key names; "(x)" marks an optional key and its default)::
     weather:                                      # (all defaults)
       ambient_diurnal_range_k (10), humidity_pct (35), humidity_diurnal_range_pct (40),
       wind_m_s (2), wind_diurnal_range_m_s (0), wind_gust_sd_m_s (0),
-      pressure_tide_hpa (0), supply_v (12.6)
+      pressure_tide_hpa (0), pressure_trend_hpa_per_h (0), supply_v (12.6)
     atmosphere:
       ozone_du, aerosol_tau_500, angstrom_alpha,
       aerosol_drift_per_h (0), aerosol_drift_from_solar_h (6),
       aerosol_drift_until_solar_h (12), aerosol_variability (0),
-      aerosol_variability_period_s (900), precipitable_water_cm (1.0)
+      aerosol_variability_period_s (900), precipitable_water_cm (1.0),
+      aerosol_wave (0), aerosol_wave_period_h (6),     # relative sinusoid, random phase
+      aerosol_noon_peak (0), aerosol_noon_peak_width_h (1.5),  # haze peaking at noon
+      sky (independent | reference), aerosol_scale_height_km (1.5),
+      water_vapour_scale_height_km (2.0)
       clouds: [{from_solar_h, until_solar_h, optical_depth, patchiness (0),
                 cell_s (600)}, ...]                # ([])
     instrument:
@@ -59,7 +63,7 @@ from typing import Any
 import pvlib
 import yaml
 
-from sim_instrument import sky
+from sim_instrument import filters, sky
 from sim_instrument.faults import EVENT_KINDS, FaultEvent, FaultPlan, LineFaults
 
 SCENARIO_DIR = Path(__file__).resolve().parent / "scenarios"
@@ -91,6 +95,7 @@ class Weather:
     wind_diurnal_range_m_s: float = 0.0  # calmest to windiest (windiest mid-afternoon)
     wind_gust_sd_m_s: float = 0.0  # short-term variability [m/s]
     pressure_tide_hpa: float = 0.0  # semidiurnal tide amplitude [hPa]
+    pressure_trend_hpa_per_h: float = 0.0  # weather: a steady change through the day
     supply_v: float = 12.6  # station supply [V]
 
 
@@ -115,12 +120,25 @@ class Atmosphere:
     aerosol_drift_until_solar_h: float = 12.0
     aerosol_variability: float = 0.0  # relative standard deviation of tau_500
     aerosol_variability_period_s: float = 900.0
+    aerosol_wave: float = 0.0  # relative amplitude of a slow sinusoid in tau_500
+    aerosol_wave_period_h: float = 6.0
+    aerosol_noon_peak: float = 0.0  # tau_500 added at local solar noon (Gaussian in time)
+    aerosol_noon_peak_width_h: float = 1.5  # its standard deviation [h]
     precipitable_water_cm: float = 1.0
     clouds: tuple[Cloud, ...] = ()
+    sky: str = "independent"  # INDEPENDENT_SKY or REFERENCE_SKY
+    aerosol_scale_height_km: float = 1.5  # independent sky: aerosol layer above the station
+    water_vapour_scale_height_km: float = 2.0  # independent sky: water-vapour layer
 
 
 SPECTRAL = "spectral"
 BROADBAND = "broadband"
+
+#: The sky of :mod:`sim_instrument.spectral_sky` (filters, other published physics).
+INDEPENDENT_SKY = "independent"
+#: The sky of :mod:`sim_instrument.sky`: Beer-Lambert at the channel centre with the
+#: fitter's own simplifications (kept for the tests written against it).
+REFERENCE_SKY = "reference"
 
 
 @dataclass(frozen=True)
@@ -134,6 +152,11 @@ class Channel:
     responsivity_v_per_w_m2: float = 0.0  # broadband only
     temp_coeff_per_k: float = 0.0  # relative responsivity change per kelvin
     reference_temp_c: float = 25.0
+    # Filter function: a CSV file (absolute path), or a Gaussian; neither given means
+    # a Gaussian at wavelength_nm with FWHM bandwidth_nm (channel_filter).
+    filter_file: str | None = None
+    filter_centre_nm: float | None = None
+    filter_fwhm_nm: float | None = None
 
 
 @dataclass(frozen=True)
@@ -333,6 +356,8 @@ def _weather(s: _Section | None) -> Weather:
                                   default=d.wind_gust_sd_m_s),
         pressure_tide_hpa=s.number("pressure_tide_hpa", 0.0, 5.0, "hPa",
                                    default=d.pressure_tide_hpa),
+        pressure_trend_hpa_per_h=s.number("pressure_trend_hpa_per_h", -5.0, 5.0, "hPa per h",
+                                          default=d.pressure_trend_hpa_per_h),
         supply_v=s.number("supply_v", 5.0, 30.0, "V", default=d.supply_v),
     )
     if w.wind_diurnal_range_m_s / 2.0 > w.wind_m_s:
@@ -376,10 +401,25 @@ def _atmosphere(s: _Section) -> Atmosphere:
                                      default=d.aerosol_variability),
         aerosol_variability_period_s=s.number("aerosol_variability_period_s", 1.0, 86400.0,
                                               "s", default=d.aerosol_variability_period_s),
+        aerosol_wave=s.number("aerosol_wave", 0.0, 0.9, "(relative amplitude)",
+                              default=d.aerosol_wave),
+        aerosol_wave_period_h=s.number("aerosol_wave_period_h", 0.5, 48.0, "h",
+                                       default=d.aerosol_wave_period_h),
+        aerosol_noon_peak=s.number("aerosol_noon_peak", 0.0, 2.0, "(optical depth)",
+                                   default=d.aerosol_noon_peak),
+        aerosol_noon_peak_width_h=s.number("aerosol_noon_peak_width_h", 0.1, 12.0, "h",
+                                           default=d.aerosol_noon_peak_width_h),
         precipitable_water_cm=s.number("precipitable_water_cm", 0.0, 10.0, "cm",
                                        default=d.precipitable_water_cm),
         clouds=tuple(_cloud(_Section(c, path, s.source)) for path, c in s.items("clouds")),
+        sky=s.text("sky", default=d.sky),
+        aerosol_scale_height_km=s.number("aerosol_scale_height_km", 0.1, 10.0, "km",
+                                         default=d.aerosol_scale_height_km),
+        water_vapour_scale_height_km=s.number("water_vapour_scale_height_km", 0.1, 10.0,
+                                              "km", default=d.water_vapour_scale_height_km),
     )
+    if atm.sky not in (INDEPENDENT_SKY, REFERENCE_SKY):
+        raise s._fail("sky", f"must be {INDEPENDENT_SKY} or {REFERENCE_SKY}, got {atm.sky!r}")
     if atm.aerosol_drift_until_solar_h < atm.aerosol_drift_from_solar_h:
         raise s._fail("aerosol_drift_until_solar_h", "must not come before "
                                                      "aerosol_drift_from_solar_h")
@@ -418,13 +458,56 @@ def _channel(s: _Section) -> Channel:
         bandwidth_nm=s.number("bandwidth_nm", 0.5, 50.0, "nm", default=10.0),
         v0_1au_v=s.number("v0_1au_v", 0.0, 100.0, "V", lo_open=True),
         **common,
+        **_filter_keys(s.optional_section("filter")),
     )
     s.finish()
+    try:
+        channel_filter(ch)
+    except filters.FilterError as exc:
+        raise ScenarioError(f"{s.source}: '{s.path}.filter': {exc}") from None
     try:
         sky.ozone_cross_section_cm2(ch.wavelength_nm, ch.bandwidth_nm)
     except ValueError as exc:
         raise ScenarioError(f"{s.source}: '{s.path}.wavelength_nm': {exc}") from None
     return ch
+
+
+def _filter_keys(s: _Section | None) -> dict[str, Any]:
+    """``filter: {file: path}`` (relative to the scenario file) or ``{centre_nm, fwhm_nm}``."""
+    if s is None:
+        return {}
+    if "file" in s.data:
+        name = s.text("file")
+        s.finish()
+        base = Path(s.source).parent if s.source and not s.source.startswith("<") \
+            else Path.cwd()
+        return {"filter_file": str((base / name).resolve())}
+    keys = {"filter_centre_nm": s.number("centre_nm", 280.0, 4000.0, "nm"),
+            "filter_fwhm_nm": s.number("fwhm_nm", 0.1, 100.0, "nm")}
+    s.finish()
+    return keys
+
+
+_FILTER_CACHE: dict[tuple, filters.Filter] = {}
+
+
+def channel_filter(ch: Channel) -> filters.Filter:
+    """The filter function of a spectral channel (cached per file or Gaussian).
+
+    Raises filters.FilterError for a bad file.
+    """
+    if ch.filter_file is not None:
+        key: tuple = ("file", ch.filter_file)
+    elif ch.filter_centre_nm is not None:
+        key = ("gauss", ch.filter_centre_nm, ch.filter_fwhm_nm)
+    else:
+        key = ("gauss", ch.wavelength_nm, ch.bandwidth_nm)
+    filt = _FILTER_CACHE.get(key)
+    if filt is None:
+        filt = filters.load_filter_csv(key[1]) if key[0] == "file" else \
+            filters.gaussian(key[1], key[2])
+        _FILTER_CACHE[key] = filt
+    return filt
 
 
 def _thermal(s: _Section | None) -> Thermal:

@@ -54,7 +54,10 @@ WANDER_TIME_S = 1800.0
 
 @lru_cache(maxsize=1)
 def pico_config() -> Config:
-    return load_config(CONFIG_PATH)
+    # The sessions here follow the fitter's own monochromatic model (the simulator's
+    # reference sky), so the corrections for a real sky's band and layers stay off.
+    config = load_config(CONFIG_PATH)
+    return replace(config, fit=replace(config.fit, correct_model_terms=False))
 
 
 @lru_cache(maxsize=1)

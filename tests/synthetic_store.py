@@ -11,7 +11,7 @@ cloud with a steady burst: the fit must reject it), one morning point has no sun
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -80,6 +80,9 @@ def build_day(path: Path, *, fit: bool = True, heartbeat: dt.datetime | None = N
     from daemon.station.fitting import fit_stored_session
 
     config = load_config(CONFIG_PATH)
+    # The synthetic bursts follow the fitter's own monochromatic model: the corrections
+    # for a real sky's band and layers stay off, so the stored V0 is the drawn line's.
+    config = replace(config, fit=replace(config.fit, correct_model_terms=False))
     plan = plan_day(config, DAY)
     channels = tuple(ch.name for ch in config.channels)
     rng = np.random.default_rng(11)

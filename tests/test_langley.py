@@ -164,7 +164,8 @@ def test_each_failed_criterion_is_a_reason_with_its_numbers():
     m = np.linspace(2.0, 3.0, 6)
     wiggle = 0.03 * np.array([1.0, -1.0, 1.0, -1.0, 1.0, -1.0])
     v = np.exp(0.1 + 0.05 * m + wiggle)  # rising with air mass: negative tau
-    r = fit_session(m, v, SETTINGS)
+    # The BSRN-style fixed limits (fit.acceptance: absolute) name their limits ...
+    r = fit_session(m, v, replace(SETTINGS, acceptance="absolute"))
     assert not r.accepted
     text = " | ".join(r.reasons)
     assert "only 6 points used, fewer than the required 8" in text
@@ -172,6 +173,13 @@ def test_each_failed_criterion_is_a_reason_with_its_numbers():
     assert "residual SD 0.0351 in ln V above the limit 0.0030" in text
     assert "largest residual 0.0377 in ln V above the limit 0.0060" in text
     assert "is not positive" in text
+    # ... and the scaled ones (the default) their statistics.
+    text = " | ".join(fit_session(m, v, SETTINGS).reasons)
+    assert "residual SD 0.0351 in ln V is more than a stable sky gives" in text
+    assert "for 4 degrees of freedom at fit.false_refusal_rate 0.01" in text
+    assert "largest residual -0.0377 in ln V is 12.6 times the 0.0030" in text
+    # chi-square 0.99 quantile for 4 degrees of freedom: 13.28 (scipy.stats.chi2.ppf)
+    assert "chi-square 548.6 above 13.3 for 4 degrees" in text
 
 
 def test_mismatched_lengths_are_a_programming_error():
@@ -309,7 +317,9 @@ def test_a_single_large_residual_fails_the_largest_residual_criterion():
     m, _ = _airmasses()
     ln_v = 0.5 - 0.1 * m + np.random.default_rng(8).normal(0.0, 0.0005, m.size)
     ln_v[8] += 0.009  # a kept point: 9e-3 is within 2.5 SD of the loosened fit below
-    settings = replace(SETTINGS, clip_sigma=10.0, max_residual_sd=0.01)
+    # The BSRN-style fixed limit (fit.acceptance: absolute); the scaled rule is in
+    # tests/test_acceptance.py.
+    settings = replace(SETTINGS, clip_sigma=10.0, max_residual_sd=0.01, acceptance="absolute")
     r = fit_session(m, np.exp(ln_v), settings)
     assert not r.accepted
     assert any(x.startswith("largest residual 0.00") and x.endswith("above the limit 0.0060")

@@ -10,6 +10,7 @@ from dataclasses import replace
 import pytest
 
 from daemon.config.settings import Channel
+from daemon.science.filters import astm_filter_mean_w_m2_nm, channel_filter
 from daemon.science.lamp import astm_g173_band_mean_w_m2_nm, lamp_check, lamp_note
 from daemon.station.fitting import fit_stored_session
 from daemon.store.writer import Store
@@ -48,7 +49,8 @@ def test_session_fit_reports_the_lamp_check(tmp_path):
     # ratio from the fitted V0 is then 1 within the fit's error.
     s = simulate_session(dt.date(2027, 2, 15), "pm", "clear", 1, wander_sd_500=0.0)
     config = pico_config()
-    resp = s.v0_1au_true["675"] / astm_g173_band_mean_w_m2_nm(675.0, 10.0)
+    resp = s.v0_1au_true["675"] / astm_filter_mean_w_m2_nm(
+        channel_filter(config.channel("675")))
     config = replace(config, channels=tuple(
         replace(c, responsivity_v_per_w_m2_nm=resp) if c.name == "675" else c
         for c in config.channels))

@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 
 from daemon.commands import plot
+from daemon.config.filterfile import gaussian_spec
 from daemon.config.settings import Channel, parse_config
 from daemon.science.screening import temperature_corrected
 from daemon.station.fitting import fit_stored_session
@@ -56,7 +57,11 @@ def make_config(**fit):
                  "timezone": "America/Mexico_City", "ozone_du": 260},
         "instrument": {"radiometer": {"port": "loop://"}, "tracker": {"port": "loop://"},
                        "channels": channels},
-        "fit": {"airmass_min": 2.0, "airmass_max": 6.0, **fit},
+        # The synthetic bursts here follow the fitter's own monochromatic Beer-Lambert
+        # model, so the corrections for a real sky (band curvature, aerosol and ozone
+        # layers) are off: these tests pin the pipeline, test_uncertainty.py the sky.
+        "fit": {"airmass_min": 2.0, "airmass_max": 6.0, "correct_model_terms": False,
+                **fit},
     }
     return parse_config(data)
 
@@ -302,19 +307,31 @@ def test_pressure_change_is_normalised_or_fails_the_blue_channels(tmp_path):
     assert raw_by["675"]["accepted"]
 
 
-def _water_config():
+def _water_config(with_filter: bool = True):
     config = make_config()
-    wv = Channel(name="940", wavelength_nm=940, bandwidth_nm=10)
-    return replace(config, channels=config.channels + (replace(wv, water_vapour=True),))
+    wv = Channel(name="940", wavelength_nm=940, bandwidth_nm=10, water_vapour=True,
+                 filter=gaussian_spec(940.0, 10.0, given=True) if with_filter else None)
+    return replace(config, channels=config.channels + (wv,))
 
 
 def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
-    # Water-vapour transmission exp(-a (u m)^b), b = 0.6 (docs/REFERENCES.md, from memory);
-    # the aerosol at 940 nm follows the Angstrom law between 870 and 1020 nm. Schmid
-    # and Wehrli (1995) repeat the 0.94 um V0 to 1.0 % with a modified Langley.
+    # The 940 nm signal is the band-averaged SPECTRL2 water-vapour transmittance
+    # (Bird and Riordan 1986, eq. 2-8) of a 10 nm Gaussian filter at 0.8 cm, the
+    # daemon's own band model: this test checks the store and plot plumbing of the
+    # modified Langley, not its physics (tests/test_watervapour.py does that). The
+    # aerosol at 940 nm follows the Angstrom law between 870 and 1020 nm. Schmid and
+    # Wehrli (1995) repeat the 0.94 um V0 to 1.0 % with a modified Langley.
     from daemon.science import solar
+    from daemon.science.watervapour import (
+        band_transmittance,
+        water_vapour_airmass_from_kasten_young,
+    )
     config = _water_config()
-    v0_wv, a_ub = 1.05, 0.35
+    v0_wv, column_cm = 1.05, 0.8
+    # the water's slant path is its own air mass's (Kasten 1965)
+    t_wv = band_transmittance(config.channels[-1].filter,
+                              water_vapour_airmass_from_kasten_young(AIRMASS),
+                              np.full(AIRMASS.size, column_cm), 650.0)
     aer = {n: TRUTH[n][1] - float(solar.rayleigh_optical_depth(WAVELENGTH[n], 650.0))
            for n in ("870", "1020")}
     alpha = -math.log(aer["1020"] / aer["870"]) / math.log(1020 / 870)
@@ -325,13 +342,14 @@ def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
     try:
         for i, m in enumerate(AIRMASS):
             rec = synthetic_record(i, m, T_AM, "am", rng, burst_cv=1e-5)
-            wv = v0_wv * ES_FACTOR * math.exp(-(tau_r940 + tau_a940) * m - a_ub * m ** 0.6)
+            wv = v0_wv * ES_FACTOR * math.exp(-(tau_r940 + tau_a940) * m) * t_wv[i]
             sun = tuple(row + (wv + DARK_V,) for row in rec.sun)
             dark = tuple(row + (DARK_V,) for row in rec.dark)
             store.record_measurement(replace(rec, channels=rec.channels + ("940",), sun=sun,
                                              dark=dark, saturated=rec.saturated + (False,)))
         rows = fit_stored_session(store, config, DAY, "am", T_AM)
         fitted = storeread.fit_points(store.conn, DAY, "am", "940")
+        constants = storeread.water_vapour_result(store.conn, DAY, "am", "940")
         conn = storeread.open_readonly(store.path)
         try:
             view = plot.langley_view(conn, config, DAY, "am", "940")
@@ -342,30 +360,47 @@ def test_water_vapour_channel_gets_a_modified_langley(tmp_path):
         unfitted = storeread.fit_points(store.conn, DAY, "am", "940")
     finally:
         store.close()
-    # The stored points are the modified Langley's: x = m^0.6, and y = ln V plus the
-    # known extinctions lies on ln(V0 f) - a (u m)^b, the transmission law above.
+    # The stored points are the modified Langley's: x = m_w^b with the water-vapour air
+    # mass m_w (Kasten 1965) and the b derived from the filter, and y = ln V plus the
+    # known extinctions lies on ln(V0 f) - a W^b x.
+    water = rows[-1]
+    b, a_ub = constants["wv_b"], constants["wv_a"] * column_cm ** constants["wv_b"]
     used = [p for p in fitted if p["role"] == "used"]
     assert len(used) == rows[-1]["n_used"] == AIRMASS.size
     for p, m in zip(used, AIRMASS, strict=True):
-        assert p["x"] == pytest.approx(m ** 0.6, rel=1e-12)
+        assert p["x"] == pytest.approx(water_vapour_airmass_from_kasten_young(m) ** b,
+                                       rel=1e-12)
         assert p["y"] == pytest.approx(math.log(v0_wv * ES_FACTOR) - a_ub * p["x"], abs=2e-3)
     assert all(p["role"] == "unfitted" and p["y"] is None for p in unfitted)
     # The plot draws those points against m^b, and the least-squares line of the used
     # points is the fit's own line: its intercept is the stored ln V0.
-    assert view.x_label == "air mass^0.6" and view.n_used == rows[-1]["n_used"]
+    # (the plot names the regressor by the power of the Kasten-Young air mass it is)
+    assert view.x_label.startswith("air mass^0.5") and view.n_used == rows[-1]["n_used"]
     assert view.line_source == "least squares of the stored points used"
     assert view.ln_v0 == pytest.approx(math.log(rows[-1]["v0"]), abs=1e-9)
     assert -view.tau == pytest.approx(-a_ub, abs=0.01)
     for q in view.points:
         assert q.ln_v == pytest.approx(view.ln_v0 - view.tau * q.pos_x, abs=2e-4)
     text = plot.render_terminal(view)
-    assert "against air mass^0.6" in text and "tau" not in text.splitlines()[1]
-    water = rows[-1]
+    assert view.x_label in text and "tau" not in text.splitlines()[1]
     assert water["channel"] == "940" and water["accepted"], water["reasons"]
     assert water["v0_1au"] == pytest.approx(v0_wv, rel=0.002)
+    # The stored session column is the one the signal was made with.
+    assert constants["precipitable_water_cm"] == pytest.approx(column_cm, rel=0.02)
+    assert 0.0 < constants["wv_u_b"] < 0.01 and constants["wv_v0_rel_unc_b"] > 0
     assert water["tau"] is None  # the slope against m^b is not an optical depth
     assert refused[-1]["accepted"] is False
     assert refused[-1]["reasons"][0].startswith("not fitted: water-vapour channel")
+
+
+def test_water_vapour_channel_without_a_filter_is_not_fitted(filled_store):
+    # a and b belong to the filter: without one there is nothing honest to fit with.
+    config = _water_config(with_filter=False)
+    rows = fit_stored_session(filled_store, config, DAY, "pm", T_PM)
+    water = rows[-1]
+    assert water["channel"] == "940" and water["accepted"] is False
+    assert water["reasons"][0].startswith("not fitted: water-vapour channel without a filter "
+                                          "function")
 
 
 # --------------------------------------------------------------------------- fit points

@@ -8,6 +8,7 @@ tests/test_fault_storm.py; every fault against the drivers is tests/test_link_fa
 
 from __future__ import annotations
 
+from dataclasses import replace
 from datetime import date
 from pathlib import Path
 
@@ -24,8 +25,12 @@ WINDOW_CHANNELS = ("380", "440", "500", "675", "870", "1020")
 
 def _day(tmp_path_factory, config: str, scenario: str, day: date, seed: int):
     tmp = tmp_path_factory.mktemp(scenario)
-    return run_simulated_day(load_config(CONFIG_DIR / config), day, tmp / "day.db", scenario,
-                             seed=seed, port="pty", work_dir=tmp)
+    cfg = load_config(CONFIG_DIR / config)
+    # These scenarios run the simulator's reference sky (the fitter's own monochromatic
+    # model): the corrections for a real sky's band and layers stay off.
+    cfg = replace(cfg, fit=replace(cfg.fit, correct_model_terms=False))
+    return run_simulated_day(cfg, day, tmp / "day.db", scenario, seed=seed, port="pty",
+                             work_dir=tmp)
 
 
 @pytest.fixture(scope="module")

@@ -76,6 +76,7 @@ AOD_COLUMNS: tuple[tuple[str, str | None], ...] = (
     ("tau_total", "1"), ("tau_rayleigh", "1"), ("tau_ozone", "1"), ("airmass", "1"),
     ("ozone_airmass", "1"), ("pressure_hpa", "hPa"), ("flag", None),
     ("calibration_id", None), ("angstrom_alpha", "1"), ("angstrom_channels", None),
+    ("precipitable_water_cm", "cm"),
 )
 EVENT_COLUMNS: tuple[tuple[str, str | None], ...] = (
     ("id", None), ("time_utc", None), ("level", None), ("kind", None), ("message", None),

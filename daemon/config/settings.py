@@ -13,6 +13,7 @@ fast.
 
 from __future__ import annotations
 
+import logging
 import math
 import os
 import re
@@ -23,9 +24,12 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import yaml
 
+from daemon.config.filterfile import FilterFileError, FilterSpec, gaussian_spec, read_filter_spec
 from drivers import registry
 from drivers.interfaces import DriverConfigError
 from drivers.registry import RADIOMETER_DRIVERS, TRACKER_DRIVERS
+
+log = logging.getLogger(__name__)
 
 EX_CONFIG = 78  # sysexits.h: configuration error
 # The longest one command may go unanswered, all retries included. With the slew and
@@ -70,6 +74,12 @@ class Channel:
     # Fitted with the modified Langley (ln V against m^b); the loader's default is true
     # for a band inside 925-955 nm.
     water_vapour: bool = False
+    # Filter function (``filter:``); None or given=False: a Gaussian at wavelength_nm
+    # with FWHM bandwidth_nm (daemon.config.filterfile).
+    filter: FilterSpec | None = None
+    # Precipitable water the site expects [cm]: the range over which a water-vapour
+    # channel's modified-Langley constants are derived (daemon.science.watervapour).
+    water_vapour_range_cm: tuple[float, float] = (0.1, 3.0)
 
 
 @dataclass(frozen=True)
@@ -117,6 +127,15 @@ class FitSettings:
     min_fraction_kept: float = 0.6  # never reject more than 1 - this
     min_points: int = 8
     min_airmass_span: float = 2.0
+    # "scaled": residual limits tested at fit.false_refusal_rate against the scatter a
+    # stable sky gives (max_residual_sd per point, plus the burst's own scatter), the
+    # largest residual against a quantile that grows with the point count; "absolute":
+    # the BSRN-style fixed limits max_residual_sd and max_abs_residual in ln V.
+    acceptance: str = "scaled"
+    false_refusal_rate: float = 0.01  # per criterion, on a stable sky ("scaled")
+    # Correct V0 for the band's curvature, the aerosol layer's and the ozone layer's air
+    # mass (README, "The calibration engine"); false: state them as uncertainty only.
+    correct_model_terms: bool = True
     max_residual_sd: float = 0.003  # in ln V (BSRN Operations Manual, sec. 7.4.2.1)
     max_cv: float = 0.02  # burst coefficient of variation above which a burst is rejected
     max_abs_residual: float = 0.006  # largest residual of a kept point, in ln V (BSRN)
@@ -128,7 +147,9 @@ class FitSettings:
     angstrom_channels: tuple[str, str] | None = None  # None: nearest to 440 and 870 nm
     campaign_min_sessions: int = 3  # accepted sessions a calibration needs per channel
     campaign_clip_sigma: float = 3.0  # sessions further than this from the mean are flagged
-    tau_drift_per_hour: float = 0.0007  # unseen optical-depth drift allowed for, at 500 nm
+    # Deprecated and ignored (the drift allowance now comes from the data: the same day's
+    # other session and the stored campaign's repeatability); kept so old files load.
+    tau_drift_per_hour: float | None = None
     # Same-day morning and afternoon V0 at 1 AU may differ by this fraction (or by three
     # combined uncertainties, when larger) before both are refused as drifting.
     max_am_pm_difference: float = 0.01
@@ -419,7 +440,37 @@ def _timezone(s: _Section) -> str:
     return name
 
 
-def _read_channels(parent: _Section) -> tuple[Channel, ...]:
+def _read_filter(s: _Section | None, base: Path, wavelength_nm: float,
+                 bandwidth_nm: float) -> FilterSpec:
+    """``filter: {file: ..}`` or ``{centre_nm, fwhm_nm}``; else the default Gaussian."""
+    if s is None:
+        return gaussian_spec(wavelength_nm, bandwidth_nm, given=False)
+    if "file" in s.data:
+        name = s.string("file")
+        s.finish()
+        try:
+            return read_filter_spec(base / name)
+        except FilterFileError as exc:
+            raise ConfigError(f"{s._key('file')}: {exc}") from None
+    spec = gaussian_spec(s.number("centre_nm", 280, 4000, unit="nm"),
+                         s.number("fwhm_nm", 0.1, 100, unit="nm"), given=True)
+    s.finish()
+    return spec
+
+
+def _read_column_range(s: _Section | None) -> tuple[float, float]:
+    """``water_vapour_range_cm: {min: .., max: ..}`` [cm]; default 0.1 to 3 cm."""
+    if s is None:
+        return Channel.water_vapour_range_cm
+    lo = s.number("min", 0.01, 10, unit="cm")
+    hi = s.number("max", 0.01, 10, unit="cm")
+    if hi < lo:
+        raise ConfigError(f"{s._key('max')}: {hi:g} cm is below min {lo:g} cm")
+    s.finish()
+    return (lo, hi)
+
+
+def _read_channels(parent: _Section, base: Path = Path(".")) -> tuple[Channel, ...]:
     channels = []
     for path, raw in parent.items("channels"):
         s = _Section(raw, path)
@@ -436,6 +487,11 @@ def _read_channels(parent: _Section) -> tuple[Channel, ...]:
                                                 unit="V per W m^-2 nm^-1", optional=True),
             water_vapour=s.boolean("water_vapour", default=None),
         ))
+        ch = channels[-1]
+        channels[-1] = replace(ch, filter=_read_filter(s.section("filter", required=False),
+                                                       base, ch.wavelength_nm, ch.bandwidth_nm),
+                               water_vapour_range_cm=_read_column_range(
+                                   s.section("water_vapour_range_cm", required=False)))
         if channels[-1].water_vapour is None:
             channels[-1] = replace(channels[-1], water_vapour=_in_water_band(channels[-1]))
         s.finish()
@@ -539,6 +595,10 @@ def _read_fit(s: _Section | None) -> FitSettings:
         min_fraction_kept=s.number("min_fraction_kept", 0.1, 1.0, default=0.6),
         min_points=s.integer("min_points", 3, 10000, default=8),
         min_airmass_span=s.number("min_airmass_span", 0.1, 39.0, default=2.0),
+        acceptance=s.string("acceptance", default="scaled", pattern="scaled|absolute",
+                            hint="allowed 'scaled' or 'absolute'"),
+        false_refusal_rate=s.number("false_refusal_rate", 1e-4, 0.2, default=0.01),
+        correct_model_terms=s.boolean("correct_model_terms", default=True),
         max_residual_sd=s.number("max_residual_sd", 1e-5, 1.0, default=0.003, unit="in ln V"),
         max_cv=s.number("max_cv", 1e-5, 1.0, default=0.02),
         max_abs_residual=s.number("max_abs_residual", 1e-4, 1.0, default=0.006, unit="in ln V"),
@@ -553,8 +613,7 @@ def _read_fit(s: _Section | None) -> FitSettings:
         angstrom_channels=_angstrom_channels(s),
         campaign_min_sessions=s.integer("campaign_min_sessions", 1, 10000, default=3),
         campaign_clip_sigma=s.number("campaign_clip_sigma", 1.0, 10.0, default=3.0),
-        tau_drift_per_hour=s.number("tau_drift_per_hour", 0.0, 0.1, default=0.0007,
-                                    unit="per hour"),
+        tau_drift_per_hour=_deprecated_drift(s),
         max_am_pm_difference=s.number("max_am_pm_difference", 0.001, 0.5, default=0.01),
     )
     if fit.airmass_max <= fit.airmass_min:
@@ -562,6 +621,16 @@ def _read_fit(s: _Section | None) -> FitSettings:
                           f"airmass_min {fit.airmass_min:g}; allowed airmass_min to 40")
     s.finish()
     return fit
+
+
+def _deprecated_drift(s: _Section) -> float | None:
+    value = s.number("tau_drift_per_hour", 0.0, 0.1, unit="per hour", optional=True)
+    if value is not None:
+        log.warning("%s: deprecated and ignored; the V0 uncertainty now takes its drift "
+                    "allowance from the data (the same day's other session and the stored "
+                    "campaign's repeatability, see README 'The calibration engine'); remove "
+                    "the key", s._key("tau_drift_per_hour"))
+    return value
 
 
 def _angstrom_channels(s: _Section) -> tuple[str, str] | None:
@@ -598,7 +667,8 @@ def parse_config(data: Any, source: str = "<memory>") -> Config:
     top = _Section(data, "")
     site = _read_site(top.section("site"))
     inst = top.section("instrument")
-    channels = _read_channels(inst)
+    base = Path(source).parent if not source.startswith("<") else Path.cwd()
+    channels = _read_channels(inst, base)
     radiometer = _read_port(inst.section("radiometer"), RADIOMETER_DRIVERS, "radiometer")
     tracker = _read_port(inst.section("tracker"), TRACKER_DRIVERS, "tracker")
     inst.finish()

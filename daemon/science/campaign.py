@@ -19,9 +19,10 @@ from typing import Any
 
 import numpy as np
 
-from daemon.config.settings import Config
+from daemon.config.settings import Channel, Config
 from daemon.science.lamp import lamp_check
 from daemon.science.langley import fit_line
+from daemon.science.sessionfit import shared_unc
 
 #: Normal-consistent scale of the median absolute deviation (common practice, no source).
 MAD_TO_SD = 1.4826
@@ -29,6 +30,9 @@ DAYS_PER_YEAR = 365.25
 # At most this share of a campaign's sessions may be flagged: beyond it the spread
 # is the campaign's, not a few bad days'.
 MAX_FLAGGED_FRACTION = 0.5
+# Points of the nominal session over a stored row's air-mass range on which the shared
+# model terms are evaluated (the default plan's 17 targets).
+NOMINAL_POINTS = 17
 
 
 class CalibrationError(Exception):
@@ -37,12 +41,17 @@ class CalibrationError(Exception):
 
 @dataclass(frozen=True)
 class SessionV0:
-    """One accepted session's V0 at 1 AU [V] and its relative standard uncertainty."""
+    """One accepted session's V0 at 1 AU [V] and its relative standard uncertainty.
+
+    ``shared_rel_unc`` is the part of ``v0_rel_unc`` all sessions share (the model
+    terms, :func:`daemon.science.sessionfit.shared_unc`) [fraction].
+    """
 
     date: str
     session: str
     v0_1au: float
     v0_rel_unc: float | None = None
+    shared_rel_unc: float = 0.0
 
 
 @dataclass
@@ -50,12 +59,12 @@ class ChannelCalibration:
     """One channel's combined campaign result.
 
     ``v0_1au`` [V] is the mean of the sessions kept, ``v0_1au_unc`` [V] its standard
-    error, ``repeatability_pct`` the rms spread of the kept sessions about it
-    [percent], ``drift_pct_per_year`` the slope of V0 against time relative to the
-    mean [percent per year] (None with fewer than three kept sessions on two or more
-    dates). ``sessions`` lists every session with its deviation and whether it was
-    flagged; ``usable`` is False when fewer than the required sessions are kept, and
-    ``reasons`` says why.
+    uncertainty (:func:`campaign_uncertainty`), ``repeatability_pct`` the rms spread of
+    the kept sessions about it [percent], ``drift_pct_per_year`` the slope of V0 against
+    time relative to the mean [percent per year] (None with fewer than three kept
+    sessions on two or more dates). ``sessions`` lists every session with its deviation
+    and whether it was flagged; ``usable`` is False when fewer than the required
+    sessions are kept, and ``reasons`` says why.
     """
 
     channel: str
@@ -78,6 +87,46 @@ def _years(date: str, session: str) -> float:
     d = _dt.date.fromisoformat(date)
     # Mid-morning or mid-afternoon: only the order within a day matters.
     return (d.toordinal() + (0.375 if session == "am" else 0.625)) / DAYS_PER_YEAR
+
+
+def campaign_uncertainty(mean: float, sd: float, stated: np.ndarray,
+                         shared: np.ndarray) -> float:
+    """Standard uncertainty of a campaign's mean V0 [V].
+
+    Parameters
+    ----------
+    mean : float
+        Mean V0 of the kept sessions [V].
+    sd : float
+        Their sample standard deviation [V] (NaN with one session).
+    stated : ndarray
+        Each kept session's stated relative uncertainty [fraction] (NaN unknown).
+    shared : ndarray
+        The part of it all sessions share [fraction].
+
+    Returns
+    -------
+    float
+        ``sqrt(max(sd^2 / N, mean(u_i^2) / N) + u_shared^2)``, with ``u_i`` the part of
+        each session's uncertainty that is its own, ``sqrt(stated^2 - shared^2)``, and
+        ``u_shared`` the rms of the shared parts.
+
+    Notes
+    -----
+    The mean of N independent sessions has the standard error ``sd / sqrt(N)``
+    (JCGM 100:2008, GUM, sec. 4.2.3); what the sessions share does not average out and
+    is added undivided (GUM sec. 5.2, fully correlated inputs). The larger of the
+    observed scatter and the stated independent parts is used, so neither sessions
+    that happen to agree nor a campaign of few sessions can claim more than the other
+    allows.
+    """
+    n = stated.size
+    shared = np.where(np.isfinite(shared), shared, 0.0)
+    own = np.sqrt(np.maximum(np.where(np.isfinite(stated), stated, 0.0) ** 2 - shared ** 2,
+                             0.0))
+    scatter = (sd / mean) ** 2 / n if math.isfinite(sd) else 0.0
+    stated_part = float(np.mean(own ** 2)) / n
+    return mean * math.sqrt(max(scatter, stated_part) + float(np.mean(shared ** 2)))
 
 
 def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[SessionV0],
@@ -147,10 +196,11 @@ def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[Sessio
     mean = float(kept.mean())
     n_kept = int(keep.sum())
     sd = float(kept.std(ddof=1)) if n_kept >= 2 else math.nan
-    if n_kept >= 2:
-        unc = sd / math.sqrt(n_kept)
+    shared = np.array([s.shared_rel_unc for s in vals])[keep]
+    if n_kept == 1 and not math.isfinite(stated[keep][0]):
+        unc = math.nan
     else:
-        unc = float(stated[keep][0]) * mean if math.isfinite(stated[keep][0]) else math.nan
+        unc = campaign_uncertainty(mean, sd, stated[keep], shared)
     sessions = []
     for s, k in zip(vals, keep, strict=True):
         dev_pct = 100.0 * (s.v0_1au / mean - 1.0)
@@ -180,6 +230,14 @@ def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[Sessio
         reasons=reasons)
 
 
+def _shared(channel: Channel, config: Config, row: Mapping[str, Any]) -> float:
+    """The shared part of a stored session's uncertainty, from its air-mass range and tau."""
+    lo, hi, tau = row.get("airmass_min"), row.get("airmass_max"), row.get("tau")
+    if lo is None or hi is None or tau is None or not hi > lo:
+        return 0.0
+    return shared_unc(channel, config, np.linspace(lo, hi, NOMINAL_POINTS), tau)
+
+
 def campaign(results: Sequence[Mapping[str, Any]], config: Config,
              notes: list[str] | None = None) -> list[ChannelCalibration]:
     """Combine session result rows (the JSON contract) per configured channel.
@@ -191,7 +249,8 @@ def campaign(results: Sequence[Mapping[str, Any]], config: Config,
     out = []
     for ch in config.channels:
         rows = [r for r in results if r["channel"] == ch.name]
-        accepted = [SessionV0(r["date"], r["session"], r["v0_1au"], r["v0_rel_unc"])
+        accepted = [SessionV0(r["date"], r["session"], r["v0_1au"], r["v0_rel_unc"],
+                              _shared(ch, config, r))
                     for r in rows if r["accepted"] and r["v0_1au"] is not None]
         cal = combine_sessions(ch.name, ch.wavelength_nm, accepted, fit.campaign_clip_sigma,
                                fit.campaign_min_sessions)

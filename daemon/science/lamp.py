@@ -8,20 +8,16 @@ to a reference solar spectrum's band mean tells whether the two calibrations agr
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 
 import numpy as np
 
+from daemon.science.filters import (
+    astm_filter_mean_w_m2_nm,
+    astm_g173_extraterrestrial,
+    channel_filter,
+)
+
 _trapezoid = getattr(np, "trapezoid", None) or np.trapz  # numpy < 2 has only trapz
-
-
-@lru_cache(maxsize=1)
-def _astm_g173_extraterrestrial() -> tuple[np.ndarray, np.ndarray]:
-    import pvlib  # heavy: only when a responsivity is configured
-
-    spectra = pvlib.spectrum.get_reference_spectra(standard="ASTM G173-03")
-    return (spectra.index.to_numpy(dtype=float),
-            spectra["extraterrestrial"].to_numpy(dtype=float))
 
 
 def astm_g173_band_mean_w_m2_nm(wavelength_nm: float, bandwidth_nm: float) -> float:
@@ -48,7 +44,7 @@ def astm_g173_band_mean_w_m2_nm(wavelength_nm: float, bandwidth_nm: float) -> fl
     """
     if not (math.isfinite(bandwidth_nm) and bandwidth_nm > 0):
         raise ValueError(f"bandwidth_nm must be a positive number of nm, got {bandwidth_nm!r}")
-    wl, e0 = _astm_g173_extraterrestrial()
+    wl, e0 = astm_g173_extraterrestrial()
     lo, hi = wavelength_nm - bandwidth_nm / 2.0, wavelength_nm + bandwidth_nm / 2.0
     if lo < wl[0] or hi > wl[-1]:
         raise ValueError(f"ASTM G173 covers {wl[0]:g} to {wl[-1]:g} nm; the band "
@@ -62,26 +58,29 @@ def astm_g173_band_mean_w_m2_nm(wavelength_nm: float, bandwidth_nm: float) -> fl
 def lamp_check(v0_1au_v: float, channel) -> tuple[float, float, float] | None:
     """Extraterrestrial irradiance from a Langley V0 and its ratio to ASTM G173.
 
+    The reference is the ASTM G173 extraterrestrial spectrum weighted by the channel's
+    filter function (:func:`daemon.science.filters.astm_filter_mean_w_m2_nm`; the
+    default filter is a Gaussian of FWHM ``bandwidth_nm``).
+
     Parameters
     ----------
     v0_1au_v : float
         V0 at 1 AU [V].
     channel : daemon.config.settings.Channel
-        ``responsivity_v_per_w_m2_nm`` [V per W m^-2 nm^-1], ``wavelength_nm`` and
-        ``bandwidth_nm`` [nm].
+        ``responsivity_v_per_w_m2_nm`` [V per W m^-2 nm^-1] and its filter.
 
     Returns
     -------
     (e0_1au, astm_band_mean, ratio) or None
-        Irradiance at 1 AU implied by the Langley V0 [W m^-2 nm^-1], the ASTM G173
-        band mean [W m^-2 nm^-1] and their ratio; None without a responsivity or a
-        finite V0, or for a band outside the ASTM table.
+        Irradiance at 1 AU implied by the Langley V0 [W m^-2 nm^-1], the
+        filter-weighted ASTM G173 mean [W m^-2 nm^-1] and their ratio; None without a
+        responsivity or a finite V0, or for a filter outside the ASTM table.
     """
     resp = channel.responsivity_v_per_w_m2_nm
     if resp is None or v0_1au_v is None or not math.isfinite(v0_1au_v):
         return None
     try:
-        ref = astm_g173_band_mean_w_m2_nm(channel.wavelength_nm, channel.bandwidth_nm)
+        ref = astm_filter_mean_w_m2_nm(channel_filter(channel))
     except ValueError:
         return None
     e0 = float(v0_1au_v) / float(resp)
@@ -92,4 +91,4 @@ def lamp_note(check: tuple[float, float, float]) -> str:
     """The one-line note of a Langley-versus-lamp check."""
     e0, ref, ratio = check
     return (f"Langley versus lamp: V0 at 1 AU over the responsivity gives {e0:.4f} "
-            f"W m-2 nm-1, {ratio:.4f} times the ASTM G173 band mean {ref:.4f}")
+            f"W m-2 nm-1, {ratio:.4f} times the filter-weighted ASTM G173 mean {ref:.4f}")

@@ -87,6 +87,9 @@ class ChannelSeries:
     n_total: int
     notes: list[str] = field(default_factory=list)
     hours: np.ndarray | None = None  # time of each point [h], any origin
+    # Standard error of each burst mean from the burst's own scatter, in ln V
+    # (coefficient of variation over sqrt(samples)); NaN where the burst gave no spread.
+    burst_sd_ln: np.ndarray | None = None
     measurement_ids: np.ndarray | None = None
     screened: ScreenedPoints | None = None
 
@@ -100,6 +103,14 @@ class PointSignal:
     cv: float | None  # burst coefficient of variation
     no_dark: bool = False
     no_housekeeping: bool = False
+    n_samples: int = 0  # sun samples in the burst
+
+    @property
+    def mean_sd_ln(self) -> float:
+        """Standard error of the burst mean in ln V (``cv / sqrt(n)``); NaN when unknown."""
+        if self.cv is None or self.n_samples < 2 or not math.isfinite(self.cv):
+            return math.nan
+        return self.cv / math.sqrt(self.n_samples)
 
 
 def point_signal(p: SessionPoint, channel: Channel, config: Config) -> PointSignal:
@@ -125,14 +136,14 @@ def point_signal(p: SessionPoint, channel: Channel, config: Config) -> PointSign
     # The spread of a clear-sky burst is detector noise; a cloud edge or thin
     # cirrus passing through the field of view makes it jump.
     if cv is not None and cv > config.fit.max_cv:
-        return PointSignal(net, "cloudy", cv, no_dark)
+        return PointSignal(net, "cloudy", cv, no_dark, n_samples=st.n_sun)
     hk = p.housekeeping
     no_hk = False
     if hk is not None:
         net = temperature_corrected(net, hk.detector_temp_c, channel)
     elif channel.temp_coeff_per_k != 0.0:
         no_hk = True
-    return PointSignal(net, None, cv, no_dark, no_hk)
+    return PointSignal(net, None, cv, no_dark, no_hk, n_samples=st.n_sun)
 
 
 def _count(n: int, what: str) -> str:
@@ -175,7 +186,7 @@ def screen_channel(points: Sequence[SessionPoint], channel: Channel,
 
     max_cv = config.fit.max_cv
     max_pointing = config.acquisition.max_pointing_error_deg
-    rows: list[tuple[float, float, float, float, float, float]] = []
+    rows: list[tuple[float, float, float, float, float, float, float]] = []
     ids: list[int] = []
     dropped: list[tuple[float, float, float, float]] = []
     dropped_ids: list[int] = []
@@ -198,7 +209,7 @@ def screen_channel(points: Sequence[SessionPoint], channel: Channel,
         rows.append((airmass,
                      _point_ozone_airmass(p, config), _point_pressure(p), ps.signal_v,
                      math.nan if p.earth_sun_factor is None else p.earth_sun_factor,
-                     p.time_utc.timestamp() / 3600.0))
+                     p.time_utc.timestamp() / 3600.0, ps.mean_sd_ln))
     notes = []
     if counts["missing"]:
         notes.append(_count(counts["missing"], f"without samples of channel {channel.name}"))
@@ -214,7 +225,7 @@ def screen_channel(points: Sequence[SessionPoint], channel: Channel,
         notes.append(_count(no_dark, "without a dark reading: dark taken as 0 V"))
     if no_hk:
         notes.append(_count(no_hk, "without housekeeping: no detector-temperature correction"))
-    arr = np.array(rows, dtype=float).reshape(-1, 6)
+    arr = np.array(rows, dtype=float).reshape(-1, 7)
     out = np.array(dropped, dtype=float).reshape(-1, 4)
     screened = ScreenedPoints(measurement_ids=np.array(dropped_ids, dtype=np.int64),
                               reasons=tuple(dropped_why), airmass=out[:, 0],
@@ -223,4 +234,5 @@ def screen_channel(points: Sequence[SessionPoint], channel: Channel,
     return ChannelSeries(airmass=arr[:, 0], ozone_airmass=arr[:, 1], pressure_hpa=arr[:, 2],
                          signal_v=arr[:, 3], earth_sun_factor=arr[:, 4],
                          n_total=len(points), notes=notes, hours=arr[:, 5],
-                         measurement_ids=np.array(ids, dtype=np.int64), screened=screened)
+                         burst_sd_ln=arr[:, 6], measurement_ids=np.array(ids, dtype=np.int64),
+                         screened=screened)

@@ -32,7 +32,15 @@ import numpy as np
 from daemon.config.settings import Channel, Config, FitSettings
 from daemon.science import solar
 from daemon.science.lamp import lamp_check, lamp_note
-from daemon.science.langley import FitResult, fit_coordinates, fit_session, v0_at_1au
+from daemon.science.langley import (
+    FitResult,
+    drift_sensitivity,
+    fit_coordinates,
+    fit_line,
+    fit_session,
+    v0_at_1au,
+    with_terms,
+)
 from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
 from daemon.science.points import FIT_POINT_ROLES
 from daemon.science.screening import (  # noqa: F401 - the fit's inputs, named here too
@@ -174,15 +182,211 @@ def extinction_corrections(series: ChannelSeries, channel: Channel,
     return replace(ext, ln_correction=ext.correction_at(m, series.ozone_airmass, p))
 
 
-#: Reference wavelength [nm] of ``fit.tau_drift_per_hour``; the drift allowed for
-#: scales as wavelength^-1, an aerosol-like Angstrom exponent of 1 (common practice,
-#: no source).
-DRIFT_REFERENCE_NM = 500.0
+# --------------------------------------------------------------------------- budget
+
+#: Scale heights of the aerosol above the site the budget spans [km]: the fitter puts
+#: the aerosol on the Kasten-Young air mass of the whole atmosphere, a real aerosol
+#: sits lower (scale heights of one to two kilometres are typical; from memory).
+AEROSOL_SCALE_HEIGHTS_KM = (0.5, 3.0)
+#: Heights of the ozone layer the budget spans [km]: the fitter's layer is at 22 km
+#: (Komhyr 1980); the ozone maximum lies between about 18 and 26 km with latitude and
+#: season (from memory).
+OZONE_LAYER_HEIGHTS_KM = (18.0, 26.0)
+#: Gaussian FWHM to standard deviation: 2 sqrt(2 ln 2) (common practice, no source).
+FWHM_PER_SD = 2.0 * math.sqrt(2.0 * math.log(2.0))
+#: Rayleigh optical depth falls about as wavelength^-4 (Bodhaine et al. 1999; the
+#: exponent is nearer 4.05 in the visible, 4 keeps the term simple and slightly small).
+RAYLEIGH_EXPONENT = 4.0
+#: Budget terms the sessions of a campaign share: dividing them by the number of
+#: sessions would claim an accuracy the model does not have.
+SYSTEMATIC_TERMS = ("filter_width", "aerosol_layer_airmass", "ozone_airmass_model")
+#: Drift rate [optical depth per hour] for the statement of what one session cannot see.
+UNSEEN_DRIFT_PER_HOUR = 0.001
 
 
-def drift_per_hour(channel: Channel, config: Config) -> float:
-    """The unseen drift of the optical depth allowed for in a channel [per hour]."""
-    return config.fit.tau_drift_per_hour * DRIFT_REFERENCE_NM / channel.wavelength_nm
+#: Share of the band-curvature correction kept as its uncertainty (see
+#: :func:`systematic_terms`).
+BAND_MODEL_SHARE = 0.25
+
+
+def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
+                     tau_total: float, pressure_hpa: float | None = None
+                     ) -> tuple[dict[str, float], dict[str, float]]:
+    """What the fitter's line leaves out of a window channel: corrections and uncertainties.
+
+    Parameters
+    ----------
+    channel : Channel
+        Wavelength and bandwidth (taken as a Gaussian FWHM) [nm].
+    config : Config
+        Site (height, nominal pressure, ozone column).
+    airmass : ndarray
+        Kasten-Young air masses of the fitted points.
+    tau_total : float
+        The fitted total optical depth (its aerosol share sizes the layer term).
+    pressure_hpa : float, optional
+        Station pressure [hPa]; default the site's nominal one.
+
+    Returns
+    -------
+    (shifts, terms) : dict, dict
+        ``shifts``: the expected bias of the fitted ln V0 by name, to be subtracted
+        [ln V]; ``terms``: the relative standard uncertainties of V0 left after that
+        [fraction], by the same names: ``filter_width``, ``aerosol_layer_airmass``,
+        ``ozone_airmass_model`` (both empty without two distinct air masses).
+
+    Notes
+    -----
+    Each term is the intercept of a straight line fitted to the ln V pattern the
+    model leaves out, over the session's own air masses: what it moves ln V0 by.
+
+    ``filter_width``: across a band the Rayleigh optical depth changes, and the mean of
+    ``exp(-tau m)`` over the band is ``exp(-tau_mean m + var(tau) m^2 / 2)`` to second
+    order (the cumulant expansion), a curvature a line turns into a low V0; ``var(tau)``
+    from ``dtau/dlambda = -4 tau / lambda`` over a Gaussian band.
+
+    ``aerosol_layer_airmass``: ``-tau_a (m_layer - m)`` for a thin layer at one of
+    :data:`AEROSOL_SCALE_HEIGHTS_KM` above the site (Komhyr's spherical-shell form,
+    :func:`daemon.science.atmosphere.ozone_airmass`), ``tau_a`` the fitted optical
+    depth minus Rayleigh and ozone.
+
+    ``ozone_airmass_model``: ``-tau_O3 (m_O3(h) - m_O3(22 km))`` for layer heights
+    :data:`OZONE_LAYER_HEIGHTS_KM`.
+
+    The last two are biases known to lie within a range: corrected to its middle, with
+    the rectangular half-width over sqrt(3) as the uncertainty (JCGM 100:2008, GUM,
+    sec. 4.3.7). The band term is corrected in full; a quarter of it stays as its
+    uncertainty (the filter's real shape, the solar spectrum's slope across it and the
+    exponent 4 against 4.05; a judgement, no source).
+    """
+    from daemon.science.atmosphere import ozone_airmass
+
+    m = np.asarray(airmass, dtype=float)
+    m = m[np.isfinite(m)]
+    if m.size < 2 or np.ptp(m) == 0.0:
+        return {}, {}
+    p = solar.site_pressure_hpa(config.site) if pressure_hpa is None else pressure_hpa
+    lam = channel.wavelength_nm
+    tau_r = float(solar.rayleigh_optical_depth(lam, p))
+    sigma = channel_cross_section_cm2(channel)
+    tau_o3 = 0.0 if sigma is None else ozone_optical_depth(sigma, config.site.ozone_du)
+    tau_a = tau_total - tau_r - tau_o3 if math.isfinite(tau_total) else 0.0
+    tau_a = max(tau_a, 0.0)
+    z = np.atleast_1d(np.asarray(solar.apparent_zenith_from_airmass(m), dtype=float))
+    m, z = m[np.isfinite(z)], z[np.isfinite(z)]  # beyond the horizon's air mass: no zenith
+    if m.size < 2 or np.ptp(m) == 0.0:
+        return {}, {}
+    elev_m = config.site.elevation_m
+
+    def shift(pattern: np.ndarray) -> float:
+        return fit_line(m, pattern).intercept
+
+    sd_tau = RAYLEIGH_EXPONENT * tau_r * (channel.bandwidth_nm / FWHM_PER_SD) / lam
+    width = shift(0.5 * sd_tau * sd_tau * m * m)
+    site_km = elev_m / 1000.0
+    layer = [shift(-tau_a * (ozone_airmass(z, elev_m, site_km + h) - m))
+             for h in AEROSOL_SCALE_HEIGHTS_KM]
+    m_o3 = ozone_airmass(z, elev_m)
+    ozone = [shift(-tau_o3 * (ozone_airmass(z, elev_m, h) - m_o3))
+             for h in OZONE_LAYER_HEIGHTS_KM]
+    shifts = {"filter_width": width, "aerosol_layer_airmass": 0.5 * (layer[0] + layer[1]),
+              "ozone_airmass_model": 0.5 * (ozone[0] + ozone[1])}
+    terms = {"filter_width": BAND_MODEL_SHARE * abs(width),
+             "aerosol_layer_airmass": 0.5 * abs(layer[1] - layer[0]) / math.sqrt(3.0),
+             "ozone_airmass_model": 0.5 * abs(ozone[1] - ozone[0]) / math.sqrt(3.0)}
+    return shifts, terms
+
+
+def model_terms(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float,
+                pressure_hpa: float | None = None) -> tuple[dict[str, float], dict[str, float]]:
+    """:func:`systematic_terms` as ``fit.correct_model_terms`` applies them.
+
+    Corrected: the shifts and what is left of each term. Not corrected: no shifts, and
+    each bias counts in full, rms about zero (JCGM 100:2008, GUM, sec. F.2.4.5).
+    """
+    shifts, terms = systematic_terms(channel, config, airmass, tau_total, pressure_hpa)
+    if config.fit.correct_model_terms:
+        return shifts, terms
+    return {}, {k: math.hypot(u, shifts[k]) for k, u in terms.items()}
+
+
+def shared_unc(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float) -> float:
+    """The part of a window channel's V0 uncertainty its sessions share [fraction].
+
+    The root sum of squares of the :data:`SYSTEMATIC_TERMS` (:func:`model_terms`): the
+    same model is wrong the same way on every clear day, so a campaign does not divide
+    it by its number of sessions. Zero for a water-vapour channel.
+    """
+    if channel.water_vapour:
+        return 0.0
+    _, terms = model_terms(channel, config, airmass, tau_total)
+    return math.sqrt(sum(terms.get(k, 0.0) ** 2 for k in SYSTEMATIC_TERMS))
+
+
+def drift_allowance(stat_and_model_unc: float, repeatability: float | None) -> float:
+    """The drift allowance a stored campaign's repeatability gives a session [fraction].
+
+    The spread of a campaign's session V0 values (``repeatability``, relative) is
+    what the sessions' own statistics and model terms, plus the drift no session can
+    see, do to one session; the part the first two do not explain,
+    ``sqrt(R^2 - u^2)``, is the drift's (never negative). A session is then never
+    stated better than the site has shown it repeats.
+    """
+    if repeatability is None or not math.isfinite(repeatability) or repeatability <= 0.0:
+        return 0.0
+    u = stat_and_model_unc if math.isfinite(stat_and_model_unc) else 0.0
+    return math.sqrt(max(repeatability * repeatability - u * u, 0.0))
+
+
+def unseen_note(fit: FitResult, hours: np.ndarray | None, airmass: np.ndarray) -> str | None:
+    """What this session cannot see, in numbers: a steady drift of the optical depth."""
+    if hours is None or fit.n_used < 2:
+        return None
+    used = np.asarray(fit.used, dtype=bool)
+    h = np.asarray(hours, dtype=float)[used]
+    m = np.asarray(airmass, dtype=float)[used]
+    if not np.all(np.isfinite(h)) or np.ptp(m) == 0.0:
+        return None
+    shift = abs(drift_sensitivity(m, m, h)) * UNSEEN_DRIFT_PER_HOUR
+    return (f"not visible in one session: a steady drift of the optical depth of "
+            f"{UNSEEN_DRIFT_PER_HOUR:g} per hour keeps the plot straight and moves V0 by "
+            f"{100 * shift:.2f} %; the same day's other session and the campaign's "
+            "repeatability are the checks")
+
+
+def budget_terms(fit: FitResult, channel: Channel, config: Config, s: ChannelSeries,
+                 repeatability: float | None) -> tuple[FitResult, dict[str, float], list[str]]:
+    """A window-channel fit corrected for the model terms, with its named V0 terms."""
+    used = np.asarray(fit.used, dtype=bool)
+    notes: list[str] = []
+    if fit.n_used < 2:
+        return fit, {}, notes
+    p = s.pressure_hpa[used]
+    p_mean = float(np.nanmean(p)) if np.isfinite(p).any() else None
+    shifts, terms = model_terms(channel, config, s.airmass[used], fit.tau, p_mean)
+    if not config.fit.correct_model_terms:
+        notes.append("model terms not corrected (fit.correct_model_terms: false): stated "
+                     "as uncertainty")
+    total = sum(shifts.values())
+    if shifts and math.isfinite(fit.ln_v0):
+        fit = replace(fit, ln_v0=fit.ln_v0 - total, v0=math.exp(fit.ln_v0 - total))
+        notes.append("V0 corrected by " + ", ".join(
+            f"{k.replace('_', ' ')} {-100 * v:+.3f} %" for k, v in shifts.items())
+            + " for what a straight line cannot describe")
+    u = math.sqrt(fit.v0_stat_unc ** 2 + sum(t * t for t in terms.values()))
+    allowance = drift_allowance(u, repeatability)
+    if allowance > 0.0:
+        terms["campaign_repeatability"] = allowance
+        notes.append(f"drift allowance {100 * allowance:.3f} % from the stored campaign's "
+                     f"repeatability {100 * repeatability:.3f} % for this channel")
+    return fit, terms, notes
+
+
+def budget_note(fit: FitResult) -> str:
+    """The uncertainty budget of a fit in words, largest term first."""
+    parts = sorted(fit.budget, key=lambda kv: -kv[1])
+    return ("V0 uncertainty " + f"{100 * fit.v0_rel_unc:.3f} %: "
+            + ", ".join(f"{k.replace('_', ' ')} {100 * u:.3f} %" for k, u in parts))
 
 
 def _known_tau(ext: Extinction) -> float:
@@ -269,6 +473,7 @@ def _row(plan_date: str, session: str, channel: Channel, fit: FitResult | None, 
         "accepted": accepted, "reasons": [] if accepted else reasons,
         "notes": notes, "earth_sun_factor": mean_factor,
         "residual_sd": fit.residual_sd if fit else nan,
+        "uncertainty_budget": dict(fit.budget) if fit else {},
         "tau_aerosol": tau_aerosol,
         "tau_rayleigh": ext.tau_rayleigh if ext else nan,
         "tau_ozone": ext.tau_ozone if ext else nan,
@@ -335,8 +540,23 @@ def _screened_arrays(s: ChannelSeries) -> ScreenedPoints:
     return ScreenedPoints(np.empty(0, dtype=np.int64), (), empty, empty, empty, empty)
 
 
+def _with_budget(fit: FitResult, terms: Mapping[str, float], notes: list[str],
+                 s: ChannelSeries, config: Config) -> FitResult:
+    unseen = unseen_note(fit, s.hours, s.airmass)
+    notes = list(notes) + ([unseen] if unseen else [])
+    if config.fit.tau_drift_per_hour is not None:
+        notes.append("fit.tau_drift_per_hour is deprecated and ignored: the drift allowance "
+                     "now comes from the same day's other session and the stored "
+                     "campaign's repeatability")
+    fit = with_terms(fit, terms)
+    if fit.budget and math.isfinite(fit.v0_rel_unc):
+        notes.append(budget_note(fit))
+    return with_terms(fit, {}, tuple(notes))
+
+
 def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: str,
-               session: str) -> list[dict[str, Any]]:
+               session: str,
+               repeatability: Mapping[str, float] | None = None) -> list[dict[str, Any]]:
     """Fit every configured channel of one session from its screened series.
 
     Parameters
@@ -349,6 +569,9 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
         Local date of the plan, YYYY-MM-DD.
     session : str
         'am' or 'pm'.
+    repeatability : mapping of channel name to float, optional
+        Relative rms spread of session V0 of the stored campaign per channel
+        [fraction]; sets the drift allowance of each channel (:func:`drift_allowance`).
 
     Returns
     -------
@@ -372,7 +595,10 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
         ext = extinction_corrections(s, channel, config)
         fit = fit_session(s.airmass, s.signal_v, config.fit, ln_correction=ext.ln_correction,
                           tau_floor=_known_tau(ext), hours=s.hours,
-                          drift_per_hour=drift_per_hour(channel, config))
+                          burst_sd_ln=s.burst_sd_ln)
+        fit, terms, term_notes = budget_terms(fit, channel, config, s,
+                                         (repeatability or {}).get(channel.name))
+        fit = _with_budget(fit, terms, term_notes, s, config)
         row = _row(plan_date, session, channel, fit, s.n_total, s.earth_sun_factor,
                    s.notes + list(ext.notes), ext.failures, ext)
         x, y = fit_coordinates(s.airmass, s.signal_v, ext.ln_correction)
@@ -388,34 +614,44 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
         if channel.water_vapour:
             s = series.get(channel.name, empty)
             rows[channel.name] = _water_vapour_row(s, channel, config, aerosol, plan_date,
-                                                   session)
+                                                   session, repeatability)
     return [rows[c.name] for c in config.channels]
 
 
 def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
-                      aerosol: Mapping[float, float], plan_date: str,
-                      session: str) -> dict[str, Any]:
+                      aerosol: Mapping[float, float], plan_date: str, session: str,
+                      repeatability: Mapping[str, float] | None = None) -> dict[str, Any]:
     """The modified Langley: ln V plus the known extinctions against m^b.
 
-    ``V = V0 exp(-tau_R m - tau_O3 m_O3 - tau_a m - a (u m)^b)`` for a water-vapour
-    band (water-vapour absorption as a power of the slant column, b about 0.5-0.6;
-    docs/REFERENCES.md, from memory), so ``ln V + tau_R m + tau_O3 m_O3 + tau_a m`` is a
-    straight line in ``m^b`` with intercept ln V0. ``tau_a`` comes from the session's
-    accepted window channels by the Angstrom law.
+    ``V = V0 exp(-tau_R m - tau_O3 m_O3 - tau_a m - a (W m)^b)`` for a water-vapour
+    band, so ``ln V + tau_R m + tau_O3 m_O3 + tau_a m`` is a straight line in ``m^b``
+    with intercept ln V0 and slope ``-a W^b``. ``tau_a`` comes from the session's
+    accepted window channels by the Angstrom law; ``a`` and ``b`` from the channel's
+    filter (:func:`water_vapour_fit`). A channel without a filter is not fitted.
     """
-    b = config.fit.water_vapour_exponent
+    from daemon.science.watervapour import water_vapour_airmass_from_kasten_young
+
     tau_a = aerosol_at(channel.wavelength_nm, aerosol)
     sp = _screened_arrays(s)
-    if tau_a is None:
+    spec = channel.filter
+    failure = None
+    if spec is None or not spec.given:
+        failure = ("not fitted: water-vapour channel without a filter function; give the "
+                   "channel 'filter: {file: <csv>}' or 'filter: {centre_nm: .., fwhm_nm: ..}' "
+                   "so that the modified Langley's a and b can be derived from it")
+    elif tau_a is None:
+        failure = (f"not fitted: water-vapour channel; the modified Langley needs the aerosol "
+                   f"from at least two accepted window channels, and this session has "
+                   f"{len(aerosol)}")
+    if failure is not None:
+        b0 = config.fit.water_vapour_exponent
         row = _row(plan_date, session, channel, None, s.n_total, s.earth_sun_factor,
-                   s.notes, [f"not fitted: water-vapour channel; the modified Langley needs "
-                             f"the aerosol from at least two accepted window channels, and "
-                             f"this session has {len(aerosol)}"])
-        # No aerosol, no corrected ln V: the points are kept with x only.
+                   s.notes, [failure])
+        # No constants or no aerosol, no corrected ln V: the points are kept with x only.
         row["fit_points"] = fit_point_records(
-            s, None, fit_coordinates(s.airmass, s.signal_v, regressor_exponent=b)[0],
+            s, None, fit_coordinates(s.airmass, s.signal_v, regressor_exponent=b0)[0],
             np.full(s.airmass.shape, math.nan),
-            fit_coordinates(sp.airmass, sp.signal_v, regressor_exponent=b)[0],
+            fit_coordinates(sp.airmass, sp.signal_v, regressor_exponent=b0)[0],
             np.full(sp.airmass.shape, math.nan))
         return row
     ext = extinction_corrections(s, channel, config)
@@ -428,20 +664,95 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
         return tau_r_i * m + tau_o3 * m_o3 + tau_a[0] * m
 
     known = known_extinction(s.airmass, s.ozone_airmass, s.pressure_hpa)
-    fit = fit_session(s.airmass, s.signal_v, config.fit, ln_correction=known,
-                      regressor_exponent=b, hours=s.hours,
-                      drift_per_hour=drift_per_hour(channel, config))
+    fit, wv, u_b_rel = water_vapour_fit(s, channel, config, known, p_ref)
+    b = wv.b
+    m_w = water_vapour_airmass_from_kasten_young(s.airmass)
+    rep = (repeatability or {}).get(channel.name)
+    allowance = drift_allowance(fit.v0_rel_unc, rep)
+    fit = _with_budget(fit, {"campaign_repeatability": allowance},
+                       [f"drift allowance {100 * allowance:.3f} % from the stored campaign's "
+                        f"repeatability {100 * rep:.3f} % for this channel"]
+                       if allowance > 0.0 else [], s, config)
     notes = s.notes + [n for n in ext.notes if not n.startswith("no ozone cross-section")]
     notes.append(f"water-vapour channel: modified Langley, ln V plus Rayleigh, ozone and "
-                 f"aerosol {tau_a[0]:.4f} (from {tau_a[1]}) against m^{b:g}")
+                 f"aerosol {tau_a[0]:.4f} (from {tau_a[1]}) against m^{b:.4f}; a = {wv.a:.4f} "
+                 f"+/- {wv.u_a:.4f}, b = {b:.4f} +/- {wv.u_b:.4f} from the filter "
+                 f"({spec.source}) and SPECTRL2 water vapour at {wv.pressure_hpa:.0f} hPa, "
+                 f"{wv.column_range_cm[0]:.2f}-{wv.column_range_cm[1]:.2f} cm; b's "
+                 f"uncertainty adds {100 * u_b_rel:.2f} % to V0's")
     row = _row(plan_date, session, channel, fit, s.n_total, s.earth_sun_factor, notes,
                ext.failures, None, report_tau=False)
-    x, y = fit_coordinates(s.airmass, s.signal_v, known, b)
-    sx, sy = fit_coordinates(sp.airmass, sp.signal_v,
+    row.update(water_vapour_row_keys(wv, fit, u_b_rel))
+    x, y = fit_coordinates(m_w, s.signal_v, known, b)
+    sx, sy = fit_coordinates(water_vapour_airmass_from_kasten_young(sp.airmass), sp.signal_v,
                              known_extinction(sp.airmass, sp.ozone_airmass, sp.pressure_hpa),
                              b)
     row["fit_points"] = fit_point_records(s, fit, x, y, sx, sy)
     return row
+
+
+def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: np.ndarray,
+                     pressure_hpa: float) -> tuple[FitResult, Any, float]:
+    """The modified-Langley fit with a, b from the filter, and b's share of V0's uncertainty.
+
+    The regressor is ``m_w^b`` with ``m_w`` the water-vapour air mass (Kasten 1965,
+    :func:`daemon.science.watervapour.water_vapour_airmass`), not Kasten-Young's: the
+    water sits low, and at air mass 6 the two differ by 2 %, which the long
+    extrapolation of the modified Langley turns into several per cent of V0.
+
+    First a, b over the channel's ``water_vapour_range_cm``; the fit's slope gives the
+    session's column ``W = (slope / a)^(1/b)``; then a, b again over that column
+    +/- :data:`WATER_VAPOUR_REFINE` (the session's own range) and the final fit. The fit
+    is repeated with ``b +/- u_b``; half the change of ln V0 is b's part of V0's
+    relative uncertainty, added in quadrature to the fit's.
+
+    Returns the fit (``v0_rel_unc`` including b's part), the constants used and b's part.
+    """
+    from daemon.science.watervapour import (  # pvlib: only for this channel
+        derive_constants,
+        water_vapour_airmass_from_kasten_young,
+    )
+
+    window = (config.fit.airmass_min, config.fit.airmass_max)
+    spec = channel.filter
+
+    m_w = water_vapour_airmass_from_kasten_young(s.airmass)
+    # The window stays the configured one in Kasten-Young air mass: its edges in m_w.
+    lo, hi = water_vapour_airmass_from_kasten_young(np.array(window))
+    settings = replace(config.fit, airmass_min=float(lo), airmass_max=float(hi))
+
+    def run(b: float) -> FitResult:
+        return fit_session(m_w, s.signal_v, settings, ln_correction=known,
+                           regressor_exponent=b, hours=s.hours, burst_sd_ln=s.burst_sd_ln)
+
+    wv = derive_constants(spec, pressure_hpa, window, channel.water_vapour_range_cm)
+    fit = run(wv.b)
+    if math.isfinite(fit.tau) and fit.tau > 0:
+        column = (fit.tau / wv.a) ** (1.0 / wv.b)
+        lo, hi = channel.water_vapour_range_cm
+        column = min(max(column, lo), hi)
+        wv = derive_constants(spec, pressure_hpa, window,
+                              (column / WATER_VAPOUR_REFINE, column * WATER_VAPOUR_REFINE))
+        fit = run(wv.b)
+    if not math.isfinite(fit.ln_v0):
+        return fit, wv, math.nan
+    up, down = run(wv.b + wv.u_b), run(wv.b - wv.u_b)
+    u_b_rel = abs(up.ln_v0 - down.ln_v0) / 2.0 if math.isfinite(up.ln_v0 + down.ln_v0) \
+        else math.nan
+    return with_terms(fit, {"water_vapour_exponent": u_b_rel}), wv, u_b_rel
+
+
+#: The session's own column range for the refined a, b: its first estimate times or
+#: divided by this factor (covers the first estimate's error from the wider range's b).
+WATER_VAPOUR_REFINE = 1.3
+
+
+def water_vapour_row_keys(wv: Any, fit: FitResult, u_b_rel: float) -> dict[str, Any]:
+    """The row's water-vapour keys: a, b, their uncertainties, b's part, the column."""
+    column = (fit.tau / wv.a) ** (1.0 / wv.b) if math.isfinite(fit.tau) and fit.tau > 0 \
+        else math.nan
+    return {"wv_a": wv.a, "wv_b": wv.b, "wv_u_a": wv.u_a, "wv_u_b": wv.u_b,
+            "wv_v0_rel_unc_b": u_b_rel, "precipitable_water_cm": column}
 
 
 # --------------------------------------------------------------------------- same day
@@ -478,12 +789,75 @@ def day_disagreements(am_rows: Sequence[Mapping[str, Any]], pm_rows: Sequence[Ma
     return out
 
 
+def same_day_term(u_am: float, u_pm: float, difference: float) -> float:
+    """Drift allowance from one day's morning-afternoon disagreement [fraction].
+
+    With each session off by an independent drift error of SD ``s`` besides its stated
+    uncertainty, the relative difference ``d`` of the two V0 has expected square
+    ``2 s^2 + u_am^2 + u_pm^2``; one day's estimate of ``s`` is therefore
+    ``sqrt(max(d^2 - u_am^2 - u_pm^2, 0) / 2)`` (method of moments, one degree of
+    freedom; common practice, no source). A steady drift through the day, which biases
+    the two sessions in opposite directions, gives the same value within a factor of
+    sqrt(2).
+    """
+    excess = difference * difference - u_am * u_am - u_pm * u_pm
+    return math.sqrt(max(excess, 0.0) / 2.0)
+
+
+def add_same_day_terms(am_rows: Sequence[dict[str, Any]],
+                       pm_rows: Sequence[dict[str, Any]]) -> dict[str, float]:
+    """Widen, in place, both sessions of a day for their morning-afternoon disagreement.
+
+    Each channel with a V0 at 1 AU in both sessions gets the :func:`same_day_term` as a
+    ``same_day`` budget term in both rows, unless a row's drift allowance from the
+    campaign is larger already (both estimate the same drift), and a note saying so.
+    Returns the term by channel. (The service stores the morning before the afternoon
+    exists; :func:`daemon.station.fitting.fit_stored_session` stores the widened
+    morning uncertainty with the afternoon.)
+    """
+    am = {r["channel"]: r for r in am_rows}
+    out: dict[str, float] = {}
+    for pm in pm_rows:
+        a = am.get(pm["channel"])
+        if a is None:
+            continue
+        v_am, v_pm = a["v0_1au"], pm["v0_1au"]
+        u_am, u_pm = a["v0_rel_unc"], pm["v0_rel_unc"]
+        values = (v_am, v_pm, u_am, u_pm)
+        if not all(v is not None and math.isfinite(v) for v in values) or v_am <= 0:
+            continue
+        diff = v_pm / v_am - 1.0
+        term = same_day_term(u_am, u_pm, diff)
+        out[pm["channel"]] = term
+        for row, u in ((a, u_am), (pm, u_pm)):
+            _widen(row, u, term, f"drift allowance {100 * term:.3f} % from the same day's "
+                                 f"morning and afternoon V0 ({100 * diff:+.3f} % apart)")
+    return out
+
+
+def _widen(row: dict[str, Any], unc: float, term: float, why: str) -> None:
+    budget = dict(row.get("uncertainty_budget") or {"stated": unc})
+    if term <= 0.0 or term <= budget.get("campaign_repeatability", 0.0):
+        return
+    budget.pop("campaign_repeatability", None)
+    budget["same_day"] = term
+    row["uncertainty_budget"] = budget
+    row["v0_rel_unc"] = math.sqrt(sum(u * u for u in budget.values()))
+    note = f"{why}: V0 uncertainty now {100 * row['v0_rel_unc']:.3f} %"
+    row["notes"] = [*row.get("notes", ()), note]
+    if not row["accepted"]:
+        row["reasons"] = [*row["reasons"], note]
+
+
 def apply_day_check(am_rows: Sequence[dict[str, Any]], pm_rows: Sequence[dict[str, Any]],
                     settings: FitSettings) -> dict[str, str]:
     """Refuse, in place, both sessions of every channel whose morning and afternoon
     disagree (:func:`day_disagreements`); return the reasons by channel. A row already
-    refused keeps its first reason and gets this one after it."""
+    refused keeps its first reason and gets this one after it. The afternoon rows are
+    then widened for the disagreement (:func:`add_same_day_terms`): the test uses the
+    uncertainties each session stated alone."""
     found = day_disagreements(am_rows, pm_rows, settings)
+    add_same_day_terms(am_rows, pm_rows)
     for row in (*am_rows, *pm_rows):
         reason = found.get(row["channel"])
         if reason is None:

@@ -18,7 +18,8 @@ from daemon.config.settings import Config
 from daemon.science import solar
 from daemon.science.aod import angstrom_pair, point_alpha, point_aod
 from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
-from daemon.science.sessionfit import apply_day_check, fit_series, screen_channel
+from daemon.science.sessionfit import aerosol_at, apply_day_check, fit_series, screen_channel
+from daemon.science.watervapour import point_water, water_vapour_channels
 from daemon.store.reader import (
     FIT_SESSIONS,
     SESSIONS,
@@ -66,16 +67,36 @@ def fit_stored_session(store: Store, config: Config, plan_date: str | _dt.date, 
         raise ValueError(f"only 'am' and 'pm' sessions are fitted; got {session!r}")
     points = store.session_points(date, session)
     series = {ch.name: screen_channel(points, ch, config) for ch in config.channels}
-    rows = fit_series(series, config, date, session)
+    rows = fit_series(series, config, date, session, campaign_repeatability(store))
     if session == "pm":
         am_rows = [r for r in results_between(store.conn, date, date) if r["session"] == "am"]
         am_accepted = {r["channel"] for r in am_rows if r["accepted"]}
+        am_unc = {r["channel"]: r["v0_rel_unc"] for r in am_rows}
         for channel, reason in apply_day_check(am_rows, rows, config.fit).items():
             if channel in am_accepted:  # stored this morning as accepted: no longer
                 store.refuse_session_result(date, "am", channel, reason)
+        for r in am_rows:  # widened for the disagreement with this afternoon
+            if r["v0_rel_unc"] != am_unc[r["channel"]] and r.get("notes"):
+                store.widen_session_result(date, "am", r["channel"], r["v0_rel_unc"],
+                                           r["notes"][-1])
     store.save_session_results(date, session, rows, fitted_utc=fitted_utc)
     _update_aod(store, config, date, session, fitted_utc)
     return [result_contract(r) for r in rows]
+
+
+def campaign_repeatability(store: Store) -> dict[str, float]:
+    """The newest stored calibration's repeatability per usable channel [fraction].
+
+    ``heliotrope calibrate`` stores the site's spread of session V0 per channel; the
+    session fit takes it as its drift allowance
+    (:func:`daemon.science.sessionfit.drift_allowance`). Empty without a calibration.
+    """
+    cal = stored_calibration(store.conn)
+    if cal is None:
+        return {}
+    return {c["channel"]: c["repeatability_pct"] / 100.0 for c in cal["channels"]
+            if c["usable"] and c["repeatability_pct"] is not None
+            and c["repeatability_pct"] > 0.0}
 
 
 def _update_aod(store: Store, config: Config, date: str, session: str,
@@ -135,6 +156,7 @@ def update_aod(store: Store, config: Config, first: str, last: str,
     channels = [c for c in config.channels if c.name in v0 and not c.water_vapour]
     if not channels:
         return 0
+    water = water_vapour_channels(config, v0)
     nominal_p = solar.site_pressure_hpa(config.site)
     tau_o3 = {}
     for c in channels:
@@ -148,6 +170,7 @@ def update_aod(store: Store, config: Config, first: str, last: str,
         for p in store.session_points(date, session):
             per_channel = point_aod(p, channels, config, v0, tau_o3, nominal_p, cal["id"])
             rows.extend(per_channel.values())
+            rows.extend(point_water(p, water, config, v0, per_channel, cal["id"], aerosol_at))
             if pair is not None:
                 alpha = point_alpha(p.measurement_id, per_channel, pair, cal["id"])
                 if alpha is not None:

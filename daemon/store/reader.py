@@ -585,18 +585,20 @@ def fit_points(conn: sqlite3.Connection, plan_date: str | _dt.date, session: str
 AOD_KEYS = ("time_utc", "plan_date", "session", "measurement_id", "channel", "wavelength_nm",
             "aod", "aod_unc", "tau_total", "tau_rayleigh", "tau_ozone", "airmass",
             "ozone_airmass", "pressure_hpa", "flag", "calibration_id", "angstrom_alpha",
-            "angstrom_channels")
+            "angstrom_channels", "precipitable_water_cm")
 
 _AOD_SQL = """
 SELECT m.time_utc, m.plan_date, m.session, a.measurement_id, a.channel, a.wavelength_nm,
        a.aod, a.aod_unc, a.tau_total, a.tau_rayleigh, a.tau_ozone, a.airmass,
        a.ozone_airmass, a.pressure_hpa, a.flag, a.calibration_id, g.angstrom_alpha,
-       g.channel_short, g.channel_long
+       g.channel_short, g.channel_long, a.precipitable_water_cm
 FROM measurements m CROSS JOIN aod a ON a.measurement_id = m.id
 LEFT JOIN aod_angstrom g ON g.measurement_id = a.measurement_id
 WHERE m.plan_date BETWEEN ? AND ?
 ORDER BY m.plan_date, m.time_utc, m.id, a.wavelength_nm, a.channel
 """
+# A store from before m006 has no precipitable-water column: None there.
+_AOD_SQL_BEFORE_M006 = _AOD_SQL.replace("a.precipitable_water_cm", "NULL")
 
 
 def _has_table(conn: sqlite3.Connection, name: str) -> bool:
@@ -654,13 +656,19 @@ def aod_between(conn: sqlite3.Connection, first: str | _dt.date,
         measurement; None when either AOD is missing, flagged or not positive.
     angstrom_channels : list of str or None
         The two channel names (shorter wavelength first) behind ``angstrom_alpha``.
+    precipitable_water_cm : float or None
+        On a calibrated water-vapour channel's row (whose ``aod`` is None): the
+        precipitable water [cm] from the modified Langley's constants and the
+        calibrated V0; None on every other row.
     """
     d1, d2 = check_plan_date(first), check_plan_date(last)
     if d2 < d1:
         raise ValueError(f"the end date {d2} is before the start date {d1}; swap them")
     if not (_has_table(conn, "aod") and _has_table(conn, "aod_angstrom")):
         return
-    cur = conn.execute(_AOD_SQL, (d1, d2))
+    sql = _AOD_SQL if _has_column(conn, "aod", "precipitable_water_cm") else \
+        _AOD_SQL_BEFORE_M006
+    cur = conn.execute(sql, (d1, d2))
     while True:
         batch = cur.fetchmany(500)
         if not batch:
@@ -668,7 +676,35 @@ def aod_between(conn: sqlite3.Connection, first: str | _dt.date,
         for r in batch:
             r = tuple(r)
             pair = [r[17], r[18]] if r[17] is not None and r[18] is not None else None
-            yield dict(zip(AOD_KEYS, r[:17] + (pair,), strict=True))
+            yield dict(zip(AOD_KEYS, r[:17] + (pair, r[19]), strict=True))
+
+
+def _has_column(conn: sqlite3.Connection, table: str, column: str) -> bool:
+    return any(r[1] == column for r in conn.execute(f"PRAGMA table_info({table})"))
+
+
+#: A water-vapour channel's stored fit constants (m006), see water_vapour_result.
+WATER_VAPOUR_KEYS = ("wv_a", "wv_b", "wv_u_a", "wv_u_b", "wv_v0_rel_unc_b",
+                     "precipitable_water_cm")
+
+
+def water_vapour_result(conn: sqlite3.Connection, plan_date: str | _dt.date, session: str,
+                        channel: str) -> dict[str, Any] | None:
+    """A water-vapour channel's modified-Langley constants stored with its session result.
+
+    Keys: ``wv_a``, ``wv_b`` (``T = exp(-a (m W)^b)``, W in cm), their standard
+    uncertainties ``wv_u_a``, ``wv_u_b``, ``wv_v0_rel_unc_b`` (b's share of the relative
+    V0 uncertainty) and the session's ``precipitable_water_cm``; None for a channel
+    without them (a window channel, a channel not fitted, a store before m006).
+    """
+    if not _has_column(conn, "session_results", "wv_b"):
+        return None
+    row = conn.execute(f"SELECT {', '.join(WATER_VAPOUR_KEYS)} FROM session_results WHERE "
+                       f"plan_date = ? AND session = ? AND channel = ?",
+                       (check_plan_date(plan_date), session, channel)).fetchone()
+    if row is None or row[1] is None:
+        return None
+    return dict(zip(WATER_VAPOUR_KEYS, tuple(row), strict=True))
 
 
 def _calibration_row(conn: sqlite3.Connection, cal: Mapping[str, Any]) -> dict[str, Any]:

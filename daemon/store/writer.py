@@ -57,6 +57,10 @@ _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 migrations = Migrations("heliotrope")
 
+#: session_results columns of a water-vapour channel (m006), the same keys in a fit row.
+WATER_VAPOUR_RESULT_COLUMNS = ("wv_a", "wv_b", "wv_u_a", "wv_u_b", "wv_v0_rel_unc_b",
+                               "precipitable_water_cm")
+
 
 @migrations()
 def m001_initial(db: Database) -> None:
@@ -189,6 +193,18 @@ def m005_configurations(db: Database) -> None:
         # A plain ALTER keeps the table (no rebuild): old rows point nowhere (NULL).
         db.execute(f"ALTER TABLE {table} ADD COLUMN configuration_id INTEGER "
                    "REFERENCES configurations(id)")
+
+
+@migrations()
+def m006_water_vapour(db: Database) -> None:
+    # A water-vapour channel's modified-Langley constants (T = exp(-a (m W)^b), derived
+    # from its filter), their standard uncertainties, b's share of V0's relative
+    # uncertainty and the session's column [cm], with its result. Per measurement,
+    # the precipitable water [cm] from a calibrated water-vapour channel, in the aod
+    # table (its aod is NULL on that row). NULL for window channels and older rows.
+    for column in WATER_VAPOUR_RESULT_COLUMNS:
+        db["session_results"].add_column(column, float)
+    db["aod"].add_column("precipitable_water_cm", float)
 
 
 # Every migration is pending on an empty database: that lists the names this version knows.
@@ -531,6 +547,7 @@ class Store:
                 "residual_sd": _num(r.get("residual_sd")),
                 "fitted_utc": fitted if isinstance(fitted, str) else utc_iso(fitted),
                 "configuration_id": self.configuration_id,
+                **{k: _num(r.get(k)) for k in WATER_VAPOUR_RESULT_COLUMNS},
             })
             points += _fit_point_rows(date, session, str(r["channel"]), r.get("fit_points", ()))
         with self._lock, self.db.atomic():
@@ -540,22 +557,43 @@ class Store:
                 [(date, session, rec["channel"]) for rec in records])
             self.db["fit_points"].insert_all(points)
 
+    def _stored_result(self, columns: str, date: str, session: str,
+                       channel: str) -> tuple[Any, ...]:
+        row = self.db.conn.execute(
+            f"SELECT {columns} FROM session_results WHERE plan_date = ? AND session = ? "
+            "AND channel = ?", (date, session, channel)).fetchone()
+        if row is None:
+            raise ValueError(f"no stored result for {date} {session} channel {channel!r}")
+        return tuple(row)
+
     def refuse_session_result(self, plan_date: str | _dt.date, session: str, channel: str,
                               reason: str) -> None:
         """Mark one stored session result as not accepted, with ``reason`` first among
         its reasons (a later check, such as the same day's other session, refused it)."""
         date = check_plan_date(plan_date)
         with self._lock, self.db.atomic():
-            row = self.db.conn.execute(
-                "SELECT reasons, notes FROM session_results WHERE plan_date = ? AND "
-                "session = ? AND channel = ?", (date, session, channel)).fetchone()
-            if row is None:
-                raise ValueError(f"no stored result for {date} {session} channel {channel!r}")
+            row = self._stored_result("reasons, notes", date, session, channel)
             reasons = [reason] + [r for r in json.loads(row[0] or "[]") if r != reason]
             reasons += [n for n in json.loads(row[1] or "[]") if n not in reasons]
             self.db.conn.execute(
                 "UPDATE session_results SET accepted = 0, reasons = ? WHERE plan_date = ? "
                 "AND session = ? AND channel = ?", (_dumps(reasons), date, session, channel))
+
+    def widen_session_result(self, plan_date: str | _dt.date, session: str, channel: str,
+                             v0_rel_unc: float, note: str) -> None:
+        """Raise one stored result's V0 uncertainty to ``v0_rel_unc`` (never lower it) and
+        add ``note`` to its notes (a later check, the same day's other session, found
+        more scatter than it stated alone)."""
+        date = check_plan_date(plan_date)
+        with self._lock, self.db.atomic():
+            row = self._stored_result("v0_rel_unc, notes", date, session, channel)
+            if row[0] is not None and row[0] >= v0_rel_unc:
+                return
+            notes = [*json.loads(row[1] or "[]"), note]
+            self.db.conn.execute(
+                "UPDATE session_results SET v0_rel_unc = ?, notes = ? WHERE plan_date = ? "
+                "AND session = ? AND channel = ?",
+                (_num(v0_rel_unc), _dumps(notes), date, session, channel))
 
     def save_calibration(self, created_utc: _dt.datetime, first_date: str, last_date: str,
                          site_name: str, settings: Mapping[str, Any], notes: Sequence[str],

@@ -1,0 +1,162 @@
+"""The daemon's Langley fit on the simulator's independent sky.
+
+The sky (:mod:`sim_instrument.spectral_sky`, scenario ``pico-sereno-independent``)
+shares no formula with the fitter: filters integrated over ASTM G173, Rayleigh with
+the site's gravity, SPECTRL2 ozone and water vapour, aerosol and water vapour on
+layer air masses. Each case is an ensemble of half-days (25 days x am/pm = 50
+sessions by default), fitted by the daemon's pure fit
+(:func:`daemon.science.sessionfit.fit_series`, via tests/independent_sky.py) and,
+beside it, by a plain ``numpy.polyfit`` line through the same corrected points (for
+940 nm: against m^0.6, the fixed exponent used before filters).
+
+Cases: stable; slowly varying (a 6 h sinusoid of 30 % in the aerosol); noon-peaked
+haze (+0.03 at 500 nm, 2 h wide); cirrus (a 25 min and a 20 min band, optical depth
+0.05 and 0.08, patchy); a pressure ramp (-1 hPa/h); a western site (150 W) whose
+afternoon crosses 00 h UTC; 940 nm at 0.2, 0.5, 1.0 and 2.0 cm.
+
+Per case and channel it prints: sessions, accepted share, our V0-at-1-AU error (mean
+and rms, all sessions; percent), the median stated uncertainty, the rms of
+error/uncertainty over all sessions and over the accepted ones, and polyfit's rms
+error.
+
+    .venv/bin/python benchmarks/bench_independent_sky.py [--days 25] [--noise 0.001]
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+import time
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from daemon.science.sessionfit import (  # noqa: E402
+    aerosol_at,
+    extinction_corrections,
+    fit_series,
+)
+from sim_instrument.scenario import Cloud, load_scenario  # noqa: E402
+from sim_instrument.sessions import session_series  # noqa: E402
+from tests.independent_sky import (  # noqa: E402
+    channel_series,
+    config_for,
+    days,
+    v0_error,
+)
+
+WINDOW = ("380", "440", "500", "675", "870", "1020")
+
+
+def cases(base):
+    atm, site, weather = base.atmosphere, base.site, base.weather
+    yield "stable", base, WINDOW + ("940",)
+    yield "sinusoid", replace(base, atmosphere=replace(atm, aerosol_wave=0.3,
+                                                       aerosol_wave_period_h=6.0)), WINDOW
+    yield "noon haze", replace(base, atmosphere=replace(atm, aerosol_noon_peak=0.03,
+                                                        aerosol_noon_peak_width_h=2.0)), WINDOW
+    yield "cirrus", replace(base, atmosphere=replace(atm, clouds=(
+        Cloud(from_solar_h=7.9, until_solar_h=8.3, optical_depth=0.05, patchiness=0.4,
+              cell_s=900.0),
+        Cloud(from_solar_h=16.1, until_solar_h=16.4, optical_depth=0.08, patchiness=0.4,
+              cell_s=600.0)))), WINDOW
+    yield "pressure ramp", replace(base, weather=replace(weather,
+                                                         pressure_trend_hpa_per_h=-1.0)), WINDOW
+    yield "west 150W", replace(base, site=replace(site, longitude_deg=-150.0)), WINDOW
+    for w in (0.2, 0.5, 1.0, 2.0):
+        yield f"940 {w:.1f} cm", replace(base, atmosphere=replace(
+            atm, precipitable_water_cm=w)), ("940",)
+
+
+def polyfit_v0(by_channel, name, config, rows) -> float:
+    """V0 at 1 AU from numpy.polyfit through the same corrected points in the window."""
+    s = by_channel[name]
+    ch = config.channel(name)
+    ext = extinction_corrections(s, ch, config)
+    lo, hi = config.fit.airmass_min, config.fit.airmass_max
+    inside = (s.airmass >= lo) & (s.airmass <= hi) & (s.signal_v > 0)
+    y = np.log(s.signal_v) + ext.ln_correction
+    x = s.airmass
+    if ch.water_vapour:
+        aerosol = {config.channel(n).wavelength_nm: r["tau_aerosol"] for n, r in rows.items()
+                   if n != name and r["accepted"] and r["tau_aerosol"] is not None
+                   and math.isfinite(r["tau_aerosol"])}
+        tau_a = aerosol_at(ch.wavelength_nm, aerosol)
+        if tau_a is None:
+            return math.nan
+        tau_o3 = 0.0 if math.isnan(ext.tau_ozone) else ext.tau_ozone
+        y = np.log(s.signal_v) + ext.tau_rayleigh * s.airmass * s.pressure_hpa / \
+            ext.reference_pressure_hpa + tau_o3 * s.ozone_airmass + tau_a[0] * s.airmass
+        x = s.airmass ** 0.6
+    if inside.sum() < 3:
+        return math.nan
+    return math.exp(np.polyfit(x[inside], y[inside], 1)[1]) / float(
+        s.earth_sun_factor[inside].mean())
+
+
+def run(n_days: int, noise: float) -> None:
+    base = load_scenario("pico-sereno-independent")
+    print(f"Independent sky, {n_days} days x am/pm per case, burst-mean noise "
+          f"{100 * noise:.2f} %; V0 at 1 AU errors in percent")
+    print(f"{'case':14} {'ch':>5} {'n':>3} {'acc':>5} {'mean':>7} {'rms':>6} {'u_med':>6} "
+          f"{'z_all':>6} {'z_acc':>6} {'polyfit':>8}")
+    t0 = time.perf_counter()
+    n_fits = 0
+    for label, scen, names in cases(base):
+        config = config_for(scen)
+        res = {n: {"err": [], "u": [], "acc": [], "poly": []} for n in names}
+        for d in days(n_days):
+            for session in ("am", "pm"):
+                series = session_series(scen, d, session, seed=11,
+                                        burst_noise_relative=noise)
+                by_channel = channel_series(series, config)
+                rows = {r["channel"]: r for r in fit_series(
+                    by_channel, config, series.local_date.isoformat(), session)}
+                n_fits += 1
+                for n in names:
+                    row = rows[n]
+                    r = res[n]
+                    v0 = row["v0_1au"]
+                    r["err"].append(v0_error(row, series) if v0 is not None and
+                                    math.isfinite(v0) else math.nan)
+                    r["u"].append(row["v0_rel_unc"] if row["v0_rel_unc"] is not None
+                                  else math.nan)
+                    r["acc"].append(bool(row["accepted"]))
+                    pv = polyfit_v0(by_channel, n, config, rows)
+                    r["poly"].append(pv / series.truth[n].v0_1au_v - 1.0)
+        for n in names:
+            r = {k: np.asarray(v, dtype=float) for k, v in res[n].items()}
+            ok = np.isfinite(r["err"]) & np.isfinite(r["u"]) & (r["u"] > 0)
+            z = r["err"][ok] / r["u"][ok]
+            acc = r["acc"].astype(bool)
+            z_acc = r["err"][ok & acc] / r["u"][ok & acc]
+            poly = r["poly"][np.isfinite(r["poly"])]
+
+            def rms(a):
+                return float(np.sqrt(np.mean(np.square(a)))) if a.size else math.nan
+
+            print(f"{label:14} {n:>5} {len(acc):3d} {100 * acc.mean():4.0f}% "
+                  f"{100 * np.nanmean(r['err']):+7.3f} {100 * rms(r['err'][ok]):6.3f} "
+                  f"{100 * np.nanmedian(r['u']):6.3f} {rms(z):6.2f} {rms(z_acc):6.2f} "
+                  f"{100 * rms(poly):8.3f}")
+    dt = time.perf_counter() - t0
+    print(f"{n_fits} simulated and fitted sessions in {dt:.1f} s "
+          f"({1000 * dt / max(n_fits, 1):.0f} ms each, simulation included)")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--days", type=int, default=25, help="days per case (x2 sessions)")
+    ap.add_argument("--noise", type=float, default=0.001,
+                    help="relative noise of a burst mean (0.0005-0.002)")
+    args = ap.parse_args()
+    run(args.days, args.noise)
+
+
+if __name__ == "__main__":
+    main()
