@@ -1,11 +1,12 @@
 """Child process for the kill and power-loss tests: acquires simulated days into a store,
 printing one line for every write as soon as its transaction has committed, until killed.
 
-    python -m tests.kill_child STORE FIRST_DAY [RADIOMETER_URL TRACKER_URL]
+    python -m tests.kill_child STORE FIRST_DAY [RADIOMETER_URL TRACKER_URL [CONFIG]]
 
 Without URLs the devices are the in-process fakes (fast: many writes between kills);
-with them the reference drivers talk to a running ``heliotrope-sim`` over its
-pseudo-terminals, the real serial path. The lines::
+with them the configured drivers (the reference ones of ``config/pico-sereno.yaml``,
+or those of CONFIG, e.g. the Modbus station) talk to a running ``heliotrope-sim`` over
+its pseudo-terminals, the real serial path. The lines::
 
     ready
     measurement ID
@@ -145,7 +146,7 @@ def audit(db: str | Path, committed: Committed, samples_per_ok: int) -> dict[str
 def main() -> None:
     store_path, first = sys.argv[1], date.fromisoformat(sys.argv[2])
     urls = sys.argv[3:5]
-    cfg = load_config(CONFIG)
+    cfg = load_config(sys.argv[5] if len(sys.argv) > 5 else CONFIG)
     if urls:
         cfg = dataclasses.replace(
             cfg, radiometer=dataclasses.replace(cfg.radiometer, url=urls[0]),

@@ -36,7 +36,8 @@ SAMPLES_PER_OK = 6 * (10 + 5)  # six channels, burst of 10 and dark of 5 (pico-s
 
 
 def kill_rounds(db: Path, rounds: int, reports: tuple[int, int], seed: int,
-                urls: list[str] = (), log: Path | None = None) -> Committed:
+                urls: list[str] = (), log: Path | None = None,
+                config: Path | None = None) -> Committed:
     """Start the child, let it report a random number of commits, SIGKILL it after a
     random few milliseconds more (so the kill falls anywhere in the writes that
     follow, whatever the machine's speed), audit; repeat."""
@@ -46,7 +47,8 @@ def kill_rounds(db: Path, rounds: int, reports: tuple[int, int], seed: int,
     for k in range(rounds):
         child = subprocess.Popen(
             [sys.executable, "-m", "tests.kill_child", str(db),
-             (date(2027, 1, 1) + timedelta(days=k)).isoformat(), *urls],
+             (date(2027, 1, 1) + timedelta(days=k)).isoformat(), *urls,
+             *([str(config)] if config else [])],
             cwd=ROOT, stdout=subprocess.PIPE, text=True,
             stderr=log.open("a") if log else subprocess.DEVNULL)
         assert child.stdout.readline().strip() == "ready"
@@ -77,5 +79,20 @@ def test_kills_through_the_real_serial_path_lose_nothing_committed(tmp_path):
                                 seed=20271216, urls=[ends.radiometer, ends.tracker],
                                 log=tmp_path / "child.log")
     # Measurements came over the line, so the kills fell among real exchanges.
+    assert len(committed.measurements) >= SERIAL_KILLS, (tmp_path / "child.log").read_text()
+    assert committed.plans
+
+
+@pytest.mark.slow
+def test_kills_on_a_modbus_station_lose_nothing_committed(tmp_path):
+    """The same through the Modbus RTU drivers and the Modbus simulator on pseudo-
+    terminals: a kill also lands between a request frame and its reply."""
+    modbus = ROOT / "config" / "pico-sereno-modbus.yaml"
+    load_config(modbus)
+    sim_args = ("--family", "modbus-rtu", "--register-map", str(modbus))
+    with simulator("pico-sereno-clear", seed=12, port="pty", sim_args=sim_args) as ends:
+        committed = kill_rounds(tmp_path / "kill.db", SERIAL_KILLS, (1, 120),
+                                seed=20271217, urls=[ends.radiometer, ends.tracker],
+                                log=tmp_path / "child.log", config=modbus)
     assert len(committed.measurements) >= SERIAL_KILLS, (tmp_path / "child.log").read_text()
     assert committed.plans
