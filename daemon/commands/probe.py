@@ -499,6 +499,7 @@ def probe_family(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
         return _call(device, port, _Counted(dev), command, fn, describe, checks,
                      explain=explain_family)
 
+    burst = state = None
     try:
         identity = call(RADIOMETER, radiometer, rad, "identify", rad.identify,
                         _describe_identity(rad.channel_count))
@@ -528,6 +529,7 @@ def probe_family(radiometer: Port, tracker: Port, *, burst_samples: int = 5,
             if state is not None and state.mode == "fault":
                 notes.append("tracker reports FAULT: a person should look at the mount "
                              "before the service runs")
+        notes += sun_hints(burst, state)
     finally:
         rad.close()
         trk.close()
