@@ -29,7 +29,12 @@ STORM_FAULTS = "drop=0.02,corrupt=0.03,truncate=0.005,exception=0.015"
 def _day(tmp_path_factory, scenario: str, seed: int, sim_args=()):
     """One simulated day through the Modbus RTU simulator, and the events it stored."""
     tmp = tmp_path_factory.mktemp("modbus-day")
-    run = run_simulated_day(load_config(CONFIG), DAY, tmp / "day.db", scenario, seed=seed,
+    # pico-sereno-clear runs the simulator's reference sky (the fitter's own
+    # monochromatic model): this test checks the driver path, so the corrections for a
+    # real sky's band and layers stay off (as in tests/test_sim_days.py).
+    cfg = load_config(CONFIG)
+    cfg = dataclasses.replace(cfg, fit=dataclasses.replace(cfg.fit, correct_model_terms=False))
+    run = run_simulated_day(cfg, DAY, tmp / "day.db", scenario, seed=seed,
                             port="pty", work_dir=tmp, sim_args=sim_args)
     with sqlite3.connect(run.store_path) as conn:
         events = conn.execute("select kind, message, detail from events").fetchall()

@@ -10,6 +10,7 @@ simulator's line faults and scheduled events on the same links.
 
 from __future__ import annotations
 
+import dataclasses
 import sqlite3
 from datetime import date
 from pathlib import Path
@@ -28,7 +29,12 @@ WINDOW_CHANNELS = ("380", "440", "500", "675", "870", "1020")
 @pytest.fixture(scope="module")
 def scpi_day(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("scpi-day")
-    return run_simulated_day(load_config(CONFIG), DAY, tmp / "day.db", "pico-sereno-clear",
+    # pico-sereno-clear runs the simulator's reference sky (the fitter's own
+    # monochromatic model): this test checks the driver path, so the corrections for a
+    # real sky's band and layers stay off (as in tests/test_sim_days.py).
+    cfg = load_config(CONFIG)
+    cfg = dataclasses.replace(cfg, fit=dataclasses.replace(cfg.fit, correct_model_terms=False))
+    return run_simulated_day(cfg, DAY, tmp / "day.db", "pico-sereno-clear",
                              seed=7, port="pty", work_dir=tmp)
 
 

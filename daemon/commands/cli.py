@@ -504,7 +504,7 @@ def build_parser() -> argparse.ArgumentParser:
     c = sub.add_parser("demo", help="a simulated clear day on the bench, ending in the table")
     c.add_argument("--config", help="site configuration (default: the source tree's "
                    "config/pico-sereno.yaml)")
-    c.add_argument("--scenario", default="pico-sereno-clear")
+    c.add_argument("--scenario", default="pico-sereno-stable")
     c.add_argument("--date", type=_parse_date, dest="date_given", metavar="DATE",
                    help=f"first simulated local date (default: {DEMO_DATE}; with --append, "
                    "the day after the store's newest)")

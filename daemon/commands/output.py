@@ -24,9 +24,19 @@ def publish(tmp: str | Path, out: Path) -> None:
 
 
 def check_out_path(out: Path, db: Path) -> None:
-    """Refuse an output path that is a directory, has no directory, or is the store."""
+    """Refuse an output path that is a directory, a device, pipe or socket, has no
+    directory, or is the store.
+
+    An output is moved onto its path whole (:func:`publish`), which would replace a
+    device node such as /dev/null with a plain file, so only a regular file (or a new
+    name) is accepted."""
     if out.is_dir():
         raise OutputPathError(f"--out {out}: is a directory; name a file")
+    if out.exists() and not out.is_file():
+        raise OutputPathError(f"--out {out}: is not a regular file (a device, pipe or "
+                              "socket), and the finished output is moved onto its path, "
+                              "which would replace it; name a regular file, or leave out "
+                              "--out where the command can print to standard output")
     if not out.parent.is_dir():
         raise OutputPathError(f"--out {out}: the directory {out.parent} does not exist; "
                               "create it first")
