@@ -10,6 +10,7 @@ idle CPU 1 % of a core). Runs against the simulator over loopback TCP.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import socket
@@ -59,44 +60,55 @@ def memory_over_month(days: int) -> tuple[float, float]:
     return after_one, after_all
 
 
+@contextlib.contextmanager
+def running_service(tmp: Path, ends, store_path: Path):
+    """heliotroped as a child process on the simulator's ``ends`` and the store at
+    ``store_path``; yields (process, seconds from spawn to its READY=1). Stops it with
+    SIGTERM on leaving; the stop's duration is then in ``process.stop_s``."""
+    data = yaml.safe_load(CONFIG.read_text())
+    data["instrument"]["radiometer"]["port"] = ends.radiometer
+    data["instrument"]["tracker"]["port"] = ends.tracker
+    data["store"]["path"] = str(store_path)
+    data = quiet_site(data, datetime.now(UTC))
+    cfg_path = tmp / "service.yaml"
+    cfg_path.write_text(yaml.safe_dump(data))
+    sock_path = tmp / "notify"
+    sock_path.unlink(missing_ok=True)
+    sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
+    sock.bind(str(sock_path))
+    sock.settimeout(120)
+    t0 = time.monotonic()
+    proc = subprocess.Popen([sys.executable, "-m", "daemon.station.service", "--config",
+                             str(cfg_path), "--log-level", "ERROR"],
+                            env=dict(os.environ, NOTIFY_SOCKET=str(sock_path)))
+    try:
+        while b"READY=1" not in sock.recv(4096):
+            pass
+        yield proc, time.monotonic() - t0
+    finally:
+        s0 = time.monotonic()
+        proc.terminate()
+        proc.wait(timeout=30)
+        proc.stop_s = time.monotonic() - s0
+        sock.close()
+
+
 def idle_cpu(idle_s: float) -> tuple[float, float]:
     """Percent of one core used by heliotroped over ``idle_s`` seconds with no target,
     and the seconds from SIGTERM to its exit."""
-    with tempfile.TemporaryDirectory() as tmp, simulator("pico-sereno-clear", 1,
-                                                         "tcp:0") as ends:
-        data = yaml.safe_load(CONFIG.read_text())
-        data["instrument"]["radiometer"]["port"] = ends.radiometer
-        data["instrument"]["tracker"]["port"] = ends.tracker
-        data["store"]["path"] = str(Path(tmp) / "idle.db")
-        data = quiet_site(data, datetime.now(UTC))
-        cfg_path = Path(tmp) / "idle.yaml"
-        cfg_path.write_text(yaml.safe_dump(data))
-        sock_path = Path(tmp) / "notify"
-        sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
-        sock.bind(str(sock_path))
-        sock.settimeout(60)
-        proc = subprocess.Popen([sys.executable, "-m", "daemon.station.service", "--config",
-                                 str(cfg_path), "--log-level", "ERROR"],
-                                env=dict(os.environ, NOTIFY_SOCKET=str(sock_path)))
-        try:
-            while b"READY=1" not in sock.recv(4096):
-                pass
-            time.sleep(2)  # let start-up work (first tick, plan) finish
+    with (tempfile.TemporaryDirectory() as tmp,
+          simulator("pico-sereno-clear", 1, "tcp:0") as ends,
+          running_service(Path(tmp), ends, Path(tmp) / "idle.db") as (proc, _ready_s)):
+        time.sleep(2)  # let start-up work (first tick, plan, store check) finish
 
-            def cpu_s() -> float:
-                fields = Path(f"/proc/{proc.pid}/stat").read_text().rsplit(")", 1)[1].split()
-                return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+        def cpu_s() -> float:
+            fields = Path(f"/proc/{proc.pid}/stat").read_text().rsplit(")", 1)[1].split()
+            return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
-            c0, t0 = cpu_s(), time.monotonic()
-            time.sleep(idle_s)
-            c1, t1 = cpu_s(), time.monotonic()
-        finally:
-            s0 = time.monotonic()
-            proc.terminate()
-            proc.wait(timeout=30)
-            stop_s = time.monotonic() - s0
-            sock.close()
-    return 100.0 * (c1 - c0) / (t1 - t0), stop_s
+        c0, t0 = cpu_s(), time.monotonic()
+        time.sleep(idle_s)
+        c1, t1 = cpu_s(), time.monotonic()
+    return 100.0 * (c1 - c0) / (t1 - t0), proc.stop_s
 
 
 class _Timed:

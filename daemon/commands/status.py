@@ -321,6 +321,11 @@ def _collect(conn, now: _dt.datetime, out: dict, problems: list,
         problems.append((worst, f"{len(faults)} fault event{'s' if len(faults) != 1 else ''} "
                                 f"in 24 h (newest: {newest['kind']}: {newest['message']})"))
     out["tracker"] = _tracker(last, _planned_park(plans, now), faults)
+    check = storeread.latest_event(conn, "store_check")  # the service's integrity check
+    out["store"]["check"] = None if check is None else {
+        "time_utc": check["time_utc"], "ok": check["level"] == "info", "message": check["message"]}
+    if check is not None and check["level"] != "info":
+        problems.append((CRITICAL, check["message"]))
 
 
 def _finish(out: dict, problems: list[tuple[int, str]]) -> dict[str, Any]:
@@ -399,6 +404,9 @@ def format_status(st: dict[str, Any], now: _dt.datetime) -> str:
         rows.append(["disk free", f"{_mib(disk['free_bytes'])} "
                                   f"({fmt(disk['free_pct'], '.1f')} %)"])
     rows.append(["store", f"{st['store']['path']}, {_mib(st['store']['size_bytes'])}"])
+    if st["store"].get("check"):
+        rows.append(["store check", f"{utc_local(st['store']['check']['time_utc'], tz)}, "
+                                    f"{st['store']['check']['message']}"])
     rows.append(["version", f"heliotrope {st['version']}"])
     for p in st["problems"][1:]:
         rows.append(["also", p])
