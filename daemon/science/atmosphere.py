@@ -10,8 +10,12 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from daemon.config.settings import Site
 
 #: Standard sea-level pressure [hPa]; Bodhaine et al. (1999) tabulate at this pressure.
 STANDARD_PRESSURE_HPA = 1013.25
@@ -20,6 +24,34 @@ STANDARD_PRESSURE_HPA = 1013.25
 EARTH_RADIUS_KM = 6371.229
 
 ArrayLike = float | Sequence[float] | np.ndarray
+
+
+def site_pressure_hpa(site: Site) -> float:
+    """Nominal station pressure of a site [hPa].
+
+    Parameters
+    ----------
+    site : daemon.config.settings.Site
+        ``site.pressure_hpa`` is used when set; otherwise the pressure follows from
+        ``site.elevation_m`` through the standard atmosphere.
+
+    Returns
+    -------
+    float
+        Station pressure [hPa].
+
+    Notes
+    -----
+    The elevation formula is that of ``pvlib.atmosphere.alt2pres`` (a fit to the 1976
+    U.S. Standard Atmosphere: Portland State Aerospace Society, "A Quick Derivation
+    relating altitude to air pressure", version 1.03, 2004), written out here so that
+    the fits and ``calibrate`` need not import pvlib and pandas (about 110 MB); the
+    tests hold it to pvlib's. Weather moves the real pressure by a few hPa; the measured
+    housekeeping pressure should be preferred when there is one.
+    """
+    if site.pressure_hpa is not None:
+        return float(site.pressure_hpa)
+    return ((44331.514 - float(site.elevation_m)) / 11880.516) ** (1 / 0.1902632)
 
 
 def positive(name: str, value: float, unit: str) -> float:

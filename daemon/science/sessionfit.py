@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 
 from daemon.config.settings import Channel, Config, FitSettings
-from daemon.science import solar
+from daemon.science import atmosphere
 from daemon.science.lamp import lamp_check, lamp_note
 from daemon.science.langley import FitResult, fit_coordinates, fit_session, v0_at_1au
 from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
@@ -141,14 +141,14 @@ def extinction_corrections(series: ChannelSeries, channel: Channel,
     failures: list[str] = []
     p = series.pressure_hpa
     finite_p = p[np.isfinite(p)]
-    nominal = solar.site_pressure_hpa(config.site)
+    nominal = atmosphere.site_pressure_hpa(config.site)
     p_ref = float(finite_p.mean()) if finite_p.size else nominal
     if finite_p.size < p.size and p.size:
         notes.append(f"{p.size - finite_p.size} of {p.size} points without a pressure: "
                      f"taken as {p_ref:.1f} hPa")
     p_filled = np.where(np.isfinite(p), p, p_ref)
     change = float(np.ptp(p_filled)) if p_filled.size else 0.0
-    tau_r_ref = float(solar.rayleigh_optical_depth(channel.wavelength_nm, p_ref))
+    tau_r_ref = float(atmosphere.rayleigh_optical_depth(channel.wavelength_nm, p_ref))
     normalised = change > 0.0 and fit.normalise_pressure
     if normalised:
         if change > fit.max_pressure_change_hpa:

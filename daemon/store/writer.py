@@ -563,9 +563,24 @@ class Store:
                 marks = ",".join("?" * len(chunk))
                 self.db.execute(f"DELETE FROM aod_angstrom WHERE measurement_id IN ({marks})",
                                 chunk)
-            self.db["aod"].insert_all(aod_rows, replace=True)
-            self.db["aod_angstrom"].insert_all(alpha_rows, replace=True)
+            self._replace_rows("aod", aod_rows)
+            self._replace_rows("aod_angstrom", alpha_rows)
         return len(aod_rows)
+
+    def _replace_rows(self, table: str, rows: Sequence[Mapping[str, Any]]) -> None:
+        """INSERT OR REPLACE cleaned ``rows`` by one prepared statement over the table's
+        columns (a column a row lacks is NULL). A campaign stores tens of thousands of
+        rows: sqlite-utils' insert_all re-inspects each value and costs most of the
+        time here; its table metadata still names the columns."""
+        if not rows:
+            return
+        cols = list(self.db[table].columns_dict)
+        unknown = {k for r in rows for k in r} - set(cols)
+        if unknown:
+            raise ValueError(f"{table}: no column {', '.join(sorted(unknown))}")
+        sql = (f"INSERT OR REPLACE INTO [{table}] ({', '.join(f'[{c}]' for c in cols)}) "
+               f"VALUES ({', '.join('?' * len(cols))})")
+        self.db.conn.executemany(sql, ([r.get(c) for c in cols] for r in rows))
 
     def heartbeat(self, now: _dt.datetime) -> None:
         """Record that the service is alive at ``now`` (aware UTC)."""
