@@ -24,6 +24,7 @@ time and peak resident memory.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import datetime as dt
 import os
 import re
@@ -206,21 +207,18 @@ def _wall_and_peak(cmd: list[str], env: dict) -> tuple[float, float]:
     t0 = time.perf_counter()
     proc = subprocess.Popen(cmd, env=env, cwd=ROOT, stdout=subprocess.DEVNULL,
                             stderr=subprocess.PIPE)
-    status = Path(f"/proc/{proc.pid}/status")
-    peak_kib = 0
+    from benchmarks.bench_service import proc_mb
+
+    peak = 0.0
     while proc.poll() is None:
-        try:
-            for line in status.read_text().splitlines():
-                if line.startswith("VmHWM:"):
-                    peak_kib = max(peak_kib, int(line.split()[1]))
-        except (OSError, ValueError):  # exiting between poll and read
-            pass
+        with contextlib.suppress(OSError, ValueError):  # exiting between poll and read
+            peak = max(peak, proc_mb(proc.pid, "VmHWM"))
         time.sleep(0.02)
     wall = time.perf_counter() - t0
     if proc.returncode != 0:
         raise SystemExit(f"{' '.join(cmd)} failed ({proc.returncode}): "
                          f"{proc.stderr.read().decode()}")
-    return wall, peak_kib / 1024
+    return wall, peak
 
 
 def drop_cached_pages(db: Path) -> None:
