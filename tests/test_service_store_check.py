@@ -19,6 +19,7 @@ from daemon.config.settings import load_config
 from daemon.station import service as service_mod
 from daemon.station.clock import SimClock
 from daemon.station.service import Service
+from daemon.store.reader import latest_event
 from daemon.store.writer import Store, StoreError, integrity_problems
 from tests.fakes import FakeRadiometer, FakeTracker
 from tests.test_service import CONFIG
@@ -187,3 +188,21 @@ def test_a_schema_upgrade_asks_systemd_for_more_time(tmp_path, monkeypatch):
     conn.close()
     Store.open(db, full_check=False, on_migrate=seen.append).close()
     assert seen == [[sorted(writer.KNOWN_MIGRATIONS)[-1]]]
+
+
+def test_status_reaches_the_check_event_through_the_time_index(tmp_path):
+    # EXPLAIN QUERY PLAN says SEARCH ... USING INDEX for an index search and SCAN for a
+    # full pass (sqlite.org/eqp.html): the lookup must not grow with the store's age.
+    db = tmp_path / "s.db"
+    Store.open(db).close()
+    conn = sqlite3.connect(db)
+    try:
+        sent: list[str] = []
+        conn.set_trace_callback(sent.append)  # the statement latest_event runs, bound
+        latest_event(conn, "store_check", "2027-01-01T00:00:00+00:00")
+        conn.set_trace_callback(None)
+        [sql] = [q for q in sent if "FROM events" in q]
+        plan = " ".join(r[3] for r in conn.execute("EXPLAIN QUERY PLAN " + sql))
+    finally:
+        conn.close()
+    assert "USING INDEX" in plan and "SCAN events" not in plan, plan

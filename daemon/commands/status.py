@@ -321,7 +321,9 @@ def _collect(conn, now: _dt.datetime, out: dict, problems: list,
         problems.append((worst, f"{len(faults)} fault event{'s' if len(faults) != 1 else ''} "
                                 f"in 24 h (newest: {newest['kind']}: {newest['message']})"))
     out["tracker"] = _tracker(last, _planned_park(plans, now), faults)
-    check = storeread.latest_event(conn, "store_check")  # the service's integrity check
+    # The service's integrity check runs daily: the newest within a week.
+    check = storeread.latest_event(conn, "store_check",
+                                   (now - _dt.timedelta(days=7)).astimezone(_dt.UTC).isoformat())
     out["store"]["check"] = None if check is None else {
         "time_utc": check["time_utc"], "ok": check["level"] == "info", "message": check["message"]}
     if check is not None and check["level"] != "info":
