@@ -11,9 +11,12 @@ lowest ids, as in a store that grew day by day.
 Printed per store: the median wall time of fresh ``heliotrope today --json``,
 ``status --json``, ``results --from D`` and ``plot`` processes beside ``python3 -c
 pass``; the median time of one session's points read (``reader.session_points``,
-in-process); and the samples export of the newest day and of the whole store: time to
+in-process); the samples export of the newest day and of the whole store: time to
 the first row and rows per second, beside the ``sqlite3`` shell on the same query
-when it is installed.
+when it is installed; and heliotroped's start-up to READY against the simulator, warm
+and with the store's pages dropped, beside the full integrity check it runs after
+READY; on the 1-year and 10-year stores ``calibrate`` over the newest year, wall
+time and peak resident memory.
 
     .venv/bin/python benchmarks/bench_store_age.py [--runs N] [--ten]
 """
@@ -21,6 +24,7 @@ when it is installed.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import datetime as dt
 import os
 import re
@@ -186,6 +190,71 @@ def bench(n_days: int, runs: int) -> None:
             beside = "" if shell is None else f", sqlite3 shell {shell:,.0f} rows/s"
             print(f"  samples export, {label}: first row {t_first:.1f} ms, {n:,} rows, "
                   f"{rate:,.0f} rows/s{beside}")
+        _startup_figures(db, Path(tmp))
+        if n_days >= 365:  # last: it writes a calibration and the year's AOD
+            year = (DAY - dt.timedelta(days=364)).isoformat()
+            wall, peak = _wall_and_peak(base + ["calibrate", "--from", year, "--to", d], env)
+            print(f"  calibrate over a year              {wall * 1000:9.0f} ms, "
+                  f"peak RSS {peak:.0f} MB")
+
+
+def _wall_and_peak(cmd: list[str], env: dict) -> tuple[float, float]:
+    """Wall time [s] and peak resident memory [MB] of one run of ``cmd``.
+
+    The peak is the child's own VmHWM (proc(5)), read every 20 ms until it exits:
+    ``ru_maxrss`` from wait4 would not do, as Linux carries the forking parent's high
+    water mark (this script's, with the store builder's imports) across exec."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(cmd, env=env, cwd=ROOT, stdout=subprocess.DEVNULL,
+                            stderr=subprocess.PIPE)
+    from benchmarks.bench_service import proc_mb
+
+    peak = 0.0
+    while proc.poll() is None:
+        with contextlib.suppress(OSError, ValueError):  # exiting between poll and read
+            peak = max(peak, proc_mb(proc.pid, "VmHWM"))
+        time.sleep(0.02)
+    wall = time.perf_counter() - t0
+    if proc.returncode != 0:
+        raise SystemExit(f"{' '.join(cmd)} failed ({proc.returncode}): "
+                         f"{proc.stderr.read().decode()}")
+    return wall, peak
+
+
+def drop_cached_pages(db: Path) -> None:
+    """Ask the kernel to forget the store's cached pages (clean pages only, hence the
+    fsync): the next read comes from the disk, as after a reboot."""
+    for path in (db, db.with_name(db.name + "-wal")):
+        if path.exists():
+            fd = os.open(path, os.O_RDONLY)
+            try:
+                os.fsync(fd)
+                os.posix_fadvise(fd, 0, 0, os.POSIX_FADV_DONTNEED)
+            finally:
+                os.close(fd)
+
+
+def _startup_figures(db: Path, tmp: Path) -> None:
+    """heliotroped's spawn to READY=1 on this store (against the simulator), warm and
+    with the store's pages dropped; beside it the full integrity check it now runs
+    after READY, warm and cold."""
+    from benchmarks.bench_service import running_service
+    from daemon.station.bench import simulator
+    from daemon.store.writer import integrity_problems
+
+    for state in ("warm", "cold"):
+        t0 = time.perf_counter()
+        if state == "cold":
+            drop_cached_pages(db)
+        assert integrity_problems(db) == []
+        check_s = time.perf_counter() - t0
+        with simulator("pico-sereno-clear", 1, "tcp:0") as ends:
+            if state == "cold":
+                drop_cached_pages(db)
+            with running_service(tmp, ends, db) as (_proc, ready_s):
+                pass
+        print(f"  start-up to READY, {state:<4}: {ready_s * 1000:7.0f} ms; the full "
+              f"integrity check (after READY now): {check_s * 1000:7.0f} ms")
 
 
 def main() -> int:

@@ -60,6 +60,19 @@ def test_service_unit_has_the_field_settings():
         assert line in text, line
 
 
+def test_start_timeout_covers_two_silent_devices():
+    """TimeoutStartSec (systemd.service(5)) must cover identify on two devices that never
+    answer, each bounded by MAX_EXCHANGE_S, with room for the rest of start-up (about
+    3 s measured by benchmarks/bench_store_age.py; a small board taken as 3 times
+    slower, so 40 s of it at most)."""
+    from daemon.config.settings import MAX_EXCHANGE_S
+
+    text = (UNITS / "heliotroped.service").read_text()
+    found = re.search(r"^TimeoutStartSec=(\d+)$", text, re.M)
+    assert found, "heliotroped.service has no TimeoutStartSec"
+    assert int(found.group(1)) >= 2 * MAX_EXCHANGE_S + 40
+
+
 def _assert_verifies_with(unit: Path, drop_in: str) -> None:
     """``unit`` with ``drop_in`` appended (as systemd merges a drop-in) verifies and is
     still rated 2.0 or lower by systemd-analyze security."""

@@ -146,7 +146,9 @@ def calibrate_command(args: Any) -> int:
                            "store (store.path in the service's configuration)", 66)
     _require_heliotrope_store(db)
     try:
-        store = Store.open(db)
+        # Header and schema checks only: the full integrity check reads the whole file
+        # (seconds on a store of years); the service runs it daily and `status` shows it.
+        store = Store.open(db, full_check=False)
     except StoreError as exc:
         raise CommandError(str(exc), 74) from None
     try:

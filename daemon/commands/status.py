@@ -338,6 +338,13 @@ def _collect(conn, now: _dt.datetime, out: dict, problems: list,
     tr["age_s"] = _age_s(tr["time_utc"], now)
     for f in out["faults_24h"]["latest"]:
         f["age_s"] = _age_s(f["time_utc"], now)
+    # The service's integrity check runs daily: the newest within a week.
+    check = storeread.latest_event(conn, "store_check",
+                                   (now - _dt.timedelta(days=7)).astimezone(_dt.UTC).isoformat())
+    out["store"]["check"] = None if check is None else {
+        "time_utc": check["time_utc"], "ok": check["level"] == "info", "message": check["message"]}
+    if check is not None and check["level"] != "info":
+        problems.append((CRITICAL, check["message"]))
 
 
 def _finish(out: dict, problems: list[tuple[int, str]]) -> dict[str, Any]:
@@ -457,6 +464,9 @@ def format_status(st: dict[str, Any], now: _dt.datetime, width: int = 80) -> str
         rows.append(["disk free", f"{_mib(disk['free_bytes'])} "
                                   f"({fmt(disk['free_pct'], '.1f')} %)"])
     rows.append(["store", f"{st['store']['path']}, {_mib(st['store']['size_bytes'])}"])
+    if st["store"].get("check"):
+        rows.append(["store check", f"{utc_local(st['store']['check']['time_utc'], tz)}, "
+                                    f"{st['store']['check']['message']}"])
     rows.append(["version", f"heliotrope {st['version']}"])
     for p in st["problems"][1:]:
         rows.append(["also", p])

@@ -26,7 +26,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from daemon.config.settings import Channel, Config
-from daemon.science import solar
+from daemon.science import atmosphere
 from daemon.science.screening import point_signal
 
 #: Wavelengths [nm] the default Angstrom pair is chosen near (common practice, no source).
@@ -111,7 +111,7 @@ def point_aod(p, channels: Sequence[Channel], config: Config, v0: Mapping[str, A
         pressure = p.pressure_hpa if p.pressure_hpa is not None else nominal_p
     m_o3 = p.ozone_airmass
     if m_o3 is None and p.apparent_zenith_deg is not None:
-        m_o3 = float(solar.ozone_airmass(p.apparent_zenith_deg, config.site.elevation_m))
+        m_o3 = float(atmosphere.ozone_airmass(p.apparent_zenith_deg, config.site.elevation_m))
     for c in channels:
         ps = point_signal(p, c, config)
         if ps.signal_v is None or not ps.signal_v > 0.0 or ps.screened not in (None, "cloudy"):
@@ -126,7 +126,7 @@ def point_aod(p, channels: Sequence[Channel], config: Config, v0: Mapping[str, A
             flags.append("no ozone cross-section for this band: ozone not subtracted")
         if m_o3 is None:
             flags.append("no ozone air mass: ozone taken on the Kasten-Young air mass")
-        tau_r = float(solar.rayleigh_optical_depth(c.wavelength_nm, pressure))
+        tau_r = float(atmosphere.rayleigh_optical_depth(c.wavelength_nm, pressure))
         cal = v0[c.name]
         total, aod = aerosol_optical_depth(ps.signal_v, cal["v0_1au"], esf, m,
                                            m if m_o3 is None else m_o3, tau_r, o3)

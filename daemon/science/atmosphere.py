@@ -10,8 +10,12 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from daemon.config.settings import Site
 
 #: Standard sea-level pressure [hPa]; Bodhaine et al. (1999) tabulate at this pressure.
 STANDARD_PRESSURE_HPA = 1013.25
@@ -20,6 +24,34 @@ STANDARD_PRESSURE_HPA = 1013.25
 EARTH_RADIUS_KM = 6371.229
 
 ArrayLike = float | Sequence[float] | np.ndarray
+
+
+def site_pressure_hpa(site: Site) -> float:
+    """Nominal station pressure of a site [hPa].
+
+    Parameters
+    ----------
+    site : daemon.config.settings.Site
+        ``site.pressure_hpa`` is used when set; otherwise the pressure follows from
+        ``site.elevation_m`` through the standard atmosphere.
+
+    Returns
+    -------
+    float
+        Station pressure [hPa].
+
+    Notes
+    -----
+    The elevation formula is that of ``pvlib.atmosphere.alt2pres`` (a fit to the 1976
+    U.S. Standard Atmosphere: Portland State Aerospace Society, "A Quick Derivation
+    relating altitude to air pressure", version 1.03, 2004), written out here so that
+    the fits and ``calibrate`` need not import pvlib and pandas (about 110 MB); the
+    tests hold it to pvlib's. Weather moves the real pressure by a few hPa; the measured
+    housekeeping pressure should be preferred when there is one.
+    """
+    if site.pressure_hpa is not None:
+        return float(site.pressure_hpa)
+    return ((44331.514 - float(site.elevation_m)) / 11880.516) ** (1 / 0.1902632)
 
 
 def positive(name: str, value: float, unit: str) -> float:
@@ -118,3 +150,34 @@ def rayleigh_optical_depth(wavelength_nm: ArrayLike,
     tau = (0.0021520 * (1.0455996 - 341.29061 / um2 - 0.90230850 * um2)
            / (1.0 + 0.0027059889 / um2 - 85.968563 * um2))
     return like_input(wavelength_nm, tau * (p / STANDARD_PRESSURE_HPA))
+
+
+#: Relative air mass at the horizon by Kasten and Young (1989), at 90 degrees.
+KY_HORIZON_AIRMASS = 1.0 / (0.50572 * 6.07995 ** -1.6364)
+
+
+def kasten_young_airmass(apparent_zenith_deg: ArrayLike) -> np.ndarray:
+    """Relative optical air mass of Kasten and Young (1989), Appl. Opt. 28, 4735:
+    ``1 / (cos z + 0.50572 (96.07995 - z)^-1.6364)``, z the apparent zenith [deg];
+    NaN beyond 90 degrees. The same formula as pvlib's ``kastenyoung1989`` (held to it
+    by tests/test_atmosphere_light.py), written out so a session fit needs no pvlib."""
+    z = np.atleast_1d(np.asarray(apparent_zenith_deg, dtype=float))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        am = 1.0 / (np.cos(np.radians(z)) + 0.50572 * (96.07995 - z) ** -1.6364)
+    return np.where((z >= 0.0) & (z <= 90.0), am, np.nan)
+
+
+def zenith_from_kasten_young(airmass: ArrayLike) -> np.ndarray:
+    """Invert :func:`kasten_young_airmass` by bisection (the formula increases
+    monotonically on 0-90 degrees; 60 halvings leave under 1e-16 degrees): the apparent
+    zenith [deg] of each air mass, NaN outside 1/(1 + 0.50572 x 96.07995^-1.6364) to
+    :data:`KY_HORIZON_AIRMASS`."""
+    m = np.atleast_1d(np.asarray(airmass, dtype=float))
+    lo, hi = np.zeros_like(m), np.full_like(m, 90.0)
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        above = kasten_young_airmass(mid) > m
+        hi, lo = np.where(above, mid, hi), np.where(above, lo, mid)
+    z = 0.5 * (lo + hi)
+    low = kasten_young_airmass(0.0)[0]
+    return np.where((m >= low) & (m <= KY_HORIZON_AIRMASS), z, np.nan)

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 
 from daemon.config.settings import Channel, Config, FitSettings
-from daemon.science import solar
+from daemon.science import atmosphere
 from daemon.science.lamp import lamp_check, lamp_note
 from daemon.science.langley import (
     FitResult,
@@ -149,14 +149,14 @@ def extinction_corrections(series: ChannelSeries, channel: Channel,
     failures: list[str] = []
     p = series.pressure_hpa
     finite_p = p[np.isfinite(p)]
-    nominal = solar.site_pressure_hpa(config.site)
+    nominal = atmosphere.site_pressure_hpa(config.site)
     p_ref = float(finite_p.mean()) if finite_p.size else nominal
     if finite_p.size < p.size and p.size:
         notes.append(f"{p.size - finite_p.size} of {p.size} points without a pressure: "
                      f"taken as {p_ref:.1f} hPa")
     p_filled = np.where(np.isfinite(p), p, p_ref)
     change = float(np.ptp(p_filled)) if p_filled.size else 0.0
-    tau_r_ref = float(solar.rayleigh_optical_depth(channel.wavelength_nm, p_ref))
+    tau_r_ref = float(atmosphere.rayleigh_optical_depth(channel.wavelength_nm, p_ref))
     normalised = change > 0.0 and fit.normalise_pressure
     if normalised:
         if change > fit.max_pressure_change_hpa:
@@ -265,14 +265,14 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
     m = m[np.isfinite(m)]
     if m.size < 2 or np.ptp(m) == 0.0:
         return {}, {}
-    p = solar.site_pressure_hpa(config.site) if pressure_hpa is None else pressure_hpa
+    p = atmosphere.site_pressure_hpa(config.site) if pressure_hpa is None else pressure_hpa
     lam = channel.wavelength_nm
-    tau_r = float(solar.rayleigh_optical_depth(lam, p))
+    tau_r = float(atmosphere.rayleigh_optical_depth(lam, p))
     sigma = channel_cross_section_cm2(channel)
     tau_o3 = 0.0 if sigma is None else ozone_optical_depth(sigma, config.site.ozone_du)
     tau_a = tau_total - tau_r - tau_o3 if math.isfinite(tau_total) else 0.0
     tau_a = max(tau_a, 0.0)
-    z = np.atleast_1d(np.asarray(solar.apparent_zenith_from_airmass(m), dtype=float))
+    z = atmosphere.zenith_from_kasten_young(m)
     m, z = m[np.isfinite(z)], z[np.isfinite(z)]  # beyond the horizon's air mass: no zenith
     if m.size < 2 or np.ptp(m) == 0.0:
         return {}, {}

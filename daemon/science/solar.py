@@ -34,6 +34,7 @@ from daemon.science.atmosphere import (  # noqa: F401 - part of this module's in
     ozone_airmass,
     positive,
     rayleigh_optical_depth,
+    site_pressure_hpa,
 )
 
 if TYPE_CHECKING:
@@ -75,31 +76,6 @@ def _unix_seconds(index: pd.DatetimeIndex) -> np.ndarray:
 
 
 # --------------------------------------------------------------------------- pressure
-
-def site_pressure_hpa(site: Site) -> float:
-    """Nominal station pressure of a site [hPa].
-
-    Parameters
-    ----------
-    site : daemon.config.settings.Site
-        ``site.pressure_hpa`` is used when set; otherwise the pressure follows from
-        ``site.elevation_m`` through the standard atmosphere.
-
-    Returns
-    -------
-    float
-        Station pressure [hPa].
-
-    Notes
-    -----
-    The elevation formula is ``pvlib.atmosphere.alt2pres`` (a fit to the 1976 U.S.
-    Standard Atmosphere). Weather moves the real pressure by a few hPa; the measured
-    housekeeping pressure should be preferred when there is one.
-    """
-    if site.pressure_hpa is not None:
-        return float(site.pressure_hpa)
-    return float(pvlib.atmosphere.alt2pres(site.elevation_m)) / 100.0
-
 
 # --------------------------------------------------------------------------- position
 

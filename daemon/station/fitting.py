@@ -15,7 +15,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from daemon.config.settings import Config
-from daemon.science import solar
+from daemon.science import atmosphere
 from daemon.science.aod import angstrom_pair, point_alpha, point_aod
 from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
 from daemon.science.sessionfit import aerosol_at, apply_day_check, fit_series, screen_channel
@@ -31,6 +31,8 @@ from daemon.store.reader import (
 from daemon.store.writer import Store
 
 log = logging.getLogger(__name__)
+# AOD values a campaign holds before it stores them: about 10 MB, some 20 days.
+AOD_BATCH_ROWS = 5000
 
 
 def fit_stored_session(store: Store, config: Config, plan_date: str | _dt.date, session: str,
@@ -157,15 +159,21 @@ def update_aod(store: Store, config: Config, first: str, last: str,
     if not channels:
         return 0
     water = water_vapour_channels(config, v0)
-    nominal_p = solar.site_pressure_hpa(config.site)
+    nominal_p = atmosphere.site_pressure_hpa(config.site)
     tau_o3 = {}
     for c in channels:
         sigma = channel_cross_section_cm2(c)
         tau_o3[c.name] = None if sigma is None else ozone_optical_depth(sigma,
                                                                         config.site.ozone_du)
     pair = angstrom_pair(config)
+    stored = 0
     rows: list[dict[str, Any]] = []
     alphas: list[dict[str, Any]] = []
+    # Stored in batches of whole sessions, each batch its own transaction: memory stays
+    # that of one batch whatever the campaign's length, and a service writing beside a
+    # long campaign waits at most one batch's write. A campaign cut short leaves whole
+    # sessions with the new calibration's id on their values; running it again
+    # replaces them all.
     for date, session in _sessions_in(store, d1, d2, sessions):
         for p in store.session_points(date, session):
             per_channel = point_aod(p, channels, config, v0, tau_o3, nominal_p, cal["id"])
@@ -175,4 +183,7 @@ def update_aod(store: Store, config: Config, first: str, last: str,
                 alpha = point_alpha(p.measurement_id, per_channel, pair, cal["id"])
                 if alpha is not None:
                     alphas.append(alpha)
-    return store.save_aod(rows, alphas)
+        if len(rows) >= AOD_BATCH_ROWS:
+            stored += store.save_aod(rows, alphas)
+            rows, alphas = [], []
+    return stored + store.save_aod(rows, alphas)

@@ -41,6 +41,12 @@ STOP_WAIT_S = 2.0  # how long shutdown waits for the job in progress [s]
 PARK_ONCE_S = 2.0  # one PARK without retry or back-off [s]
 SHUTDOWN_S = 1.0  # per device, to end an exchange another thread is stuck in [s]
 RETRY_S = 300  # a job whose store write failed (full disk, read-only) runs again [s]
+# The store's full integrity check runs after READY and then once a day, in a thread of
+# its own at the lowest CPU priority, beside acquisition (its cost grows with the store).
+STORE_CHECK_EVERY_H = 24
+STORE_CHECK_NICE = 19
+MIGRATION_WAIT_S = 3600  # the start-up allowance systemd grants a schema upgrade [s]
+CHECK_STOP_S = 0.5  # how long the stop path waits for a cancelled store check [s]
 
 
 def sd_notify(message: str) -> None:
@@ -78,6 +84,7 @@ class Service:
         self.last_result = "no session fitted yet"
         self._idle = threading.Event()
         self._idle.set()
+        self._check_thread: threading.Thread | None = None
         self.scheduler = scheduler or BlockingScheduler(
             timezone=UTC,
             executors={"default": ThreadPoolExecutor(max_workers=1)},
@@ -270,6 +277,53 @@ class Service:
                                f"job {event.job_id} missed its time "
                                f"{event.scheduled_run_time:%Y-%m-%d %H:%M:%S} UTC")
 
+    # ------------------------------------------------------------------ store check
+
+    def start_store_check(self) -> threading.Thread:
+        """Start the full integrity check of the store in a background thread and
+        return it; its outcome is a ``store_check`` event (``status`` reports it)."""
+        thread = threading.Thread(target=self.check_store, name="store-check", daemon=True)
+        thread.start()
+        self._check_thread = thread
+        return thread
+
+    def check_store(self) -> None:
+        """``PRAGMA quick_check`` on a read-only connection of its own, at nice
+        STORE_CHECK_NICE: the writer goes on beside it (WAL mode). A damaged store is an
+        error event and acquisition goes on (stopping would lose the targets, and the
+        data already stored stays as it is)."""
+        import time
+
+        from daemon.store.writer import StoreError, integrity_problems
+
+        try:  # Linux: a thread's own nice value (the others keep theirs)
+            os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), STORE_CHECK_NICE)
+        except (OSError, AttributeError) as exc:
+            log.debug("store check at normal priority: %s", exc)
+        t0 = time.monotonic()
+        stopping = self.station.stopping
+        try:
+            problems = integrity_problems(self.station.store.path, cancel=stopping)
+        except StoreError as exc:
+            problems = [str(exc)]
+        except Exception as exc:  # the check must never stop the service
+            log.exception("store check failed")
+            problems = [f"the check itself failed: {exc!r}"]
+        took = time.monotonic() - t0
+        if stopping.is_set():  # cut short by the stop: no verdict, the next start checks
+            return
+        if problems:
+            self.station.event("error", "store_check",
+                               f"store integrity check failed ({'; '.join(problems[:3])}); "
+                               "acquisition goes on. At the next visit: stop the service, "
+                               "copy the store aside and recover it with the sqlite3 "
+                               "shell's .recover", {"ok": False, "seconds": round(took, 1),
+                                                     "problems": problems})
+        else:
+            self.station.event("info", "store_check",
+                               f"store integrity check passed in {took:.1f} s",
+                               {"ok": True, "seconds": round(took, 1)})
+
     # ------------------------------------------------------------------ life cycle
 
     def stop(self, *_args) -> None:
@@ -312,6 +366,9 @@ class Service:
                                next_run_time=self.clock.now(), misfire_grace_time=None,
                                coalesce=True)
         sd_notify("READY=1")
+        self.scheduler.add_job(self.start_store_check, "interval", hours=STORE_CHECK_EVERY_H,
+                               id="store-check", next_run_time=self.clock.now(),
+                               misfire_grace_time=None, coalesce=True)
         if not self.station.stopping.is_set():
             self.scheduler.start()  # blocks until stop()
         sd_notify("STOPPING=1")
@@ -324,6 +381,8 @@ class Service:
         else:  # two threads on one serial line would garble both: leave the tracker
             self.station.event("warning", "not_parked", "tracker not parked: a "
                                f"measurement was still running after {STOP_WAIT_S:g} s")
+        if self._check_thread is not None:  # cancelled by `stopping`: ends within ms
+            self._check_thread.join(CHECK_STOP_S)
         self.station.event("info", "stop", "service stopped")
 
     def _drain(self) -> bool:
@@ -396,7 +455,9 @@ def main(argv: list[str] | None = None) -> int:
     from daemon.store.writer import Store, StoreError
 
     try:
-        store = Store.open(config.store_path)
+        # The header and schema only: the full check's cost grows with the store, so it
+        # runs after READY (see check_store).
+        store = Store.open(config.store_path, full_check=False, on_migrate=_migrating)
         # Provenance: every result from now on points to the text this start runs with.
         store.record_configuration(config.text, config.source, software_version(),
                                    datetime.now(UTC))
@@ -415,6 +476,16 @@ def main(argv: list[str] | None = None) -> int:
         release_devices(radiometer, tracker)
         store.close()
     return 0
+
+
+def _migrating(names: list[str]) -> None:
+    """Before schema changes: they build indexes over the whole store, which can take
+    longer than the unit's TimeoutStartSec on a store of years on an SD card; ask
+    systemd for MIGRATION_WAIT_S more (sd_notify(3), EXTEND_TIMEOUT_USEC) so a restart
+    never cuts an upgrade short and loops."""
+    log.info("updating the store's schema (%s); this may take a while on a large store",
+             ", ".join(names))
+    sd_notify(f"EXTEND_TIMEOUT_USEC={MIGRATION_WAIT_S * 1_000_000}")
 
 
 def release_devices(radiometer: Radiometer, tracker: Tracker) -> None:

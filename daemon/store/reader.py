@@ -404,6 +404,19 @@ def day_housekeeping(conn: sqlite3.Connection, plan_date: str | _dt.date) -> lis
     return [dict(zip(keys, tuple(r), strict=True)) for r in cur.fetchall()]
 
 
+def latest_event(conn: sqlite3.Connection, kind: str, since_utc: str) -> dict[str, Any] | None:
+    """The newest event of ``kind`` at or after ``since_utc`` (ISO 8601 UTC text), or
+    None; ``detail`` decoded from JSON. Reached through the time index, so its cost is
+    that of the window, not of the store's age."""
+    r = conn.execute("SELECT id, time_utc, level, kind, message, detail FROM events "
+                     "WHERE time_utc >= ? AND kind = ? ORDER BY time_utc DESC, id DESC "
+                     "LIMIT 1", (since_utc, kind)).fetchone()
+    if r is None:
+        return None
+    return {"id": r[0], "time_utc": r[1], "level": r[2], "kind": r[3], "message": r[4],
+            "detail": json.loads(r[5]) if r[5] else None}
+
+
 def events_between(conn: sqlite3.Connection, start_utc: str, end_utc: str,
                    levels: tuple[str, ...] | None = None) -> list[dict[str, Any]]:
     """Events with ``start_utc <= time_utc < end_utc`` (ISO 8601 UTC text), oldest first.

@@ -23,7 +23,7 @@ import json
 import math
 import sqlite3
 import threading
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -341,12 +341,20 @@ class Store:
     # ------------------------------------------------------------------ opening
 
     @classmethod
-    def open(cls, path: str | Path) -> Store:
+    def open(cls, path: str | Path, full_check: bool = True,
+             on_migrate: Callable[[list[str]], None] | None = None) -> Store:
         """Open or create the store at ``path`` and bring its schema up to date.
 
         Creates missing parent directories. An existing file that is not an SQLite
         database, or fails ``PRAGMA quick_check``, raises :class:`StoreError` and is
         left exactly as it was.
+
+        ``full_check=False`` keeps only the checks whose cost does not grow with the
+        store (the file header, SQLite's reading of the schema, the migrations): the
+        service starts that way and runs :func:`integrity_problems` after READY.
+        ``on_migrate`` is called with the names of the schema changes about to be
+        applied, when there are any (an index built on a store of years takes a while:
+        the service tells systemd to wait).
         """
         p = Path(path).expanduser()
         if p.is_dir():
@@ -364,7 +372,10 @@ class Store:
             raise StoreError(f"{p}: cannot open the store ({exc}); check the path and its "
                              "permissions") from None
         try:
-            _quick_check(conn, p)
+            if full_check:
+                _quick_check(conn, p)
+            else:
+                _schema_check(conn, p)
             db = Database(conn, execute_plugins=False)
             db.enable_wal()
             if db.journal_mode != "wal":
@@ -373,7 +384,7 @@ class Store:
                                  "a local disk")
             db.execute("PRAGMA foreign_keys = ON")
             db.execute("PRAGMA synchronous = FULL")
-            _apply_migrations(db, p)
+            _apply_migrations(db, p, on_migrate)
         except StoreError:
             conn.close()
             raise
@@ -649,9 +660,24 @@ class Store:
                 marks = ",".join("?" * len(chunk))
                 self.db.execute(f"DELETE FROM aod_angstrom WHERE measurement_id IN ({marks})",
                                 chunk)
-            self.db["aod"].insert_all(aod_rows, replace=True)
-            self.db["aod_angstrom"].insert_all(alpha_rows, replace=True)
+            self._replace_rows("aod", aod_rows)
+            self._replace_rows("aod_angstrom", alpha_rows)
         return len(aod_rows)
+
+    def _replace_rows(self, table: str, rows: Sequence[Mapping[str, Any]]) -> None:
+        """INSERT OR REPLACE cleaned ``rows`` by one prepared statement over the table's
+        columns (a column a row lacks is NULL). A campaign stores tens of thousands of
+        rows: sqlite-utils' insert_all re-inspects each value and costs most of the
+        time here; its table metadata still names the columns."""
+        if not rows:
+            return
+        cols = list(self.db[table].columns_dict)
+        unknown = {k for r in rows for k in r} - set(cols)
+        if unknown:
+            raise ValueError(f"{table}: no column {', '.join(sorted(unknown))}")
+        sql = (f"INSERT OR REPLACE INTO [{table}] ({', '.join(f'[{c}]' for c in cols)}) "
+               f"VALUES ({', '.join('?' * len(cols))})")
+        self.db.conn.executemany(sql, ([r.get(c) for c in cols] for r in rows))
 
     def heartbeat(self, now: _dt.datetime) -> None:
         """Record that the service is alive at ``now`` (aware UTC)."""
@@ -725,31 +751,75 @@ def _check_header(p: Path) -> None:
                          "store.path, or move the file aside so a new store can be created")
 
 
-def _quick_check(conn: sqlite3.Connection, p: Path) -> None:
+RECOVERY_ADVICE = ("Move it aside (keep it for recovery with the sqlite3 shell's "
+                   ".recover) and restart to begin a new store")
+
+
+def _run_check(conn: sqlite3.Connection, p: Path, sql: str) -> list[str]:
+    """Run one of SQLite's checking statements; its complaints (none when all is well)."""
     try:
-        rows = conn.execute("PRAGMA quick_check").fetchall()
+        rows = conn.execute(sql).fetchall()
     except sqlite3.OperationalError as exc:
         raise StoreError(f"{p}: cannot read the store ({exc}); check its permissions and "
                          "that no other program holds it locked") from None
     except sqlite3.DatabaseError as exc:
         raise StoreError(f"{p}: the store is damaged ({exc}); the file was left untouched. "
-                         "Move it aside (keep it for recovery with the sqlite3 shell's "
-                         ".recover) and restart to begin a new store") from None
-    problems = [r[0] for r in rows if r[0] != "ok"]
+                         f"{RECOVERY_ADVICE}") from None
+    return [str(r[0]) for r in rows if r[0] != "ok"]
+
+
+def _quick_check(conn: sqlite3.Connection, p: Path) -> None:
+    problems = _run_check(conn, p, "PRAGMA quick_check")
     if problems:
         shown = "; ".join(problems[:3])
         raise StoreError(f"{p}: the store failed its integrity check ({shown}); the file was "
-                         "left untouched. Move it aside (keep it for recovery with the sqlite3 "
-                         "shell's .recover) and restart to begin a new store")
+                         f"left untouched. {RECOVERY_ADVICE}")
 
 
-def _apply_migrations(db: Database, p: Path) -> None:
+def _schema_check(conn: sqlite3.Connection, p: Path) -> None:
+    """The check bounded by the schema, not the data: SQLite parses every stored table
+    and index definition (a damaged schema page or header fails here)."""
+    _run_check(conn, p, "SELECT count(*) FROM sqlite_master")
+
+
+def integrity_problems(path: str | Path, cancel: threading.Event | None = None) -> list[str]:
+    """The full ``PRAGMA quick_check`` of the store at ``path`` on a connection of its
+    own (read-only, so the service's writes go on beside it in WAL mode); SQLite's
+    complaints, at most ten (a page too damaged to walk is one complaint), or an empty
+    list when the store is sound.
+
+    Raises :class:`StoreError` when the store cannot be opened or is locked, or when
+    ``cancel`` is set during the check (SQLite's progress handler ends it within a few
+    thousand steps)."""
+    p = Path(path).expanduser()
+    try:
+        conn = sqlite3.connect(p.resolve().as_uri() + "?mode=ro", uri=True,
+                               timeout=BUSY_TIMEOUT_S)
+    except sqlite3.Error as exc:
+        raise StoreError(f"{p}: cannot open the store to check it ({exc})") from None
+    if cancel is not None:
+        conn.set_progress_handler(cancel.is_set, 10_000)
+    try:
+        return [str(r[0]) for r in conn.execute("PRAGMA quick_check(10)") if r[0] != "ok"]
+    except sqlite3.OperationalError as exc:  # locked, unreadable: not a verdict
+        raise StoreError(f"{p}: cannot read the store to check it ({exc})") from None
+    except sqlite3.DatabaseError as exc:  # "database disk image is malformed"
+        return [str(exc)]
+    finally:
+        conn.close()
+
+
+def _apply_migrations(db: Database, p: Path,
+                      on_migrate: Callable[[list[str]], None] | None = None) -> None:
     applied = {m.name for m in migrations.applied(db)}
     unknown = sorted(applied - KNOWN_MIGRATIONS)
     if unknown:
         raise StoreError(f"{p}: the store has schema changes this version does not know "
                          f"({', '.join(unknown)}); it was written by a newer heliotrope. "
                          "Upgrade heliotrope, or point store.path at another file")
+    pending = sorted(KNOWN_MIGRATIONS - applied)
+    if pending and on_migrate is not None:
+        on_migrate(pending)
     migrations.apply(db)
 
 
