@@ -19,7 +19,7 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/ruff check daemon drivers sim_instrument tests benchmarks
-	$(BIN)/python -m pytest -q
+	$(BIN)/python -m pytest -q -n 4 --durations=10
 
 lint: $(STAMP)
 	$(BIN)/ruff check daemon drivers sim_instrument tests benchmarks

@@ -102,7 +102,12 @@ BAD = [
 ]
 
 
-@pytest.mark.parametrize("key,value,message", BAD, ids=[b[0] + "=" + repr(b[1]) for b in BAD])
+def _case_id(key: str, value: object) -> str:
+    """A stable test id (the same in every process, as pytest-xdist needs)."""
+    return f"{key}=deleted" if value is _DELETE else f"{key}={value!r}"
+
+
+@pytest.mark.parametrize("key,value,message", BAD, ids=[_case_id(b[0], b[1]) for b in BAD])
 def test_bad_config_message(key, value, message):
     with pytest.raises(ConfigError) as err:
         parse_config(_set(_base(), key, value))

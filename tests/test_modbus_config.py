@@ -75,8 +75,13 @@ WRONG = [
 ]
 
 
-@pytest.mark.parametrize("path,value,key,words", WRONG, ids=[f"{w[0]}={w[1]!r}"[-60:]
-                                                             for w in WRONG])
+def _case_id(path: str, value: object) -> str:
+    """A stable test id (the same in every process, as pytest-xdist needs)."""
+    return (f"{path}=deleted" if value is DELETE else f"{path}={value!r}")[-60:]
+
+
+@pytest.mark.parametrize("path,value,key,words", WRONG,
+                         ids=[_case_id(w[0], w[1]) for w in WRONG])
 def test_check_config_names_the_key(tmp_path, capsys, path, value, key, words):
     data = _with(path, None, delete=True) if value is DELETE else _with(path, value)
     bad = tmp_path / "bad.yaml"
