@@ -174,6 +174,17 @@ def test_report_command_writes_a_file_or_standard_output(day, tmp_path, capsys):
                  "--out", str(day.path)]) == 64
 
 
+def test_a_date_without_measurements_says_where_to_look_and_writes_nothing(day, tmp_path,
+                                                                        capsys):
+    # Exit 1 is "nothing to show" (README, "Commands"; common practice, no source).
+    out = tmp_path / "empty.html"
+    assert main(["report", "--db", str(day.path), "--date", "2027-03-01",
+                 "--config", str(CONFIG_PATH), "--out", str(out)]) == 1
+    err = capsys.readouterr().err
+    assert "no measurements on 2027-03-01" in err and "heliotrope results" in err
+    assert not out.exists()
+
+
 # --------------------------------------------------------------------------- Langley plots
 
 def test_morning_and_afternoon_markers_differ_in_shape_and_colour(page, day):

@@ -733,8 +733,25 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
     return "\n".join(parts)
 
 
+def _has_measurements(db: str | Path, plan_date: str) -> bool:
+    """Whether the store holds any measurement (ok or failed) of ``plan_date``."""
+    from daemon.store.reader import day_measurements, open_readonly
+
+    conn = open_readonly(db)
+    try:
+        return bool(day_measurements(conn, plan_date))
+    finally:
+        conn.close()
+
+
 def cmd_report(args: argparse.Namespace) -> int:
-    from daemon.commands.errors import EX_CANTCREAT, EX_NOINPUT, EX_USAGE, CommandError
+    from daemon.commands.errors import (
+        EX_CANTCREAT,
+        EX_NOINPUT,
+        EX_NOTHING,
+        EX_USAGE,
+        CommandError,
+    )
     from daemon.commands.output import OutputPathError, check_out_path, publish
     from daemon.commands.plot import service_config
     from daemon.store.reader import StoreReadError
@@ -747,6 +764,10 @@ def cmd_report(args: argparse.Namespace) -> int:
         except OutputPathError as exc:
             raise CommandError(str(exc), EX_USAGE) from None
     try:
+        if not _has_measurements(args.db, args.date.isoformat()):
+            raise CommandError(f"no measurements on {args.date} in {args.db}: nothing to "
+                               "report; `heliotrope results` lists the dates the store "
+                               "holds", EX_NOTHING)
         page = build_report(args.db, config, args.date.isoformat(), _dt.datetime.now(_dt.UTC))
     except StoreReadError as exc:
         raise CommandError(str(exc), EX_NOINPUT) from None
