@@ -261,3 +261,7 @@ def test_the_libyaml_loader_reads_every_shipped_configuration_as_the_strict_one(
         assert messages[0] == messages[1]  # the same words at the same line and column
         with pytest.raises(settings.ConfigError, match=re.escape(messages[1])):
             settings._parse_yaml(text)
+    # A control character after a refusal: PyYAML's reader reports it first, so the
+    # configuration's message does too.
+    with pytest.raises(settings.ConfigError, match="control character U\\+0007"):
+        settings._parse_yaml("a: &x 1\nb: 2\nc: \x07\n")

@@ -524,8 +524,8 @@ class _Skipped:
 class _OnlyCommand:
     """The subcommands, narrowed to the one on the command line. Building every
     subparser adds about 6 ms to each start, so a command line that names a command
-    builds only that one; without one (``--help``,
-    a typo) every command is built, so the listing and argparse's choices are whole."""
+    builds only that one; without one (``--help``, a typo) every command is built, so
+    the listing and argparse's choices are whole."""
 
     def __init__(self, sub, command: str | None):
         self._sub, self.command, self.found = sub, command, False
@@ -539,8 +539,7 @@ class _OnlyCommand:
 
 def build_parser(argv: Sequence[str] | None = None) -> argparse.ArgumentParser:
     """The parser; for ``argv`` naming a command, with that command's subparser only."""
-    first = next(iter(argv), None) if argv else None
-    command = first if first and not first.startswith("-") else None
+    command = argv[0] if argv and not argv[0].startswith("-") else None
     p = _Parser(prog="heliotrope", description=(
         "Operate a heliotrope sun-radiometer station: read results, plans and "
         "configuration, or run a simulated day on the bench."))

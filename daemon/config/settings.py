@@ -329,7 +329,9 @@ def _parse_yaml(text: str) -> Any:
     same marks); a text libyaml itself does not take is parsed again by
     :class:`_StrictLoader`, so every error reads the same with or without libyaml.
     """
-    if yaml.__with_libyaml__:
+    # PyYAML's reader refuses a control character anywhere before parsing anything,
+    # libyaml only where it reads it: leave such texts to the former, for its message.
+    if yaml.__with_libyaml__ and not yaml.reader.Reader.NON_PRINTABLE.search(text):
         try:
             return _load(_FastStrictLoader, text)
         except _Refused as exc:
