@@ -1,9 +1,10 @@
 """Size and build time of the daily report (``heliotrope report``).
 
 Builds the report in this process, N times, from the synthetic clear day of
-tests/synthetic_store.py with a refused session, a calibration and the day's AOD
-(tests/report_stores.py), and prints the median build time and the page's size, total
-and in inline SVG. Figures go into DEVELOPERS.md ("Benchmarks").
+tests/synthetic_store.py with a refused session, the day's AOD and a five-day
+calibration whose response drifts (tests/report_stores.py, ``build_drift_campaign``),
+and prints the median build time and the page's size, total and in inline SVG. Figures
+go into DEVELOPERS.md ("Benchmarks").
 
     .venv/bin/python benchmarks/bench_report.py [--runs N]
 """
@@ -26,10 +27,10 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--runs", type=int, default=11)
     args = ap.parse_args()
-    from tests.report_stores import build_campaign_day, report_page
+    from tests.report_stores import build_drift_campaign, report_page
 
     with tempfile.TemporaryDirectory() as tmp:
-        day = build_campaign_day(Path(tmp) / "cal.db")
+        day = build_drift_campaign(Path(tmp) / "cal.db")
         times, page = [], ""
         for _ in range(args.runs):
             t0 = time.perf_counter()

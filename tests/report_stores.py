@@ -42,7 +42,8 @@ def build_campaign_day(path: Path) -> SyntheticDay:
                     for r in results if r["channel"] == name]
         rows.append({"channel": name, "wavelength_nm": float(name), "v0_1au": v0,
                      "v0_1au_unc": v0 * CAL_UNC, "repeatability_pct": 0.1,
-                     "n_sessions": len(sessions),
+                     # kept and flagged, as daemon.science.campaign counts them
+                     "n_sessions": sum(1 for s in sessions if not s["flagged"]),
                      "n_flagged": sum(1 for s in sessions if s["flagged"]),
                      "drift_pct_per_year": None, "drift_unc_pct_per_year": None,
                      "e0_1au_w_m2_nm": None, "astm_ratio": None, "usable": True,
@@ -52,4 +53,45 @@ def build_campaign_day(path: Path) -> SyntheticDay:
         store.save_calibration(CAL_CREATED, DAY.isoformat(), DAY.isoformat(),
                                "Pico Sereno Station", {}, ["a one-day campaign (test)"], rows)
         update_aod(store, day.config, DAY.isoformat(), DAY.isoformat())
+    return day
+
+
+DRIFT_DATES = ("2027-02-11", "2027-02-12", "2027-02-13", "2027-02-14", "2027-02-15")
+# The invented campaign of the drift chart: each channel's response falls 0.05 % a day
+# (a filter ageing fast, so five days show it), morning and afternoon 0.03 % apart, and
+# one afternoon 2 % high, which the campaign's sigma clipping flags.
+DRIFT_PER_DAY = -0.0005
+OUTLIER = ("2027-02-13", "pm", 0.02)
+DRIFT_CREATED = dt.datetime(2027, 2, 16, 6, 30, tzinfo=dt.UTC)
+
+
+def drift_sessions(name: str) -> list:
+    """The invented campaign's accepted sessions of channel ``name``."""
+    from daemon.science.campaign import SessionV0
+
+    out = []
+    for i, date in enumerate(DRIFT_DATES):
+        for session, offset in (("am", 0.00015), ("pm", -0.00015)):
+            rel = DRIFT_PER_DAY * (i - 2) + offset
+            if (date, session) == OUTLIER[:2]:
+                rel += OUTLIER[2]
+            out.append(SessionV0(date, session, V0[name] * (1 + rel), 0.002))
+    return out
+
+
+def build_drift_campaign(path: Path) -> SyntheticDay:
+    """:func:`build_campaign_day`, then a newer calibration over the five dates of
+    :data:`DRIFT_DATES`, each channel combined by the campaign's own statistics
+    (:func:`daemon.science.campaign.combine_sessions`), as ``calibrate`` stores it."""
+    from dataclasses import asdict
+
+    from daemon.science.campaign import combine_sessions
+
+    day = build_campaign_day(path)
+    rows = [asdict(combine_sessions(name, float(name), drift_sessions(name)))
+            for name in V0]
+    with Store.open(path) as store:
+        store.save_calibration(DRIFT_CREATED, DRIFT_DATES[0], DRIFT_DATES[-1],
+                               "Pico Sereno Station", {},
+                               ["a five-day campaign with a drifting response (test)"], rows)
     return day

@@ -11,6 +11,7 @@ import datetime as dt
 import hashlib
 import json
 import os
+import re
 import sqlite3
 import subprocess
 import sys
@@ -171,3 +172,96 @@ def test_results_command_table_and_json(day, capsys):
     assert "no session results" in capsys.readouterr().out
     assert main(["results", "--db", str(day.path), "--from", D, "--to", "2027-02-01"]) == 64
     assert "swap them" in capsys.readouterr().err
+
+
+# --------------------------------------------------------------------------- start-up
+
+def test_plot_starts_without_the_modules_its_start_up_no_longer_needs(day):
+    """``plot`` reads the configuration without ``logging`` (used by one deprecation
+    warning) and builds its parser without ``shutil`` (and with it bz2 and lzma): the
+    cuts that bring its start within 3 times a bare interpreter's (DEVELOPERS.md)."""
+    argv = ["plot", "--date", D, "--channel", "500", "--session", "am", "--db",
+            str(day.path)]
+    result = subprocess.run([sys.executable, "-c", _PROBE, *argv], capture_output=True,
+                            text=True, cwd=ROOT, timeout=60,
+                            env={**os.environ, "HELIOTROPE_CONFIG": str(CONFIG_PATH)})
+    assert result.returncode == 0, result.stderr
+    info = json.loads(result.stdout.strip().splitlines()[-1])
+    assert info["rc"] == 0 and "Langley plot" in info["out"]
+    loaded = set(info["modules"])
+    assert not loaded & {"logging", "shutil", "bz2", "lzma", "numpy"}, \
+        sorted(loaded & {"logging", "shutil", "bz2", "lzma", "numpy"})
+
+
+def _help(parser, argv: list[str]) -> str:
+    import contextlib
+    import io
+
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out), pytest.raises(SystemExit):
+        parser.parse_args(argv)
+    return out.getvalue()
+
+
+def test_a_parser_narrowed_to_one_command_parses_and_helps_as_the_whole_one():
+    from daemon.commands.cli import build_parser
+
+    whole = build_parser()
+    commands = next(a for a in whole._actions if a.dest == "command").choices
+    assert {"plot", "report", "status", "demo", "ssh-gate", "check-config"} <= set(commands)
+    for name in commands:
+        narrowed = build_parser([name])
+        assert list(next(a for a in narrowed._actions if a.dest == "command").choices) \
+            == [name]
+        assert _help(narrowed, [name, "--help"]) == _help(whole, [name, "--help"]), name
+    argv = ["plot", "--date", D, "--channel", "870", "--session", "pm", "--db", "x.db"]
+    assert vars(build_parser(argv).parse_args(argv)) == vars(whole.parse_args(argv))
+    # No command, or not one: the whole parser, whose error lists every command.
+    assert set(next(a for a in build_parser(["--help"])._actions
+                    if a.dest == "command").choices) == set(commands)
+    assert set(next(a for a in build_parser(["plto"])._actions
+                    if a.dest == "command").choices) == set(commands)
+
+
+def test_the_libyaml_loader_reads_every_shipped_configuration_as_the_strict_one():
+    """PyYAML's own pure-Python loader (through our strict rules) is the reference for
+    the libyaml-backed one used first: same data for every file in config/, and the
+    same refusals, raised by the fast loader itself (not only by the fall-back)."""
+    import yaml
+
+    from daemon.config import settings
+
+    if not yaml.__with_libyaml__:
+        pytest.skip("this PyYAML has no libyaml: the strict loader is the only one")
+    for path in sorted((ROOT / "config").glob("*.yaml")):
+        text = path.read_text()
+        strict = settings._StrictLoader(text)
+        fast = settings._FastStrictLoader(text)
+        try:
+            assert fast.get_single_data() == strict.get_single_data(), path.name
+        finally:
+            strict.dispose()
+            fast.dispose()
+    refused = {"a: &x 1\nb: *x\n": "anchor &x is not allowed",
+               "a: 1\nb: *x\n": "alias *x is not allowed",
+               "a: 1\na: 2\n": "a: key given twice, at line 1 and line 2",
+               "a: " + "[" * 70 + "]" * 70 + "\n": "nested more than 64 levels deep",
+               "a: " + "9" * 80 + "\n": "whole number",
+               "a: 2027-02-30\n": "is not a date",
+               "<<: {b: 1}\n": "merge key << is not allowed"}
+    # Columns count characters in both, after a two-byte character too.
+    refused['site:\n  x: ["Pico Sereno é", &a 1]\n'] = "line 2, column 24: anchor &a"
+    for text, message in refused.items():
+        messages = []
+        for loader in (settings._FastStrictLoader, settings._StrictLoader):
+            with pytest.raises(settings._Refused) as caught:
+                settings._load(loader, text)
+            messages.append(str(settings._refusal(caught.value)))
+        assert message in messages[0], (text[:20], messages[0])
+        assert messages[0] == messages[1]  # the same words at the same line and column
+        with pytest.raises(settings.ConfigError, match=re.escape(messages[1])):
+            settings._parse_yaml(text)
+    # A control character after a refusal: PyYAML's reader reports it first, so the
+    # configuration's message does too.
+    with pytest.raises(settings.ConfigError, match="control character U\\+0007"):
+        settings._parse_yaml("a: &x 1\nb: 2\nc: \x07\n")

@@ -1,5 +1,8 @@
-"""The README's bench campaign, run as it stands: every command of its block against a
-fresh ``heliotrope demo --days 5`` store, with no --config anywhere."""
+"""The README's bench blocks, run as they stand: every command of the campaign block
+against a fresh ``heliotrope demo --days 5`` store, with no --config anywhere; the
+instrument block (check-config, the simulator on TCP, probe, the service, the SSH gate)
+line by line as a shell user types it; and a check that every row of the README's
+command table is in one of them."""
 
 from __future__ import annotations
 
@@ -133,3 +136,167 @@ def test_the_netcdf_export_carries_the_calibrated_aod(campaign):
             assert got == pytest.approx(float(r["aod [1]"]), rel=1e-12), r["channel"]
     finally:
         ds.close()
+
+
+# --------------------------------------------------------------------------- instrument
+
+def readme_block(name: str) -> list[str]:
+    """The lines of the README's ``<!-- name -->`` shell block, as a user types them."""
+    block = re.search(rf"<!-- {name} -->\s*```sh\n(.*?)```", README.read_text(), re.S)
+    assert block, f"README.md lost its {name} block"
+    return [line for line in block.group(1).splitlines() if line.strip()]
+
+
+def _free_port_pair() -> int:
+    """A port P with P and P + 1 free on loopback (the simulator takes both)."""
+    import socket
+
+    for _ in range(50):
+        with socket.socket() as a:
+            a.bind(("127.0.0.1", 0))
+            port = a.getsockname()[1]
+            if port >= 65535:
+                continue
+            with socket.socket() as b:
+                try:
+                    b.bind(("127.0.0.1", port + 1))
+                except OSError:
+                    continue
+        return port
+    raise AssertionError("no two adjacent free loopback ports")
+
+
+def _first_line(proc, timeout_s: float) -> str:
+    import selectors
+
+    with selectors.DefaultSelector() as sel:
+        sel.register(proc.stdout, selectors.EVENT_READ)
+        assert sel.select(timeout_s), f"{proc.args} printed nothing in {timeout_s} s"
+    return proc.stdout.readline()
+
+
+@pytest.fixture(scope="module")
+def instrument(tmp_path_factory):
+    """Run the README's bench-instrument block line by line, as a shell user would:
+    each foreground line through ``bash -c`` in a directory that sees the source tree's
+    ``config/``; a line ending in ``&`` as a background job (ready when the simulator
+    prints its endpoints); ``heliotroped`` in the foreground until it tells systemd's
+    socket READY=1, then Ctrl-C (SIGINT); ``kill %N`` as SIGTERM to the Nth job. The
+    only change to the text: the simulator's ports 7001 and 7002 move to a free pair,
+    as two helpers' tests may share a machine."""
+    import os
+    import signal
+    import socket
+    import subprocess
+    import sys
+
+    work = tmp_path_factory.mktemp("instrument")
+    (work / "config").symlink_to(README.parent / "config")
+    port = _free_port_pair()
+    bin_dir = Path(sys.executable).parent
+    env = {**os.environ, "PATH": f"{bin_dir}{os.pathsep}{os.environ.get('PATH', '')}"}
+    jobs: list[subprocess.Popen] = []
+    runs = []
+    try:
+        for line in readme_block("bench-instrument"):
+            typed = line
+            line = (line.replace("tcp:7001", f"tcp:{port}")
+                    .replace("127.0.0.1:7001", f"127.0.0.1:{port}")
+                    .replace("127.0.0.1:7002", f"127.0.0.1:{port + 1}"))
+            words = shlex.split(line)
+            if line.rstrip().endswith("&"):
+                job = subprocess.Popen(["bash", "-c", f"exec {line.rstrip()[:-1]}"],
+                                       cwd=work, env=env, stdout=subprocess.PIPE,
+                                       stderr=subprocess.DEVNULL, text=True)
+                jobs.append(job)
+                runs.append((typed, None, _first_line(job, 60), ""))
+            elif words[:2] == ["kill", words[1]] and words[1].startswith("%"):
+                job = jobs[int(words[1][1:]) - 1]
+                job.send_signal(signal.SIGTERM)
+                runs.append((typed, job.wait(timeout=30), "", ""))
+            elif words[0] == "heliotroped":
+                notify = work / "notify"
+                with socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM) as sock:
+                    sock.bind(str(notify))
+                    sock.settimeout(90)
+                    log = (work / "heliotroped.log").open("w")
+                    proc = subprocess.Popen(["bash", "-c", f"exec {line}"], cwd=work,
+                                            env={**env, "NOTIFY_SOCKET": str(notify)},
+                                            stdout=log, stderr=subprocess.STDOUT)
+                    try:
+                        while b"READY=1" not in sock.recv(4096):
+                            pass
+                    finally:
+                        proc.send_signal(signal.SIGINT)
+                        code = proc.wait(timeout=60)
+                        log.close()
+                runs.append((typed, code, "", (work / "heliotroped.log").read_text()))
+            else:
+                r = subprocess.run(["bash", "-c", line], cwd=work, env=env,
+                                   capture_output=True, text=True, timeout=120)
+                runs.append((typed, r.returncode, r.stdout, r.stderr))
+    finally:
+        for job in jobs:
+            if job.poll() is None:
+                job.kill()
+                job.wait(timeout=10)
+    return work, port, runs
+
+
+def _line(runs, start: str):
+    return next(r for r in runs if r[0].startswith(start))
+
+
+def test_every_line_of_the_instrument_block_runs(instrument):
+    work, port, runs = instrument
+    assert [r[0] for r in runs] == readme_block("bench-instrument")
+    for typed, code, _out, err in runs:
+        if typed.rstrip().endswith("&"):
+            continue  # a background job: checked below by what it printed
+        assert code == 0, (typed, code, err[-2000:])
+
+
+def test_the_instrument_block_did_what_it_says(instrument):
+    work, port, runs = instrument
+    # The simulator listens where the block's probe and copy look.
+    endpoints = json.loads(_line(runs, "heliotrope-sim")[2])
+    assert (endpoints["radiometer"], endpoints["tracker"]) == \
+        (f"socket://127.0.0.1:{port}", f"socket://127.0.0.1:{port + 1}")
+    probe = _line(runs, "heliotrope probe")[2].splitlines()
+    answered = {tuple(line.split()[:2]) for line in probe if "  ok  " in line}
+    assert {("radiometer", "ID"), ("radiometer", "BURST"), ("radiometer", "HK"),
+            ("tracker", "ID"), ("tracker", "STATUS")} <= answered, probe
+    bench = (work / "bench.yaml").read_text()
+    assert f"socket://127.0.0.1:{port}" in bench and "path: service.db" in bench
+    assert "store service.db" in _line(runs, "heliotrope check-config bench.yaml")[2]
+    log = _line(runs, "heliotroped")[3]
+    assert "stop requested by signal" in log and "service stopped" in log
+    conn = sqlite3.connect(work / "service.db")
+    try:
+        origins = [r[0] for r in conn.execute("SELECT origin FROM configurations")]
+    finally:
+        conn.close()
+    assert origins == ["service"]  # heliotroped recorded the text it ran with
+    plan = json.loads(_line(runs, "SSH_ORIGINAL_COMMAND=")[2])
+    assert plan["site_name"] == "Pico Sereno Station" and plan["targets"]
+    assert f"plan for {plan['date']}:" in log  # the gate read the plan the service made
+
+
+def _table_commands() -> list[str]:
+    """The command of every row of the README's command table: ``heliotrope NAME`` or
+    the program's own name."""
+    text = README.read_text()
+    table = text[text.index("## Commands"):text.index("<!-- bench-campaign -->")]
+    cells = re.findall(r"^\| `([^`]+)` \|", table, re.M)
+    assert len(cells) >= 15, cells
+    return [" ".join(c.split()[:2]) if c.startswith("heliotrope ") else c.split()[0]
+            for c in cells]
+
+
+def test_every_row_of_the_command_table_runs_in_a_tested_block():
+    lines = [re.sub(r"^(\w+=(\"[^\"]*\"|\S+) )+", "", line)  # VAR=value prefixes
+             for name in ("bench-campaign", "bench-instrument")
+             for line in readme_block(name)]
+    for command in _table_commands():
+        assert any(line == command or line.startswith(command + " ") for line in lines), \
+            f"README command table: {command!r} is in no block a test runs"

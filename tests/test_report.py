@@ -15,9 +15,23 @@ import pytest
 
 from daemon.commands.cli import main
 from daemon.commands.plot import USED, langley_view
-from daemon.commands.report import langley_residuals, nice_ticks
-from daemon.store.reader import aod_between, open_readonly, results_between
-from tests.report_stores import REFUSAL, REFUSED, build_campaign_day, report_page
+from daemon.commands.report import drift_line, langley_residuals, nice_ticks, session_day
+from daemon.store.reader import (
+    aod_between,
+    open_readonly,
+    results_between,
+    stored_calibration,
+)
+from tests.report_stores import (
+    DRIFT_DATES,
+    DRIFT_PER_DAY,
+    OUTLIER,
+    REFUSAL,
+    REFUSED,
+    build_campaign_day,
+    build_drift_campaign,
+    report_page,
+)
 from tests.synthetic_store import CONFIG_PATH, DAY, PRESSURE_HPA, TAU, V0, build_day
 
 D = DAY.isoformat()
@@ -47,6 +61,14 @@ def page(day):
 @pytest.fixture(scope="module")
 def cal_page(campaign):
     return report_page(campaign)
+
+
+@pytest.fixture(scope="module")
+def drifting(tmp_path_factory):
+    """The campaign day with a newer five-day calibration whose response drifts, and
+    the report of its date."""
+    store = build_drift_campaign(tmp_path_factory.mktemp("report-drift") / "drift.db")
+    return store, report_page(store)
 
 
 def svgs(page: str) -> list[ET.Element]:
@@ -398,3 +420,107 @@ def test_aod_without_a_calibration_for_the_date_says_what_to_run(campaign, tmp_p
     text = re.sub(r"\s+", " ", " ".join(_text(page)))
     assert "run heliotrope calibrate over a range that includes this date" in text
 
+
+
+# --------------------------------------------------------------------------- drift
+
+def _drift_charts(page: str) -> dict[str, ET.Element]:
+    out = {}
+    for svg in svgs(page):
+        m = re.match(r"Campaign V0 at 1 AU, channel (\S+) ", svg.findtext(f"{SVG}title") or "")
+        if m:
+            out[m.group(1)] = svg
+    return out
+
+
+def _stored(store) -> dict:
+    conn = open_readonly(store.path)
+    try:
+        return stored_calibration(conn)
+    finally:
+        conn.close()
+
+
+def test_the_drift_line_is_the_least_squares_line_of_the_kept_sessions(drifting):
+    """numpy.polyfit through the kept sessions (times as the campaign places them:
+    mid-morning, mid-afternoon) is the reference for the drawn line; the stored drift
+    is its slope relative to the mean, per year of 365.25 days."""
+    cal = _stored(drifting[0])
+    assert (cal["from"], cal["to"]) == (DRIFT_DATES[0], DRIFT_DATES[-1])
+    for c in cal["channels"]:
+        kept = [s for s in c["sessions"] if not s["flagged"]]
+        assert [(s["date"], s["session"]) for s in c["sessions"] if s["flagged"]] \
+            == [OUTLIER[:2]], c["channel"]
+        t = np.array([session_day(cal["from"], s["date"], s["session"]) for s in kept])
+        v = np.array([s["v0_1au"] for s in kept])
+        slope, intercept = np.polyfit(t, v, 1)
+        (t0, v0), (t1, v1) = drift_line(c, cal["from"])
+        assert (t0, t1) == (t.min(), t.max())
+        assert v0 == pytest.approx(intercept + slope * t0, rel=1e-12)
+        assert v1 == pytest.approx(intercept + slope * t1, rel=1e-12)
+        assert c["v0_1au"] == pytest.approx(v.mean(), rel=1e-12)
+        assert c["drift_pct_per_year"] == pytest.approx(100 * slope * 365.25 / v.mean(),
+                                                        rel=1e-9)
+        # The invented trend is found within three of its standard errors.
+        truth = 100 * DRIFT_PER_DAY * 365.25
+        assert abs(c["drift_pct_per_year"] - truth) < 3 * c["drift_unc_pct_per_year"]
+
+
+def _points(svg: ET.Element, series: str) -> list[tuple[float, float]]:
+    (g,) = groups(svg, series=series)
+    out = []
+    for el in g:
+        if el.tag == f"{SVG}polyline":
+            out += [tuple(map(float, p.split(","))) for p in el.get("points").split()]
+        elif el.tag == f"{SVG}circle":
+            out.append((float(el.get("cx")), float(el.get("cy"))))
+        else:  # a triangle or cross path: its first point's x is the centre's
+            nums = [float(n) for n in re.findall(r"-?\d+\.?\d*", el.get("d"))]
+            out.append((nums[0], nums[1]))
+    return out
+
+
+def test_each_channel_has_a_drift_chart_with_its_sessions_mean_and_line(drifting):
+    store, drift_page = drifting
+    cal = _stored(store)
+    charts = _drift_charts(drift_page)
+    assert sorted(charts, key=float) == [c["channel"] for c in cal["channels"]]
+    colours = set()
+    for c in cal["channels"]:
+        svg = charts[c["channel"]]
+        n = {k: sum(1 for s in c["sessions"] if (s["flagged"] if k == "flagged" else
+                                                 not s["flagged"] and s["session"] == k))
+             for k in ("am", "pm", "flagged")}
+        assert n == {"am": 5, "pm": 4, "flagged": 1}
+        for key, count in n.items():
+            assert len(_points(svg, key)) == count, (c["channel"], key)
+        # Pixels back to values: the plot area maps days 0..5 onto its width, and the
+        # drift line crosses the mean line at the kept sessions' mean time.
+        rect = next(el for el in svg.iter(f"{SVG}rect") if el.get("fill") == "#fcfcfc")
+        left, width = float(rect.get("x")), float(rect.get("width"))
+        (a, b) = _points(svg, "drift")
+        (t0, v0), (t1, v1) = drift_line(c, cal["from"])
+        assert a[0] == pytest.approx(left + t0 / 5 * width, abs=0.06)
+        assert b[0] == pytest.approx(left + t1 / 5 * width, abs=0.06)
+        mean_y = _points(svg, "mean")[0][1]
+        # y is linear in V0: the two ends are as far from the mean line as their values.
+        assert (a[1] - mean_y) / (b[1] - mean_y) == pytest.approx(
+            (v0 - c["v0_1au"]) / (v1 - c["v0_1au"]), rel=0.02)
+        assert a[1] < b[1]  # the response falls: the line runs down the page's y
+        for g in svg.iter(f"{SVG}g"):
+            if g.get("data-series"):
+                colours |= {el.get(k) for el in g for k in ("fill", "stroke")}
+    assert colours - {None, "none"} <= OKABE_ITO_2008
+    text = re.sub(r"\s+", " ", " ".join(_text(drift_page)))
+    assert "Channel 500 (500 nm): 9 of 10 sessions kept; drift -18.44 ± 0.80 %/year" in text
+    assert "9/10" in text  # the table's sessions kept, of those the campaign had
+
+
+def test_a_one_day_calibration_charts_its_sessions_and_says_why_there_is_no_drift(cal_page):
+    charts = _drift_charts(cal_page)
+    assert len(charts) == 6
+    for name, svg in charts.items():
+        assert groups(svg, series="mean") and not groups(svg, series="drift"), name
+    text = re.sub(r"\s+", " ", " ".join(_text(cal_page)))
+    assert "no drift: fewer than three kept sessions on two dates" in text
+    assert f"Channel {REFUSED[1]} ({REFUSED[1]} nm): 1 of 2 sessions kept" in text

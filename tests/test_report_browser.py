@@ -28,7 +28,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.report_stores import build_campaign_day, report_page
+from tests.report_stores import build_drift_campaign, report_page
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 pytestmark = pytest.mark.skipif(
@@ -170,8 +170,12 @@ def browser(tmp_path):
 
 @pytest.fixture(scope="module")
 def page(tmp_path_factory):
-    day = build_campaign_day(tmp_path_factory.mktemp("browser") / "cal.db")
-    return report_page(day)
+    """The report with every section filled: a refused session, a calibration whose
+    campaign drifts (so its drift charts draw the drift line) and the day's AOD."""
+    day = build_drift_campaign(tmp_path_factory.mktemp("browser") / "cal.db")
+    text = report_page(day)
+    assert text.count('data-series="drift"') == len(day.config.channels)
+    return text
 
 
 def show(page: str, browser: Browser, tmp_path: Path, width: int, name: str) -> dict:

@@ -50,6 +50,17 @@ REFUSED_DASH = "6 4"  # the fitted line of a refused session is dashed
 HK_SERIES = (("detector_temp_c", "detector", OKABE_ITO["vermillion"], "dot"),
              ("case_temp_c", "case", OKABE_ITO["bluish green"], "triangle"),
              ("ambient_temp_c", "ambient", OKABE_ITO["blue"], "square"))
+# The campaign's drift chart: (colour, marker, hollow) of its kept morning and afternoon
+# sessions (as in the Langley plots) and of the flagged ones; the mean and drift lines.
+DRIFT_POINTS = {"am": (OKABE_ITO["blue"], "dot", False),
+                "pm": (OKABE_ITO["vermillion"], "triangle", True),
+                "flagged": (OKABE_ITO["reddish purple"], "cross", False)}
+DRIFT_MEAN_COLOUR = OKABE_ITO["black"]
+DRIFT_LINE = (OKABE_ITO["bluish green"], "5 3")  # colour and dash of the drift line
+# Where a session sits in its day, as the campaign's drift fit places it
+# (daemon.science.campaign._years): mid-morning, mid-afternoon.
+SESSION_DAY_FRACTION = {"am": 0.375, "pm": 0.625}
+DAYS_PER_YEAR = 365.25  # the drift's year, as daemon.science.campaign.DAYS_PER_YEAR
 # Channel colours and shapes for the AOD chart, shortest wavelength first.
 CHANNEL_STYLES = ((OKABE_ITO["reddish purple"], "dot"), (OKABE_ITO["blue"], "triangle"),
                   (OKABE_ITO["bluish green"], "square"), (OKABE_ITO["orange"], "diamond"),
@@ -360,6 +371,79 @@ def langley_svg(views: Sequence[Any], channel: str, wavelength_nm: float) -> str
                              height=150)
 
 
+def session_day(first_date: str, date: str, session: str) -> float:
+    """A campaign session's time [days from ``first_date``'s midnight]."""
+    days = (_dt.date.fromisoformat(date) - _dt.date.fromisoformat(first_date)).days
+    return days + SESSION_DAY_FRACTION.get(session, 0.5)
+
+
+def drift_line(channel: dict, first_date: str) -> tuple[tuple[float, float],
+                                                         tuple[float, float]] | None:
+    """The calibration's drift line of one channel over its kept sessions, as two
+    (days from ``first_date``, V0 at 1 AU [V]) end points; None without a drift.
+
+    The campaign fits V0 against time by least squares (:mod:`daemon.science.campaign`),
+    so its line passes through the mean time of the kept sessions at their mean V0,
+    the calibration's V0, with the slope ``V0 * drift / 100`` per year.
+    """
+    mean, drift = channel.get("v0_1au"), channel.get("drift_pct_per_year")
+    kept = [session_day(first_date, s["date"], s["session"]) for s in channel["sessions"]
+            if not s.get("flagged")]
+    if mean is None or drift is None or not kept:
+        return None
+    t_mean = math.fsum(kept) / len(kept)
+    per_day = mean * drift / 100.0 / DAYS_PER_YEAR
+    return tuple((t, mean + per_day * (t - t_mean)) for t in (min(kept), max(kept)))
+
+
+def drift_svg(channel: dict, first_date: str, last_date: str) -> str:
+    """One channel's campaign: each session's V0 at 1 AU against its date (kept morning
+    and afternoon sessions as in the Langley plots, flagged ones apart), the
+    calibration's mean V0 across the campaign and its drift line."""
+    sessions = channel["sessions"]
+    span = max(1, (_dt.date.fromisoformat(last_date)
+                   - _dt.date.fromisoformat(first_date)).days + 1)
+    series: list[dict[str, Any]] = []
+    ys = [s["v0_1au"] for s in sessions if s.get("v0_1au") is not None]
+    for key, (colour, marker, hollow) in DRIFT_POINTS.items():
+        xy = [(session_day(first_date, s["date"], s["session"]), s["v0_1au"])
+              for s in sessions if s.get("v0_1au") is not None
+              and (s.get("flagged") if key == "flagged"
+                   else not s.get("flagged") and s["session"] == key)]
+        if xy:
+            series.append({"xy": xy, "kind": "points", "colour": colour, "marker": marker,
+                           "hollow": hollow, "label": key,
+                           "group": {"series": key, "channel": channel["channel"]}})
+    mean = channel.get("v0_1au")
+    if mean is not None:
+        ys.append(mean)
+        series.append({"xy": [(0.0, mean), (float(span), mean)], "kind": "line",
+                       "colour": DRIFT_MEAN_COLOUR, "label": "mean",
+                       "group": {"series": "mean", "channel": channel["channel"]}})
+    line = drift_line(channel, first_date)
+    if line is not None:
+        ys += [v for _, v in line]
+        colour, dash = DRIFT_LINE
+        series.append({"xy": list(line), "kind": "line", "colour": colour, "dash": dash,
+                       "width": 1.8,
+                       "label": f"drift {channel['drift_pct_per_year']:+.2f} %/year",
+                       "group": {"series": "drift", "channel": channel["channel"]}})
+    lo, hi = (min(ys), max(ys)) if ys else (0.0, 1.0)
+    pad = max((hi - lo) * 0.12, abs(hi) * 2e-4, 1e-9)
+    # A tick at the middle of a date, labelled with it: month-day, or year-month when
+    # the campaign crosses a new year; at most six, so the labels fit a phone.
+    first = _dt.date.fromisoformat(first_date)
+    long_form = first.year != _dt.date.fromisoformat(last_date).year
+    step = next((m for m in (1, 2, 5, 7, 14, 30, 61, 91, 182) if span / m <= 6), 365)
+    ticks = [(d + 0.5, (first + _dt.timedelta(days=d)).isoformat()[:7] if long_form
+              else (first + _dt.timedelta(days=d)).isoformat()[5:])
+             for d in range(0, span, step)]
+    return svg_chart(series, (0.0, float(span)), (lo - pad, hi + pad), "local date",
+                     "V0 at 1 AU [V]", x_ticks=ticks,
+                     title=f"Campaign V0 at 1 AU, channel {channel['channel']} "
+                           f"({channel['wavelength_nm']:g} nm)")
+
+
 def housekeeping_svg(rows: Sequence[dict], tz, keys: Sequence[tuple[str, str, str, str]],
                      y_label: str, title: str) -> str:
     """Values against the site's local time of day: one line with its own colour and
@@ -503,17 +587,37 @@ def _calibration_section(cal: dict | None, plan_date: str, db: str | Path, tz) -
                  "the trend of the session V0 over the campaign.</p>")
     rows = []
     for c in cal["channels"]:
-        kept = None if c["n_sessions"] is None else c["n_sessions"] - (c["n_flagged"] or 0)
+        # n_sessions counts the sessions kept, n_flagged those left out
+        # (daemon.science.campaign.ChannelCalibration).
+        kept = c["n_sessions"]
+        total = None if kept is None else kept + (c["n_flagged"] or 0)
         drift = ("-" if c["drift_pct_per_year"] is None else
                  f"{c['drift_pct_per_year']:+.2f} ± {fmt(c['drift_unc_pct_per_year'], '.2f')}")
         rows.append([c["channel"], fmt(c["wavelength_nm"], "g"), fmt(c["v0_1au"], ".5f"),
                      fmt(c["v0_1au_unc"], ".5f"), fmt(c["repeatability_pct"], ".3f"),
-                     f"{fmt(kept, 'd')}/{fmt(c['n_sessions'], 'd')}", drift,
+                     f"{fmt(kept, 'd')}/{fmt(total, 'd')}", drift,
                      ("yes", "yes") if c["usable"] else ("no", "no"),
                      "; ".join(c["reasons"])])
     parts.append(_table(["channel", "nm", "V0 at 1 AU [V]", "unc [V]", "repeatability [%]",
                          "sessions kept", "drift [%/year]", "usable", "why not"], rows,
                         [False, True, True, True, True, True, True]))
+    charted = [c for c in cal["channels"] if c["sessions"]]
+    if charted:
+        parts.append("<p>Drift: each channel's campaign sessions (V0 at 1 AU), the "
+                     "calibration's mean across the campaign and, with three kept sessions "
+                     "on two dates or more, its drift line (the least-squares trend of the "
+                     "kept sessions, through their mean).</p>")
+        parts.append('<div class="charts">')
+        for c in charted:
+            kept = sum(1 for s in c["sessions"] if not s.get("flagged"))
+            drift = ("no drift: fewer than three kept sessions on two dates"
+                     if c["drift_pct_per_year"] is None else
+                     f"drift {c['drift_pct_per_year']:+.2f} ± "
+                     f"{fmt(c['drift_unc_pct_per_year'], '.2f')} %/year")
+            parts.append(f"<figure>{drift_svg(c, cal['from'], cal['to'])}<figcaption>"
+                         f"Channel {e(c['channel'])} ({c['wavelength_nm']:g} nm): {kept} of "
+                         f"{len(c['sessions'])} sessions kept; {drift}</figcaption></figure>")
+        parts.append("</div>")
     sessions = sorted({(s["date"], s["session"]) for c in cal["channels"]
                        for s in c["sessions"]})
     if sessions:
