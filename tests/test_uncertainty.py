@@ -112,6 +112,87 @@ def test_ozone_term_covers_the_spectrl2_ozone_air_mass():
         "ozone_airmass_model"]
 
 
+def _pvlib_spectrl2_ozone_airmass(zenith_deg: float) -> float:
+    # pvlib's SPECTRL2 (Bird and Riordan 1986) ozone transmittance exp(-a_o O3 M_o),
+    # read back as M_o at 600 nm (a_o > 0 there).
+    from pvlib.spectrum.spectrl2 import _SPECTRL2_COEFFS, _spectrl2_transmittances
+    out = _spectrl2_transmittances(np.array([zenith_deg]), np.array([2.0]),
+                                   np.array([64500.0]), np.array([1.0]), np.array([0.3]),
+                                   np.zeros((122, 1)), np.zeros((122, 1)), 40)
+    i = int(np.argmin(np.abs(_SPECTRL2_COEFFS["wavelength"] - 600.0)))
+    return float(-np.log(out[4][i, 0]) / (_SPECTRL2_COEFFS["ozone_absorption"][i] * 0.3))
+
+
+@pytest.mark.parametrize("zenith_deg", [0.0, 60.0, 75.0, 80.0, 85.0])
+def test_ozone_air_mass_above_the_observer_is_pvlibs_spectrl2(zenith_deg):
+    from daemon.science.atmosphere import ozone_airmass, ozone_airmass_above_observer
+
+    assert ozone_airmass_above_observer(zenith_deg) == pytest.approx(
+        _pvlib_spectrl2_ozone_airmass(zenith_deg), rel=1e-9)
+    # At sea level the two conventions are one spherical shell: Komhyr's form with
+    # R = 6370 km keeps the (h/R)^2 term SPECTRL2 drops (below 2e-3 relative at 85 deg).
+    assert ozone_airmass_above_observer(zenith_deg) == pytest.approx(
+        ozone_airmass(zenith_deg, 0.0), rel=2e-3)
+
+
+def _ozone_bias(m_layer, m_fitter, tau_o3):
+    return float(np.polyfit(M, -tau_o3 * (m_layer - m_fitter), 1)[1])
+
+
+@pytest.mark.parametrize("elevation_m", [0.0, 3650.0])
+def test_ozone_term_spans_both_published_conventions(elevation_m):
+    # The layer at 18-26 km (from memory) in Komhyr's (1980) convention, above sea
+    # level, and in SPECTRL2's (Bird and Riordan 1986, eq. 2-10), above the observer;
+    # each air mass written out here from the papers' formulas (docs/REFERENCES.md) and
+    # the V0 bias taken by numpy.polyfit. The budget is their range: centre and
+    # half-width / sqrt(3) (GUM 4.3.7).
+    config = _config()
+    config = replace(config, site=replace(config.site, elevation_m=elevation_m,
+                                          pressure_hpa=None))
+    ch = config.channel("675")
+    tau_r, tau_o3 = _known_tau(config, ch)
+    shifts, terms = systematic_terms(ch, config, M, tau_r + tau_o3)
+    z = np.radians(solar.apparent_zenith_from_airmass(M))
+    r = elevation_m / 1000.0
+
+    def komhyr(h):
+        return (6371.229 + h) / np.sqrt((6371.229 + h) ** 2 - ((6371.229 + r) * np.sin(z)) ** 2)
+
+    def spectrl2(h):
+        return (1 + h / 6370) / np.sqrt(np.cos(z) ** 2 + 2 * h / 6370)
+
+    fitter = komhyr(22.0)
+    biases = [_ozone_bias(f(h), fitter, tau_o3) for f in (komhyr, spectrl2)
+              for h in (18.0, 26.0)]
+    lo, hi = min(biases), max(biases)
+    assert shifts["ozone_airmass_model"] == pytest.approx(0.5 * (lo + hi), rel=1e-6, abs=1e-9)
+    assert terms["ozone_airmass_model"] == pytest.approx(0.5 * (hi - lo) / math.sqrt(3),
+                                                         rel=1e-6)
+    # SPECTRL2 as published (22 km above the observer) lies inside the range, and at
+    # the mountain site not at its edge (within 80 % of the half-width).
+    bias = _ozone_bias(spectrl2(22.0), fitter, tau_o3)
+    assert abs(bias - 0.5 * (lo + hi)) <= (0.8 if elevation_m else 1.0) * 0.5 * (hi - lo) + 1e-12
+
+
+def test_ozone_optical_depth_term_is_a_tenth_of_the_ozone_correction():
+    # The correction tau_O3 (m_O3 - m) moves V0 by its intercept (numpy.polyfit); an
+    # error of 10 % in tau_O3 (nominal column, cross-section: a judgement, no source)
+    # moves it by a tenth of that. At 675 nm and 260 DU the correction is a few tenths
+    # of a percent of V0 (the README's "about -0.2 %").
+    from daemon.science.atmosphere import ozone_airmass
+    from daemon.science.sessionfit import OZONE_TAU_REL_UNC
+
+    config = _config()
+    ch = config.channel("675")
+    tau_r, tau_o3 = _known_tau(config, ch)
+    _, terms = systematic_terms(ch, config, M, tau_r + tau_o3)
+    z = solar.apparent_zenith_from_airmass(M)
+    correction = np.polyfit(M, tau_o3 * (ozone_airmass(z, config.site.elevation_m) - M), 1)[1]
+    assert 0.001 < abs(correction) < 0.005
+    assert terms["ozone_optical_depth"] == pytest.approx(OZONE_TAU_REL_UNC * abs(correction),
+                                                         rel=1e-6)
+
+
 # --------------------------------------------------------------------------- drift terms
 
 def test_same_day_term_estimates_the_drift_sd():
@@ -210,6 +291,10 @@ def test_stable_independent_sky_window_v0_and_honest_uncertainty():
     for ch in {c for _, c, _, _ in res}:
         errs = [e for _, c, e, _ in res if c == ch]
         assert abs(float(np.mean(errs))) < 0.0015, (ch, np.mean(errs))
+        # and per channel, 675 nm included (its ozone air mass is the sky's SPECTRL2
+        # one, the other convention the budget's ozone term spans)
+        z_ch = np.array([e / u for _, c, e, u in res if c == ch])
+        assert lo < float(np.sqrt(np.mean(z_ch ** 2))) < hi, (ch, z_ch)
 
 
 @pytest.mark.slow

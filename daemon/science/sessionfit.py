@@ -190,7 +190,9 @@ def extinction_corrections(series: ChannelSeries, channel: Channel,
 AEROSOL_SCALE_HEIGHTS_KM = (0.5, 3.0)
 #: Heights of the ozone layer the budget spans [km]: the fitter's layer is at 22 km
 #: (Komhyr 1980); the ozone maximum lies between about 18 and 26 km with latitude and
-#: season (from memory).
+#: season (from memory). The budget takes them in both published conventions, above
+#: sea level (Komhyr 1980) and above the observer (SPECTRL2: Bird and Riordan 1986,
+#: eq. 2-10), see :func:`ozone_layer_airmasses`.
 OZONE_LAYER_HEIGHTS_KM = (18.0, 26.0)
 #: Gaussian FWHM to standard deviation: 2 sqrt(2 ln 2) (common practice, no source).
 FWHM_PER_SD = 2.0 * math.sqrt(2.0 * math.log(2.0))
@@ -199,7 +201,15 @@ FWHM_PER_SD = 2.0 * math.sqrt(2.0 * math.log(2.0))
 RAYLEIGH_EXPONENT = 4.0
 #: Budget terms the sessions of a campaign share: dividing them by the number of
 #: sessions would claim an accuracy the model does not have.
-SYSTEMATIC_TERMS = ("filter_width", "aerosol_layer_airmass", "ozone_airmass_model")
+SYSTEMATIC_TERMS = ("filter_width", "aerosol_layer_airmass", "ozone_airmass_model",
+                    "ozone_optical_depth")
+#: Relative standard uncertainty of the ozone optical depth the correction uses [fraction]:
+#: the configured nominal column against the day's (total ozone varies by some 5-10 %
+#: from day to day and with the season; from memory) and the band's cross-section
+#: (published tables differ by a few per cent in the Chappuis band, more on its wings,
+#: and a rectangle of the bandwidth stands for the real filter; from memory). A
+#: judgement, no source; a configured cross-section does not remove the column's part.
+OZONE_TAU_REL_UNC = 0.10
 #: Drift rate [optical depth per hour] for the statement of what one session cannot see.
 UNSEEN_DRIFT_PER_HOUR = 0.001
 
@@ -233,7 +243,8 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
         ``shifts``: the expected bias of the fitted ln V0 by name, to be subtracted
         [ln V]; ``terms``: the relative standard uncertainties of V0 left after that
         [fraction], by the same names: ``filter_width``, ``aerosol_layer_airmass``,
-        ``ozone_airmass_model`` (both empty without two distinct air masses).
+        ``ozone_airmass_model``, and in ``terms`` only ``ozone_optical_depth``
+        (both empty without two distinct air masses).
 
     Notes
     -----
@@ -250,14 +261,23 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
     :func:`daemon.science.atmosphere.ozone_airmass`), ``tau_a`` the fitted optical
     depth minus Rayleigh and ozone.
 
-    ``ozone_airmass_model``: ``-tau_O3 (m_O3(h) - m_O3(22 km))`` for layer heights
-    :data:`OZONE_LAYER_HEIGHTS_KM`.
+    ``ozone_airmass_model``: ``-tau_O3 (m_h - m_O3(22 km))`` over the published ozone
+    air masses :func:`ozone_layer_airmasses` gives (Komhyr's shell at
+    :data:`OZONE_LAYER_HEIGHTS_KM` above sea level, and SPECTRL2's formula with those
+    heights above the observer); the range is their smallest to largest shift. At a
+    sea-level station both conventions agree; at 3650 m the second puts the layer up
+    to 3.65 km higher, which widens and moves the range.
 
-    The last two are biases known to lie within a range: corrected to its middle, with
-    the rectangular half-width over sqrt(3) as the uncertainty (JCGM 100:2008, GUM,
-    sec. 4.3.7). The band term is corrected in full; a quarter of it stays as its
-    uncertainty (the filter's real shape, the solar spectrum's slope across it and the
-    exponent 4 against 4.05; a judgement, no source).
+    ``ozone_optical_depth``: the ozone correction ``tau_O3 (m_O3 - m)`` is only as good
+    as ``tau_O3``; :data:`OZONE_TAU_REL_UNC` of its intercept, not corrected (the
+    error has no known sign).
+
+    The layer and ozone air-mass terms are biases known to lie within a range:
+    corrected to its middle, with the rectangular half-width over sqrt(3) as the
+    uncertainty (JCGM 100:2008, GUM, sec. 4.3.7). The band term is corrected in full;
+    a quarter of it stays as its uncertainty (the filter's real shape, the solar
+    spectrum's slope across it and the exponent 4 against 4.05; a judgement, no
+    source).
     """
     from daemon.science.atmosphere import ozone_airmass
 
@@ -287,14 +307,36 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
     layer = [shift(-tau_a * (ozone_airmass(z, elev_m, site_km + h) - m))
              for h in AEROSOL_SCALE_HEIGHTS_KM]
     m_o3 = ozone_airmass(z, elev_m)
-    ozone = [shift(-tau_o3 * (ozone_airmass(z, elev_m, h) - m_o3))
-             for h in OZONE_LAYER_HEIGHTS_KM]
+    ozone = [shift(-tau_o3 * (m_h - m_o3)) for m_h in ozone_layer_airmasses(z, elev_m)]
     shifts = {"filter_width": width, "aerosol_layer_airmass": 0.5 * (layer[0] + layer[1]),
-              "ozone_airmass_model": 0.5 * (ozone[0] + ozone[1])}
+              "ozone_airmass_model": 0.5 * (min(ozone) + max(ozone))}
     terms = {"filter_width": BAND_MODEL_SHARE * abs(width),
              "aerosol_layer_airmass": 0.5 * abs(layer[1] - layer[0]) / math.sqrt(3.0),
-             "ozone_airmass_model": 0.5 * abs(ozone[1] - ozone[0]) / math.sqrt(3.0)}
+             "ozone_airmass_model": 0.5 * (max(ozone) - min(ozone)) / math.sqrt(3.0),
+             "ozone_optical_depth": OZONE_TAU_REL_UNC * abs(shift(tau_o3 * (m_o3 - m)))}
     return shifts, terms
+
+
+def ozone_layer_airmasses(apparent_zenith_deg: np.ndarray,
+                          station_height_m: float) -> list[np.ndarray]:
+    """The ozone air masses the budget's ``ozone_airmass_model`` term spans.
+
+    Komhyr's spherical shell (:func:`daemon.science.atmosphere.ozone_airmass`, the
+    layer height above sea level) and SPECTRL2's formula
+    (:func:`daemon.science.atmosphere.ozone_airmass_above_observer`, Bird and Riordan
+    1986, eq. 2-10: the height above the observer), each at both ends of
+    :data:`OZONE_LAYER_HEIGHTS_KM`. Two published models of the same path that differ
+    by their convention at a mountain station: which one the real sky follows no
+    session can tell, so the budget spans both. A layer end at or below the station
+    is left out of Komhyr's (the formula needs the layer above the observer).
+    """
+    from daemon.science.atmosphere import ozone_airmass, ozone_airmass_above_observer
+
+    out = [ozone_airmass(apparent_zenith_deg, station_height_m, h)
+           for h in OZONE_LAYER_HEIGHTS_KM if h > station_height_m / 1000.0]
+    out += [ozone_airmass_above_observer(apparent_zenith_deg, h)
+            for h in OZONE_LAYER_HEIGHTS_KM]
+    return [np.asarray(m, dtype=float) for m in out]
 
 
 def model_terms(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float,
@@ -307,7 +349,7 @@ def model_terms(channel: Channel, config: Config, airmass: np.ndarray, tau_total
     shifts, terms = systematic_terms(channel, config, airmass, tau_total, pressure_hpa)
     if config.fit.correct_model_terms:
         return shifts, terms
-    return {}, {k: math.hypot(u, shifts[k]) for k, u in terms.items()}
+    return {}, {k: math.hypot(u, shifts.get(k, 0.0)) for k, u in terms.items()}
 
 
 def shared_unc(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float) -> float:
