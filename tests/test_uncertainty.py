@@ -193,6 +193,48 @@ def test_ozone_optical_depth_term_is_a_tenth_of_the_ozone_correction():
                                                          rel=1e-6)
 
 
+def test_aerosol_at_940_nm_uncertainty_matches_monte_carlo():
+    # The 940 nm fit takes the aerosol from two window channels by the Angstrom law;
+    # the first-order propagation of their slopes' uncertainties (GUM eq. 10) against
+    # a Monte Carlo propagation of the same law (JCGM 101:2008, numpy draws).
+    from daemon.science.sessionfit import aerosol_at, aerosol_unc_at
+
+    aerosol = {870.0: 0.0110, 1020.0: 0.0090, 500.0: 0.02}
+    unc = {870.0: 0.0003, 1020.0: 0.0004, 500.0: 0.0002}
+    u = aerosol_unc_at(940.0, aerosol, unc)
+    rng = np.random.default_rng(3)
+    t1 = rng.normal(0.0110, 0.0003, 20_000)
+    t2 = rng.normal(0.0090, 0.0004, 20_000)
+    draws = [aerosol_at(940.0, {870.0: a, 1020.0: b})[0] for a, b in zip(t1, t2, strict=True)]
+    assert u == pytest.approx(float(np.std(draws)), rel=0.03)
+    assert aerosol_unc_at(940.0, {870.0: 0.011}, unc) == 0.0  # no pair, no aerosol used
+    assert math.isnan(aerosol_unc_at(940.0, aerosol, {}))  # unknown, never silently zero
+
+
+def test_the_940_nm_budget_carries_the_window_channels_aerosol():
+    # One session on the independent sky: the term is half the change of ln V0 when the
+    # aerosol moves by its uncertainty; a curved pattern against m^b (numpy.polyfit of
+    # delta_tau m against the regressor, here independently) moves the intercept by a
+    # few times delta_tau.
+    import datetime as dt
+
+    scenario = load_scenario("pico-sereno-independent")
+    config = config_for(scenario)
+    s = session_series(scenario, dt.date(2025, 2, 12), "am", seed=3,
+                       burst_noise_relative=0.001)
+    rows = {r["channel"]: r for r in fit_series(channel_series(s, config), config,
+                                                "2025-02-12", "am")}
+    row = rows["940"]
+    assert row["accepted"], row["reasons"]
+    term = row["uncertainty_budget"]["aerosol_from_window_channels"]
+    b = row["wv_b"]
+    m = np.linspace(2.0, 6.0, 41)
+    lever = abs(np.polyfit(m ** b, m, 1)[1])  # intercept of m against m^b, per unit tau
+    assert 1.5 < lever < 5.0
+    assert 0.2 * lever * 1e-4 < term < lever * 1e-3  # u(tau_a) of 0.00002-0.001
+    assert "aerosol from window channels" in " ".join(row["notes"])
+
+
 # --------------------------------------------------------------------------- drift terms
 
 def test_same_day_term_estimates_the_drift_sd():

@@ -454,19 +454,49 @@ def aerosol_at(wavelength_nm: float, aerosol: Mapping[float, float]) -> tuple[fl
         nearest in wavelength, one on each side where possible (Angstrom, A. 1929,
         Geogr. Ann. 11:156-166); None with fewer than two positive values.
     """
+    pair = _angstrom_pair(wavelength_nm, aerosol)
+    if pair is None:
+        return None
+    (w1, t1), (w2, t2) = pair
+    alpha = -math.log(t2 / t1) / math.log(w2 / w1)
+    tau = t1 * (wavelength_nm / w1) ** (-alpha)
+    return tau, f"{w1:g} and {w2:g} nm (Angstrom exponent {alpha:.2f})"
+
+
+def _angstrom_pair(wavelength_nm: float, aerosol: Mapping[float, float]
+                   ) -> tuple[tuple[float, float], tuple[float, float]] | None:
+    """The two (wavelength, tau) of :func:`aerosol_at`, shorter wavelength first."""
     positive = sorted((w, t) for w, t in aerosol.items() if t > 0.0 and math.isfinite(t))
     if len(positive) < 2:
         return None
     below = [wt for wt in positive if wt[0] <= wavelength_nm]
     above = [wt for wt in positive if wt[0] > wavelength_nm]
     if below and above:
-        (w1, t1), (w2, t2) = below[-1], above[0]
-    else:
-        near = sorted(positive, key=lambda wt: abs(wt[0] - wavelength_nm))[:2]
-        (w1, t1), (w2, t2) = sorted(near)
-    alpha = -math.log(t2 / t1) / math.log(w2 / w1)
-    tau = t1 * (wavelength_nm / w1) ** (-alpha)
-    return tau, f"{w1:g} and {w2:g} nm (Angstrom exponent {alpha:.2f})"
+        return below[-1], above[0]
+    near = sorted(positive, key=lambda wt: abs(wt[0] - wavelength_nm))[:2]
+    first, second = sorted(near)
+    return first, second
+
+
+def aerosol_unc_at(wavelength_nm: float, aerosol: Mapping[float, float],
+                   unc: Mapping[float, float]) -> float:
+    """Standard uncertainty of :func:`aerosol_at` from the window channels' own [tau].
+
+    ``ln tau(lambda) = (1 - f) ln t1 + f ln t2`` with ``f = ln(lambda/w1) / ln(w2/w1)``
+    (the Angstrom law through the two channels), so the relative uncertainties of
+    ``t1`` and ``t2`` (their fits' slope uncertainties, independent sessions of
+    independent channels) add as ``(1 - f) u1/t1`` and ``f u2/t2`` in quadrature
+    (first-order propagation, JCGM 100:2008, GUM, eq. 10). NaN when a channel's
+    uncertainty is unknown; 0.0 without a pair.
+    """
+    pair = _angstrom_pair(wavelength_nm, aerosol)
+    if pair is None:
+        return 0.0
+    (w1, t1), (w2, t2) = pair
+    f = math.log(wavelength_nm / w1) / math.log(w2 / w1)
+    tau = t1 * (t2 / t1) ** f
+    u1, u2 = unc.get(w1, math.nan), unc.get(w2, math.nan)
+    return tau * math.hypot((1.0 - f) * u1 / t1, f * u2 / t2)
 
 
 # --------------------------------------------------------------------------- rows
@@ -629,6 +659,7 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
     """
     rows: dict[str, dict[str, Any]] = {}
     aerosol: dict[float, float] = {}
+    aerosol_unc: dict[float, float] = {}
     empty = ChannelSeries(*(np.empty(0),) * 5, n_total=0, hours=np.empty(0))
     for channel in config.channels:
         if channel.water_vapour:
@@ -652,17 +683,19 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
         rows[channel.name] = row
         if row["accepted"] and math.isfinite(row["tau_aerosol"]):
             aerosol[channel.wavelength_nm] = row["tau_aerosol"]
+            aerosol_unc[channel.wavelength_nm] = fit.tau_unc
     for channel in config.channels:
         if channel.water_vapour:
             s = series.get(channel.name, empty)
             rows[channel.name] = _water_vapour_row(s, channel, config, aerosol, plan_date,
-                                                   session, repeatability)
+                                                   session, repeatability, aerosol_unc)
     return [rows[c.name] for c in config.channels]
 
 
 def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
                       aerosol: Mapping[float, float], plan_date: str, session: str,
-                      repeatability: Mapping[str, float] | None = None) -> dict[str, Any]:
+                      repeatability: Mapping[str, float] | None = None,
+                      aerosol_unc: Mapping[float, float] | None = None) -> dict[str, Any]:
     """The modified Langley: ln V plus the known extinctions against m^b.
 
     ``V = V0 exp(-tau_R m - tau_O3 m_O3 - tau_a m - a (W m)^b)`` for a water-vapour
@@ -706,7 +739,9 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
         return tau_r_i * m + tau_o3 * m_o3 + tau_a[0] * m
 
     known = known_extinction(s.airmass, s.ozone_airmass, s.pressure_hpa)
-    fit, wv, u_b_rel = water_vapour_fit(s, channel, config, known, p_ref)
+    u_tau_a = aerosol_unc_at(channel.wavelength_nm, aerosol, aerosol_unc or {})
+    fit, wv, u_b_rel = water_vapour_fit(s, channel, config, known, p_ref,
+                                        known_unc=u_tau_a * s.airmass)
     b = wv.b
     m_w = water_vapour_airmass_from_kasten_young(s.airmass)
     rep = (repeatability or {}).get(channel.name)
@@ -734,7 +769,8 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
 
 
 def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: np.ndarray,
-                     pressure_hpa: float) -> tuple[FitResult, Any, float]:
+                     pressure_hpa: float, known_unc: np.ndarray | None = None
+                     ) -> tuple[FitResult, Any, float]:
     """The modified-Langley fit with a, b from the filter, and b's share of V0's uncertainty.
 
     The regressor is ``m_w^b`` with ``m_w`` the water-vapour air mass (Kasten 1965,
@@ -746,9 +782,15 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
     session's column ``W = (slope / a)^(1/b)``; then a, b again over that column
     +/- :data:`WATER_VAPOUR_REFINE` (the session's own range) and the final fit. The fit
     is repeated with ``b +/- u_b``; half the change of ln V0 is b's part of V0's
-    relative uncertainty, added in quadrature to the fit's.
+    relative uncertainty, added in quadrature to the fit's. ``known_unc``, one standard
+    uncertainty of ``known`` per point (the aerosol taken from the window channels,
+    ``u(tau_a) m``), is propagated the same way: the fit repeated with ``known +/-
+    known_unc``, half the change of ln V0 as the ``aerosol_from_window_channels`` term
+    (a wrong aerosol adds ``delta tau_a m``, which is curved against ``m_w^b`` and so
+    moves the intercept, not only the slope).
 
-    Returns the fit (``v0_rel_unc`` including b's part), the constants used and b's part.
+    Returns the fit (``v0_rel_unc`` including b's and the aerosol's parts), the
+    constants used and b's part.
     """
     from daemon.science.watervapour import (  # pvlib: only for this channel
         derive_constants,
@@ -763,8 +805,8 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
     lo, hi = water_vapour_airmass_from_kasten_young(np.array(window))
     settings = replace(config.fit, airmass_min=float(lo), airmass_max=float(hi))
 
-    def run(b: float) -> FitResult:
-        return fit_session(m_w, s.signal_v, settings, ln_correction=known,
+    def run(b: float, correction: np.ndarray = known) -> FitResult:
+        return fit_session(m_w, s.signal_v, settings, ln_correction=correction,
                            regressor_exponent=b, hours=s.hours, burst_sd_ln=s.burst_sd_ln)
 
     wv = derive_constants(spec, pressure_hpa, window, channel.water_vapour_range_cm)
@@ -781,7 +823,11 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
     up, down = run(wv.b + wv.u_b), run(wv.b - wv.u_b)
     u_b_rel = abs(up.ln_v0 - down.ln_v0) / 2.0 if math.isfinite(up.ln_v0 + down.ln_v0) \
         else math.nan
-    return with_terms(fit, {"water_vapour_exponent": u_b_rel}), wv, u_b_rel
+    terms = {"water_vapour_exponent": u_b_rel}
+    if known_unc is not None and np.any(np.asarray(known_unc) != 0.0):
+        up, down = run(wv.b, known + known_unc), run(wv.b, known - known_unc)
+        terms["aerosol_from_window_channels"] = abs(up.ln_v0 - down.ln_v0) / 2.0
+    return with_terms(fit, terms), wv, u_b_rel
 
 
 #: The session's own column range for the refined a, b: its first estimate times or
