@@ -393,7 +393,9 @@ def unseen_note(fit: FitResult, hours: np.ndarray | None, airmass: np.ndarray) -
     return (f"not visible in one session: a steady drift of the optical depth of "
             f"{UNSEEN_DRIFT_PER_HOUR:g} per hour keeps the plot straight and moves V0 by "
             f"{100 * shift:.2f} %; the same day's other session and the campaign's "
-            "repeatability are the checks")
+            "repeatability are the checks. A change both sessions of a day share (a haze "
+            "that peaks near noon) moves them alike, and one that recurs every day moves "
+            "the campaign too: no check here sees it (Shaw 1983)")
 
 
 def budget_terms(fit: FitResult, channel: Channel, config: Config, s: ChannelSeries,
@@ -845,6 +847,11 @@ def water_vapour_row_keys(wv: Any, fit: FitResult, u_b_rel: float) -> dict[str, 
 
 # --------------------------------------------------------------------------- same day
 
+#: How the day check's refusal begins (:func:`day_disagreements`);
+#: :func:`daemon.science.campaign.same_day_pair_sd` recognises it.
+DAY_CHECK_REASON = "morning and afternoon V0 at 1 AU differ by"
+
+
 def day_disagreements(am_rows: Sequence[Mapping[str, Any]], pm_rows: Sequence[Mapping[str, Any]],
                       settings: FitSettings) -> dict[str, str]:
     """Channels whose morning and afternoon V0 at 1 AU disagree, with the reason.
@@ -872,7 +879,7 @@ def day_disagreements(am_rows: Sequence[Mapping[str, Any]], pm_rows: Sequence[Ma
         limit = max(settings.max_am_pm_difference, 3.0 * math.hypot(u_am, u_pm))
         if abs(diff) > limit:
             out[pm["channel"]] = (
-                f"morning and afternoon V0 at 1 AU differ by {100 * diff:+.2f} % (allowed "
+                f"{DAY_CHECK_REASON} {100 * diff:+.2f} % (allowed "
                 f"{100 * limit:.2f} %): the optical depth drifted during the day")
     return out
 
@@ -918,9 +925,23 @@ def add_same_day_terms(am_rows: Sequence[dict[str, Any]],
         term = same_day_term(u_am, u_pm, diff)
         out[pm["channel"]] = term
         for row, u in ((a, u_am), (pm, u_pm)):
+            # Rows of the result contract alone (no notes: a stored morning) stay as
+            # they are; the widening's note stays the last (the service stores it).
+            if "notes" in row and "campaign_repeatability" not in (
+                    row.get("uncertainty_budget") or {}):
+                row["notes"] = [*row["notes"], ONE_PAIR_NOTE]
             _widen(row, u, term, f"drift allowance {100 * term:.3f} % from the same day's "
                                  f"morning and afternoon V0 ({100 * diff:+.3f} % apart)")
     return out
+
+
+#: Said of a session whose drift allowance rests on its own day alone.
+ONE_PAIR_NOTE = ("no campaign repeatability in this uncertainty: its drift allowance rests "
+                 "on this day's two sessions alone, one degree of freedom (two sessions "
+                 "that drifted alike agree by chance, and on a slowly varying sky the "
+                 "stated uncertainty is then several times too small); a stored "
+                 "calibration's repeatability, from its sessions' spread and its same-day "
+                 "pairs, is the allowance from many days (heliotrope calibrate)")
 
 
 def _widen(row: dict[str, Any], unc: float, term: float, why: str) -> None:
