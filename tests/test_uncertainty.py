@@ -143,9 +143,9 @@ def _ozone_bias(m_layer, m_fitter, tau_o3):
 def test_ozone_term_spans_both_published_conventions(elevation_m):
     # The layer at 18-26 km (from memory) in Komhyr's (1980) convention, above sea
     # level, and in SPECTRL2's (Bird and Riordan 1986, eq. 2-10), above the observer;
-    # each air mass written out here from the papers' formulas (docs/REFERENCES.md) and
-    # the V0 bias taken by numpy.polyfit. The budget is their range: centre and
-    # half-width / sqrt(3) (GUM 4.3.7).
+    # each air mass written out here (Komhyr's as in docs/REFERENCES.md, SPECTRL2's
+    # eq. 2-10 as held to pvlib above) and the V0 bias taken by numpy.polyfit. The
+    # budget is their range: centre and half-width / sqrt(3) (GUM 4.3.7).
     config = _config()
     config = replace(config, site=replace(config.site, elevation_m=elevation_m,
                                           pressure_hpa=None))
