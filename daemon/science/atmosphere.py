@@ -117,7 +117,8 @@ def ozone_airmass_above_observer(apparent_zenith_deg: ArrayLike,
 
     ``M_o = (1 + h/R) / sqrt(cos^2 z + 2 h/R)``, R = 6370 km, h the layer's height
     above the observer: Bird and Riordan (1986), SERI/TR-215-2436 and J. Clim. Appl.
-    Meteorol. 25:87-97, eq. 2-10 (after Iqbal 1983), with h = 22 km there; the same
+    Meteorol. 25:87-97, eq. 2-10 (after Iqbal 1983; citations from memory, the formula
+    as pvlib has it), with h = 22 km there; the same
     formula pvlib's ``spectrum.spectrl2`` evaluates (tests/test_uncertainty.py holds
     it to pvlib). It has no station height: at a mountain station it puts the layer
     higher above sea level than Komhyr's form (:func:`ozone_airmass`) with the same h,

@@ -60,9 +60,9 @@ class ChannelCalibration:
 
     ``v0_1au`` [V] is the mean of the sessions kept, ``v0_1au_unc`` [V] its standard
     uncertainty (:func:`campaign_uncertainty`), ``repeatability_pct`` the rms spread of
-    the kept sessions about it [percent], ``drift_pct_per_year``
-    the slope of V0 against time relative to the mean [percent per year] (None with
-    fewer than three kept sessions on two or more dates). ``sessions`` lists every
+    the kept sessions about it [percent], ``drift_pct_per_year`` the slope of V0 against
+    time relative to the mean [percent per year] (None with fewer than three kept
+    sessions on two or more dates). ``sessions`` lists every
     session with its deviation and whether it was flagged; ``usable`` is False when
     fewer than the required sessions are kept, and ``reasons`` says why.
     """
@@ -312,7 +312,7 @@ def drift_repeatability(channels: Sequence[Mapping[str, Any]],
         allowance (:func:`daemon.science.sessionfit.drift_allowance`). The accepted
         sessions' spread alone understates a drifting sky's, because the day check
         refused the pairs that disagreed most (Schmid and Wehrli 1995 on repeatability,
-        Shaw 1983 on drift; from memory).
+        docs/REFERENCES.md; Shaw 1983 on drift, from memory).
     """
     out = {}
     for c in channels:
