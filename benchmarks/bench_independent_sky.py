@@ -14,21 +14,33 @@ haze (+0.03 at 500 nm, 2 h wide); cirrus (a 25 min and a 20 min band, optical de
 0.05 and 0.08, patchy); a pressure ramp (-1 hPa/h); a western site (150 W) whose
 afternoon crosses 00 h UTC; 940 nm at 0.2, 0.5, 1.0 and 2.0 cm.
 
-Per case and channel it prints: sessions, accepted share, our V0-at-1-AU error (mean
-and rms, all sessions; percent), the median stated uncertainty, the rms of
-error/uncertainty over all sessions and over the accepted ones, and polyfit's rms
-error.
+Per case and channel it prints, first for each session fitted alone: sessions, the
+accepted share, our V0-at-1-AU error (mean and rms over all sessions; percent), the
+median stated uncertainty, the rms of error/uncertainty over all sessions and over
+the accepted ones; then as the service states it: after the afternoon's same-day
+check (:func:`daemon.science.sessionfit.apply_day_check`: a disagreeing pair refused,
+both sessions widened for their disagreement), the accepted share, the median stated
+uncertainty and rms(error/uncertainty) of the accepted sessions; then the same with
+a stored campaign's repeatability as drift allowance (``--prior-days`` earlier days
+of the same kind of sky, other seeds, fitted and day-checked as the service does,
+combined by :func:`daemon.science.campaign.campaign` as ``heliotrope calibrate``
+stores it, and handed to the fit by
+:func:`daemon.science.campaign.drift_repeatability` as the service's
+``campaign_repeatability`` does); and polyfit's rms error.
 
-    .venv/bin/python benchmarks/bench_independent_sky.py [--days 25] [--noise 0.001]
+    nice -n 10 .venv/bin/python benchmarks/bench_independent_sky.py [--days 25]
+        [--noise 0.001] [--prior-days 10] [--cases stable,sinusoid,...]
 """
 
 from __future__ import annotations
 
 import argparse
+import copy
+import datetime as dt
 import math
 import sys
 import time
-from dataclasses import replace
+from dataclasses import asdict, replace
 from pathlib import Path
 
 import numpy as np
@@ -38,6 +50,7 @@ sys.path.insert(0, str(ROOT))
 
 from daemon.science.sessionfit import (  # noqa: E402
     aerosol_at,
+    apply_day_check,
     extinction_corrections,
     fit_series,
 )
@@ -99,54 +112,102 @@ def polyfit_v0(by_channel, name, config, rows) -> float:
         s.earth_sun_factor[inside].mean())
 
 
-def run(n_days: int, noise: float) -> None:
+def day_rows(scen, config, day, seed: int, noise: float, repeatability=None):
+    """One day's two sessions as the service fits them: (series, channel series, rows
+    alone, rows after the same-day check) per session."""
+    out = {}
+    for session in ("am", "pm"):
+        series = session_series(scen, day, session, seed=seed, burst_noise_relative=noise)
+        by_channel = channel_series(series, config)
+        rows = fit_series(by_channel, config, series.local_date.isoformat(), session,
+                          repeatability)
+        out[session] = [series, by_channel, copy.deepcopy(rows), rows]
+    apply_day_check(out["am"][3], out["pm"][3], config.fit)
+    return out
+
+
+def stored_repeatability(scen, config, n_days: int, noise: float) -> dict[str, float]:
+    """What ``heliotrope calibrate`` would store from a prior campaign on the same kind of
+    sky: ``n_days`` other days (other seeds), fitted and day-checked as the service does."""
+    from daemon.science.campaign import campaign, drift_repeatability
+
+    rows = []
+    for i, d in enumerate(days(n_days, dt.date(2025, 6, 1))):
+        for _, _, _, checked in day_rows(scen, config, d, 1000 + i, noise).values():
+            rows.extend(checked)
+    # What daemon.station.fitting.campaign_repeatability hands the session fit.
+    return drift_repeatability([asdict(c) for c in campaign(rows, config)], rows)
+
+
+def _rms(a) -> float:
+    a = np.asarray(a, dtype=float)
+    return float(np.sqrt(np.mean(np.square(a)))) if a.size else math.nan
+
+
+def run(n_days: int, noise: float, prior_days: int, wanted: set[str] | None) -> None:
     base = load_scenario("pico-sereno-independent")
     print(f"Independent sky, {n_days} days x am/pm per case, burst-mean noise "
-          f"{100 * noise:.2f} %; V0 at 1 AU errors in percent")
+          f"{100 * noise:.2f} %; V0 at 1 AU errors in percent; 'day' = after the same-day "
+          f"check, 'camp' = with the repeatability of a prior {prior_days}-day campaign "
+          "and the same-day check")
     print(f"{'case':14} {'ch':>5} {'n':>3} {'acc':>5} {'mean':>7} {'rms':>6} {'u_med':>6} "
-          f"{'z_all':>6} {'z_acc':>6} {'polyfit':>8}")
+          f"{'z_all':>6} {'z_acc':>6} | {'acc':>5} {'u_med':>6} {'z_acc':>6} | "
+          f"{'acc':>5} {'u_med':>6} {'z_acc':>6} | {'polyfit':>8}")
     t0 = time.perf_counter()
     n_fits = 0
     for label, scen, names in cases(base):
+        if wanted and label not in wanted:
+            continue
         config = config_for(scen)
-        res = {n: {"err": [], "u": [], "acc": [], "poly": []} for n in names}
+        rep = stored_repeatability(scen, config, prior_days, noise) if prior_days else None
+        n_fits += 2 * prior_days
+        res = {n: {k: [] for k in ("err", "u", "acc", "u_day", "acc_day", "u_camp",
+                                   "acc_camp", "poly")} for n in names}
         for d in days(n_days):
-            for session in ("am", "pm"):
-                series = session_series(scen, d, session, seed=11,
-                                        burst_noise_relative=noise)
-                by_channel = channel_series(series, config)
-                rows = {r["channel"]: r for r in fit_series(
-                    by_channel, config, series.local_date.isoformat(), session)}
-                n_fits += 1
+            first = day_rows(scen, config, d, 11, noise)
+            camp = day_rows(scen, config, d, 11, noise, rep) if rep else None
+            n_fits += 4 if rep else 2
+            for session, (series, by_channel, alone, checked) in first.items():
+                alone_by = {r["channel"]: r for r in alone}
+                checked_by = {r["channel"]: r for r in checked}
+                camp_by = {r["channel"]: r for r in camp[session][3]} if camp else {}
                 for n in names:
-                    row = rows[n]
-                    r = res[n]
+                    row, r = alone_by[n], res[n]
                     v0 = row["v0_1au"]
                     r["err"].append(v0_error(row, series) if v0 is not None and
                                     math.isfinite(v0) else math.nan)
                     r["u"].append(row["v0_rel_unc"] if row["v0_rel_unc"] is not None
                                   else math.nan)
                     r["acc"].append(bool(row["accepted"]))
-                    pv = polyfit_v0(by_channel, n, config, rows)
+                    r["u_day"].append(checked_by[n]["v0_rel_unc"])
+                    r["acc_day"].append(bool(checked_by[n]["accepted"]))
+                    c = camp_by.get(n, checked_by[n])
+                    r["u_camp"].append(c["v0_rel_unc"])
+                    r["acc_camp"].append(bool(c["accepted"]))
+                    pv = polyfit_v0(by_channel, n, config, alone_by)
                     r["poly"].append(pv / series.truth[n].v0_1au_v - 1.0)
         for n in names:
             r = {k: np.asarray(v, dtype=float) for k, v in res[n].items()}
             ok = np.isfinite(r["err"]) & np.isfinite(r["u"]) & (r["u"] > 0)
-            z = r["err"][ok] / r["u"][ok]
             acc = r["acc"].astype(bool)
-            z_acc = r["err"][ok & acc] / r["u"][ok & acc]
+            cols = []
+            for u_key, a_key in (("u_day", "acc_day"), ("u_camp", "acc_camp")):
+                a = r[a_key].astype(bool) & ok
+                u_med = float(np.median(r[u_key][a])) if a.any() else math.nan
+                cols.append(f"{100 * a.mean():4.0f}% {100 * u_med:6.3f} "
+                            f"{_rms(r['err'][a] / r[u_key][a]):6.2f}")
             poly = r["poly"][np.isfinite(r["poly"])]
-
-            def rms(a):
-                return float(np.sqrt(np.mean(np.square(a)))) if a.size else math.nan
-
             print(f"{label:14} {n:>5} {len(acc):3d} {100 * acc.mean():4.0f}% "
-                  f"{100 * np.nanmean(r['err']):+7.3f} {100 * rms(r['err'][ok]):6.3f} "
-                  f"{100 * np.nanmedian(r['u']):6.3f} {rms(z):6.2f} {rms(z_acc):6.2f} "
-                  f"{100 * rms(poly):8.3f}")
-    dt = time.perf_counter() - t0
-    print(f"{n_fits} simulated and fitted sessions in {dt:.1f} s "
-          f"({1000 * dt / max(n_fits, 1):.0f} ms each, simulation included)")
+                  f"{100 * np.nanmean(r['err']):+7.3f} {100 * _rms(r['err'][ok]):6.3f} "
+                  f"{100 * np.nanmedian(r['u']):6.3f} {_rms(r['err'][ok] / r['u'][ok]):6.2f} "
+                  f"{_rms(r['err'][ok & acc] / r['u'][ok & acc]):6.2f} | {cols[0]} | "
+                  f"{cols[1]} | {100 * _rms(poly):8.3f}")
+        if rep:
+            print(f"{'':14} stored repeatability [%]: " + ", ".join(
+                f"{k} {100 * v:.3f}" for k, v in rep.items()))
+    dt_s = time.perf_counter() - t0
+    print(f"{n_fits} simulated and fitted sessions in {dt_s:.1f} s "
+          f"({1000 * dt_s / max(n_fits, 1):.0f} ms each, simulation included)")
 
 
 def main() -> None:
@@ -154,8 +215,14 @@ def main() -> None:
     ap.add_argument("--days", type=int, default=25, help="days per case (x2 sessions)")
     ap.add_argument("--noise", type=float, default=0.001,
                     help="relative noise of a burst mean (0.0005-0.002)")
+    ap.add_argument("--prior-days", type=int, default=10,
+                    help="days of the prior campaign whose repeatability the service uses "
+                         "(0: none)")
+    ap.add_argument("--cases", default="",
+                    help="comma-separated case labels to run (default all)")
     args = ap.parse_args()
-    run(args.days, args.noise)
+    wanted = {c.strip() for c in args.cases.split(",") if c.strip()} or None
+    run(args.days, args.noise, args.prior_days, wanted)
 
 
 if __name__ == "__main__":

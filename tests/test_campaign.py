@@ -47,6 +47,109 @@ def test_mean_repeatability_and_count_agree_with_the_statistics_module():
     assert (c.n_sessions, c.n_flagged, c.usable, c.reasons) == (7, 0, True, [])
 
 
+def _pair_rows(d, accepted=True, first_reason=None):
+    rows = []
+    for i, diff in enumerate(d):
+        date = (dt.date(2027, 2, 1) + dt.timedelta(days=i)).isoformat()
+        for session, v in (("am", 1.5), ("pm", 1.5 * (1 + diff))):
+            reasons = [] if accepted else [first_reason]
+            rows.append({"date": date, "session": session, "channel": "500",
+                         "v0_1au": v, "accepted": accepted, "reasons": reasons})
+    return rows
+
+
+def test_same_day_pairs_give_the_sessions_spread():
+    # Duplicate pairs: the SD of one measurement is sqrt(sum d^2 / 2n) (Dahlberg's
+    # formula, from memory); Monte Carlo with independent normal session errors of
+    # 1 % (numpy draws) within the chi-square 99.9 % interval for n pairs (scipy).
+    from daemon.science.campaign import same_day_pair_sd
+    from daemon.science.sessionfit import DAY_CHECK_REASON
+
+    rng = np.random.default_rng(5)
+    e = rng.normal(0.0, 0.01, (2, 200))
+    d = (1 + e[1]) / (1 + e[0]) - 1.0
+    sd, n = same_day_pair_sd(_pair_rows(d))
+    assert n == 200
+    assert sd == pytest.approx(math.sqrt(float(np.sum(d ** 2)) / 400), rel=1e-12)
+    lo, hi = (math.sqrt(scipy.stats.chi2.ppf(q, 200) / 200) for q in (0.0005, 0.9995))
+    assert 0.01 * lo < sd < 0.01 * hi
+    # Pairs the day check refused count (their disagreement is the evidence); a
+    # session refused for something else first (its own plot) does not.
+    assert same_day_pair_sd(_pair_rows(d, False, f"{DAY_CHECK_REASON} +3 %"))[1] == 200
+    assert same_day_pair_sd(_pair_rows(d, False, "residual SD too large"))[1] == 0
+    assert math.isnan(same_day_pair_sd(_pair_rows([]))[0])
+
+
+def test_later_sessions_allow_for_the_campaigns_same_day_pairs():
+    # Three days whose accepted sessions agree to 0.01 %, and four days refused by the
+    # day check for 3 % disagreements: the drift allowance of later sessions and the
+    # campaign's uncertainty carry the pairs' spread (Dahlberg's formula, from memory);
+    # the stored repeatability stays the accepted sessions' spread (the figure Schmid
+    # and Wehrli 1995 report).
+    from dataclasses import asdict
+
+    from daemon.config.settings import load_config
+    from daemon.science.campaign import campaign, drift_repeatability
+    from daemon.science.sessionfit import DAY_CHECK_REASON
+
+    config = load_config(CONFIG_PATH)
+    good = _pair_rows([0.0001, -0.0001, 0.0001])
+    bad = _pair_rows([0.03, -0.03, 0.03, -0.03], False, f"{DAY_CHECK_REASON} 3 %")
+    for i, r in enumerate(bad):
+        r["date"] = (dt.date(2027, 3, 1) + dt.timedelta(days=i // 2)).isoformat()
+    for r in good:
+        r["v0_rel_unc"] = 0.0005
+    notes = []
+    cals = campaign(good + bad, config, notes)
+    cal = {c.channel: c for c in cals}["500"]
+    d = [0.0001, -0.0001, 0.0001, 0.03, -0.03, 0.03, -0.03]
+    want = math.sqrt(sum(x * x for x in d) / (2 * len(d)))
+    assert cal.repeatability_pct < 0.02
+    assert cal.v0_1au_unc >= want * cal.v0_1au / math.sqrt(cal.n_sessions) * (1 - 1e-9)
+    assert any("same-day pairs imply" in n for n in notes)
+    allow = drift_repeatability([asdict(c) for c in cals], good + bad)
+    assert allow["500"] == pytest.approx(want, rel=1e-9)
+    # Without the refused days the accepted sessions' own spread stands.
+    alone = campaign(good, config)
+    assert drift_repeatability([asdict(c) for c in alone], good)["500"] == pytest.approx(
+        {c.channel: c for c in alone}["500"].repeatability_pct / 100, rel=1e-12)
+
+
+def test_the_service_hands_later_fits_the_stored_campaigns_pairs(tmp_path):
+    # What daemon.station.fitting.campaign_repeatability reads back from a store: the
+    # same allowance as drift_repeatability on the rows before they were stored (the
+    # refused pairs' reasons survive the store), larger than the stored repeatability.
+    from dataclasses import asdict
+
+    from daemon.config.settings import load_config
+    from daemon.science.campaign import campaign, drift_repeatability
+    from daemon.science.sessionfit import DAY_CHECK_REASON
+    from daemon.station.fitting import campaign_repeatability
+
+    config = load_config(CONFIG_PATH)
+    good = _pair_rows([0.0002, -0.0001, 0.0001, 0.0])
+    bad = _pair_rows([0.02, -0.025, 0.03], False, f"{DAY_CHECK_REASON} 2 %")
+    for i, r in enumerate(bad):
+        r["date"] = (dt.date(2027, 2, 10) + dt.timedelta(days=i // 2)).isoformat()
+    rows = good + bad
+    for r in rows:
+        r.update(wavelength_nm=500.0, v0=r["v0_1au"], v0_rel_unc=0.0005, tau=0.2,
+                 n_used=17, n_total=17, airmass_min=2.0, airmass_max=6.0)
+    cals = campaign(rows, config)
+    want = drift_repeatability([asdict(c) for c in cals], rows)
+    store = Store.open(tmp_path / "s.sqlite")
+    try:
+        for r in rows:
+            store.save_session_results(r["date"], r["session"], [r])
+        store.save_calibration(NOW, "2027-02-01", "2027-02-12", "Pico Sereno", {}, [],
+                               [asdict(c) for c in cals if c.channel == "500"])
+        got = campaign_repeatability(store)
+    finally:
+        store.close()
+    assert got["500"] == pytest.approx(want["500"], rel=1e-9)
+    assert got["500"] > 5 * {c.channel: c for c in cals}["500"].repeatability_pct / 100
+
+
 def test_a_session_that_disagrees_is_flagged_and_left_out():
     values = [1.5012, 1.4987, 1.5003, 1.4995, 1.5020, 1.4990, 1.5008, 1.4700]
     c = combine_sessions("500", 500.0, _sessions(values))

@@ -6,7 +6,8 @@ fitter: Rayleigh with the site's gravity, SPECTRL2 ozone and water vapour, aeros
 water on layer air masses, all integrated over the filter x ASTM G173. Where the
 fitter's model and this sky differ the fit must still land within its stated
 uncertainty; where a Done-when of issue 13 is not met yet, the test says so (strict
-xfail, naming the missing budget term), so that it turns red the day it passes.
+xfail, naming the missing budget term), so that it turns red the day it passes; none is
+open now).
 """
 
 from __future__ import annotations
@@ -197,12 +198,7 @@ def test_window_channels_on_the_independent_stable_sky_within_0_15_percent():
         assert abs(float(np.mean(errors))) < 0.0015, (name, np.mean(errors))
 
 
-@pytest.mark.parametrize("water_cm", [pytest.param(0.2, marks=pytest.mark.xfail(
-    strict=True, reason=(
-        "issue 13 Done-when not met yet at 0.2 cm: an accepted session 0.27 % off with "
-        "0.09 % stated; the 940 nm budget has no term for the aerosol it takes from the "
-        "window channels (their Kasten-Young slopes, the Angstrom extrapolation)"))),
-    0.5, 1.0, 2.0])
+@pytest.mark.parametrize("water_cm", [0.2, 0.5, 1.0, 2.0])
 def test_940_nm_on_the_independent_sky(water_cm):
     # Done-when of issue 13 (940 nm): at columns 0.2 to 2 cm every accepted session lies
     # within three stated uncertainties, and a campaign of ten stable days (the mean of

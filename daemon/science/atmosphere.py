@@ -107,6 +107,41 @@ def ozone_airmass(apparent_zenith_deg: ArrayLike, station_height_m: float,
     return like_input(apparent_zenith_deg, np.where(z > 90.0, np.nan, mu))
 
 
+#: Earth radius of the SPECTRL2 ozone air mass [km] (Bird and Riordan 1986, eq. 2-10).
+SPECTRL2_EARTH_RADIUS_KM = 6370.0
+
+
+def ozone_airmass_above_observer(apparent_zenith_deg: ArrayLike,
+                                 layer_height_km: float = 22.0) -> float | np.ndarray:
+    """Ozone air mass with the layer height counted from the observer (SPECTRL2).
+
+    ``M_o = (1 + h/R) / sqrt(cos^2 z + 2 h/R)``, R = 6370 km, h the layer's height
+    above the observer: Bird and Riordan (1986), SERI/TR-215-2436 and J. Clim. Appl.
+    Meteorol. 25:87-97, eq. 2-10 (after Iqbal 1983; citations from memory, the formula
+    as pvlib has it), with h = 22 km there; the same
+    formula pvlib's ``spectrum.spectrl2`` evaluates (tests/test_uncertainty.py holds
+    it to pvlib). It has no station height: at a mountain station it puts the layer
+    higher above sea level than Komhyr's form (:func:`ozone_airmass`) with the same h,
+    a difference of convention the budget's ``ozone_airmass_model`` term spans.
+
+    Parameters
+    ----------
+    apparent_zenith_deg : float or array_like
+        Refracted solar zenith angle at the station [degrees].
+    layer_height_km : float, default 22.0
+        Height of the effective ozone layer above the observer [km].
+
+    Returns
+    -------
+    float or numpy.ndarray
+        Ozone air mass [dimensionless]; NaN beyond 90 degrees.
+    """
+    h = positive("layer_height_km", layer_height_km, "km") / SPECTRL2_EARTH_RADIUS_KM
+    z = np.asarray(apparent_zenith_deg, dtype=float)
+    mu = (1.0 + h) / np.sqrt(np.cos(np.radians(z)) ** 2 + 2.0 * h)
+    return like_input(apparent_zenith_deg, np.where(z > 90.0, np.nan, mu))
+
+
 # --------------------------------------------------------------------------- Rayleigh
 
 def rayleigh_optical_depth(wavelength_nm: ArrayLike,

@@ -62,9 +62,9 @@ class ChannelCalibration:
     uncertainty (:func:`campaign_uncertainty`), ``repeatability_pct`` the rms spread of
     the kept sessions about it [percent], ``drift_pct_per_year`` the slope of V0 against
     time relative to the mean [percent per year] (None with fewer than three kept
-    sessions on two or more dates). ``sessions`` lists every session with its deviation
-    and whether it was flagged; ``usable`` is False when fewer than the required
-    sessions are kept, and ``reasons`` says why.
+    sessions on two or more dates). ``sessions`` lists every
+    session with its deviation and whether it was flagged; ``usable`` is False when
+    fewer than the required sessions are kept, and ``reasons`` says why.
     """
 
     channel: str
@@ -130,8 +130,14 @@ def campaign_uncertainty(mean: float, sd: float, stated: np.ndarray,
 
 
 def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[SessionV0],
-                     clip_sigma: float = 3.0, min_sessions: int = 3) -> ChannelCalibration:
+                     clip_sigma: float = 3.0, min_sessions: int = 3,
+                     spread_floor_rel: float = 0.0) -> ChannelCalibration:
     """Robust mean of one channel's session V0 values, with flags and drift.
+
+    ``spread_floor_rel`` [fraction] is a lower bound of the sessions' spread known from
+    elsewhere (:func:`same_day_pair_sd`): the standard error of the mean uses the
+    larger of it and the kept sessions' own spread (the repeatability stays the kept
+    sessions' spread, and the clipping does not use it).
 
     Parameters
     ----------
@@ -196,11 +202,14 @@ def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[Sessio
     mean = float(kept.mean())
     n_kept = int(keep.sum())
     sd = float(kept.std(ddof=1)) if n_kept >= 2 else math.nan
+    sd_unc = sd
+    if spread_floor_rel > 0.0 and not (math.isfinite(sd) and sd >= spread_floor_rel * mean):
+        sd_unc = spread_floor_rel * mean
     shared = np.array([s.shared_rel_unc for s in vals])[keep]
     if n_kept == 1 and not math.isfinite(stated[keep][0]):
         unc = math.nan
     else:
-        unc = campaign_uncertainty(mean, sd, stated[keep], shared)
+        unc = campaign_uncertainty(mean, sd_unc, stated[keep], shared)
     sessions = []
     for s, k in zip(vals, keep, strict=True):
         dev_pct = 100.0 * (s.v0_1au / mean - 1.0)
@@ -230,6 +239,92 @@ def combine_sessions(channel: str, wavelength_nm: float, values: Sequence[Sessio
         reasons=reasons)
 
 
+def same_day_pair_sd(rows: Sequence[Mapping[str, Any]]) -> tuple[float, int]:
+    """A session's spread from its day's morning-afternoon disagreements [fraction].
+
+    Parameters
+    ----------
+    rows : sequence of mapping
+        One channel's session rows (the JSON contract). A day counts when both its
+        sessions have a V0 at 1 AU and each was accepted or refused only for the
+        disagreement itself (:data:`daemon.science.sessionfit.DAY_CHECK_REASON` first):
+        a session refused for its own plot testifies to something else.
+
+    Returns
+    -------
+    (sd, n_pairs)
+        ``sqrt(sum d^2 / (2 n))`` with ``d`` the relative difference of each pair (the
+        standard deviation of one measurement from duplicate pairs, Dahlberg's formula;
+        from memory), NaN without a pair.
+
+    Notes
+    -----
+    Each session errs by its statistics and by the drift of its half-day; with the two
+    independent, ``E[d^2] = 2 s^2``, ``s`` the whole per-session spread, which the
+    spread of accepted sessions alone understates once the day check has refused the
+    pairs that disagree most (a steady drift that biases the two sessions opposite
+    ways gives ``E[d^2] = 4 s^2``: then this errs high). A drift both sessions share (a
+    haze peaking at noon) does not show in ``d`` at all (Shaw 1983, from memory).
+    """
+    from daemon.science.sessionfit import DAY_CHECK_REASON
+
+    def usable(r: Mapping[str, Any]) -> bool:
+        v = r.get("v0_1au")
+        if v is None or not math.isfinite(v) or v <= 0:
+            return False
+        reasons = r.get("reasons") or []
+        return bool(r.get("accepted")) or bool(reasons) and str(reasons[0]).startswith(
+            DAY_CHECK_REASON)
+
+    by_day: dict[str, dict[str, float]] = {}
+    for r in rows:
+        if usable(r):
+            by_day.setdefault(r["date"], {})[r["session"]] = float(r["v0_1au"])
+    d = [v["pm"] / v["am"] - 1.0 for v in by_day.values() if "am" in v and "pm" in v]
+    if not d:
+        return math.nan, 0
+    return math.sqrt(float(np.mean(np.square(d))) / 2.0), len(d)
+
+
+#: Same-day pairs needed before their spread bounds a campaign's uncertainty and the
+#: drift allowance of later sessions.
+MIN_DAY_PAIRS = 3
+
+
+def drift_repeatability(channels: Sequence[Mapping[str, Any]],
+                        results: Sequence[Mapping[str, Any]]) -> dict[str, float]:
+    """Per usable channel of a stored calibration, the spread later sessions allow for.
+
+    Parameters
+    ----------
+    channels : sequence of mapping
+        The calibration's channels (``channel``, ``usable``, ``repeatability_pct``), as
+        :func:`daemon.store.reader.stored_calibration` gives them.
+    results : sequence of mapping
+        The session rows of the calibration's dates, refused ones included.
+
+    Returns
+    -------
+    dict
+        Channel name to the larger of the stored repeatability and the spread its
+        same-day pairs imply (:func:`same_day_pair_sd`, with at least
+        :data:`MIN_DAY_PAIRS` pairs) [fraction]; the session fit takes it as its drift
+        allowance (:func:`daemon.science.sessionfit.drift_allowance`). The accepted
+        sessions' spread alone understates a drifting sky's, because the day check
+        refused the pairs that disagreed most (Schmid and Wehrli 1995 on repeatability,
+        docs/REFERENCES.md; Shaw 1983 on drift, from memory).
+    """
+    out = {}
+    for c in channels:
+        rep = c.get("repeatability_pct")
+        if not c.get("usable") or rep is None or not rep > 0.0:
+            continue
+        sd, n = same_day_pair_sd([r for r in results if r["channel"] == c["channel"]])
+        pair = sd if n >= MIN_DAY_PAIRS and math.isfinite(sd) else 0.0
+        out[c["channel"]] = max(rep / 100.0, pair)
+    return out
+
+
 def _shared(channel: Channel, config: Config, row: Mapping[str, Any]) -> float:
     """The shared part of a stored session's uncertainty, from its air-mass range and tau."""
     lo, hi, tau = row.get("airmass_min"), row.get("airmass_max"), row.get("tau")
@@ -252,8 +347,14 @@ def campaign(results: Sequence[Mapping[str, Any]], config: Config,
         accepted = [SessionV0(r["date"], r["session"], r["v0_1au"], r["v0_rel_unc"],
                               _shared(ch, config, r))
                     for r in rows if r["accepted"] and r["v0_1au"] is not None]
+        pair_sd, n_pairs = same_day_pair_sd(rows)
+        floor = pair_sd if n_pairs >= MIN_DAY_PAIRS else 0.0
         cal = combine_sessions(ch.name, ch.wavelength_nm, accepted, fit.campaign_clip_sigma,
-                               fit.campaign_min_sessions)
+                               fit.campaign_min_sessions, floor)
+        if floor > 0.0 and notes is not None and (
+                cal.repeatability_pct is None or 100.0 * floor > cal.repeatability_pct):
+            notes.append(f"{ch.name}: {n_pairs} same-day pairs imply {100 * floor:.3f} % a "
+                         "session, above the spread")
         n_rejected = len(rows) - len(accepted)
         if n_rejected and notes is not None:
             notes.append(f"{ch.name}: {n_rejected} session{'s' if n_rejected != 1 else ''} "

@@ -190,7 +190,9 @@ def extinction_corrections(series: ChannelSeries, channel: Channel,
 AEROSOL_SCALE_HEIGHTS_KM = (0.5, 3.0)
 #: Heights of the ozone layer the budget spans [km]: the fitter's layer is at 22 km
 #: (Komhyr 1980); the ozone maximum lies between about 18 and 26 km with latitude and
-#: season (from memory).
+#: season (from memory). The budget takes them in both published conventions, above
+#: sea level (Komhyr 1980) and above the observer (SPECTRL2: Bird and Riordan 1986,
+#: eq. 2-10), see :func:`ozone_layer_airmasses`.
 OZONE_LAYER_HEIGHTS_KM = (18.0, 26.0)
 #: Gaussian FWHM to standard deviation: 2 sqrt(2 ln 2) (common practice, no source).
 FWHM_PER_SD = 2.0 * math.sqrt(2.0 * math.log(2.0))
@@ -199,7 +201,15 @@ FWHM_PER_SD = 2.0 * math.sqrt(2.0 * math.log(2.0))
 RAYLEIGH_EXPONENT = 4.0
 #: Budget terms the sessions of a campaign share: dividing them by the number of
 #: sessions would claim an accuracy the model does not have.
-SYSTEMATIC_TERMS = ("filter_width", "aerosol_layer_airmass", "ozone_airmass_model")
+SYSTEMATIC_TERMS = ("filter_width", "aerosol_layer_airmass", "ozone_airmass_model",
+                    "ozone_optical_depth")
+#: Relative standard uncertainty of the ozone optical depth the correction uses [fraction]:
+#: the configured nominal column against the day's (total ozone varies by some 5-10 %
+#: from day to day and with the season; from memory) and the band's cross-section
+#: (published tables differ by a few per cent in the Chappuis band, more on its wings,
+#: and a rectangle of the bandwidth stands for the real filter; from memory). A
+#: judgement, no source; a configured cross-section does not remove the column's part.
+OZONE_TAU_REL_UNC = 0.10
 #: Drift rate [optical depth per hour] for the statement of what one session cannot see.
 UNSEEN_DRIFT_PER_HOUR = 0.001
 
@@ -233,7 +243,8 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
         ``shifts``: the expected bias of the fitted ln V0 by name, to be subtracted
         [ln V]; ``terms``: the relative standard uncertainties of V0 left after that
         [fraction], by the same names: ``filter_width``, ``aerosol_layer_airmass``,
-        ``ozone_airmass_model`` (both empty without two distinct air masses).
+        ``ozone_airmass_model``, and in ``terms`` only ``ozone_optical_depth``
+        (both empty without two distinct air masses).
 
     Notes
     -----
@@ -250,14 +261,23 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
     :func:`daemon.science.atmosphere.ozone_airmass`), ``tau_a`` the fitted optical
     depth minus Rayleigh and ozone.
 
-    ``ozone_airmass_model``: ``-tau_O3 (m_O3(h) - m_O3(22 km))`` for layer heights
-    :data:`OZONE_LAYER_HEIGHTS_KM`.
+    ``ozone_airmass_model``: ``-tau_O3 (m_h - m_O3(22 km))`` over the published ozone
+    air masses :func:`ozone_layer_airmasses` gives (Komhyr's shell at
+    :data:`OZONE_LAYER_HEIGHTS_KM` above sea level, and SPECTRL2's formula with those
+    heights above the observer); the range is their smallest to largest shift. At a
+    sea-level station both conventions agree; at 3650 m the second puts the layer up
+    to 3.65 km higher, which widens and moves the range.
 
-    The last two are biases known to lie within a range: corrected to its middle, with
-    the rectangular half-width over sqrt(3) as the uncertainty (JCGM 100:2008, GUM,
-    sec. 4.3.7). The band term is corrected in full; a quarter of it stays as its
-    uncertainty (the filter's real shape, the solar spectrum's slope across it and the
-    exponent 4 against 4.05; a judgement, no source).
+    ``ozone_optical_depth``: the ozone correction ``tau_O3 (m_O3 - m)`` is only as good
+    as ``tau_O3``; :data:`OZONE_TAU_REL_UNC` of its intercept, not corrected (the
+    error has no known sign).
+
+    The layer and ozone air-mass terms are biases known to lie within a range:
+    corrected to its middle, with the rectangular half-width over sqrt(3) as the
+    uncertainty (JCGM 100:2008, GUM, sec. 4.3.7). The band term is corrected in full;
+    a quarter of it stays as its uncertainty (the filter's real shape, the solar
+    spectrum's slope across it and the exponent 4 against 4.05; a judgement, no
+    source).
     """
     from daemon.science.atmosphere import ozone_airmass
 
@@ -287,14 +307,36 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
     layer = [shift(-tau_a * (ozone_airmass(z, elev_m, site_km + h) - m))
              for h in AEROSOL_SCALE_HEIGHTS_KM]
     m_o3 = ozone_airmass(z, elev_m)
-    ozone = [shift(-tau_o3 * (ozone_airmass(z, elev_m, h) - m_o3))
-             for h in OZONE_LAYER_HEIGHTS_KM]
+    ozone = [shift(-tau_o3 * (m_h - m_o3)) for m_h in ozone_layer_airmasses(z, elev_m)]
     shifts = {"filter_width": width, "aerosol_layer_airmass": 0.5 * (layer[0] + layer[1]),
-              "ozone_airmass_model": 0.5 * (ozone[0] + ozone[1])}
+              "ozone_airmass_model": 0.5 * (min(ozone) + max(ozone))}
     terms = {"filter_width": BAND_MODEL_SHARE * abs(width),
              "aerosol_layer_airmass": 0.5 * abs(layer[1] - layer[0]) / math.sqrt(3.0),
-             "ozone_airmass_model": 0.5 * abs(ozone[1] - ozone[0]) / math.sqrt(3.0)}
+             "ozone_airmass_model": 0.5 * (max(ozone) - min(ozone)) / math.sqrt(3.0),
+             "ozone_optical_depth": OZONE_TAU_REL_UNC * abs(shift(tau_o3 * (m_o3 - m)))}
     return shifts, terms
+
+
+def ozone_layer_airmasses(apparent_zenith_deg: np.ndarray,
+                          station_height_m: float) -> list[np.ndarray]:
+    """The ozone air masses the budget's ``ozone_airmass_model`` term spans.
+
+    Komhyr's spherical shell (:func:`daemon.science.atmosphere.ozone_airmass`, the
+    layer height above sea level) and SPECTRL2's formula
+    (:func:`daemon.science.atmosphere.ozone_airmass_above_observer`, Bird and Riordan
+    1986, eq. 2-10: the height above the observer), each at both ends of
+    :data:`OZONE_LAYER_HEIGHTS_KM`. Two published models of the same path that differ
+    by their convention at a mountain station: which one the real sky follows no
+    session can tell, so the budget spans both. A layer end at or below the station
+    is left out of Komhyr's (the formula needs the layer above the observer).
+    """
+    from daemon.science.atmosphere import ozone_airmass, ozone_airmass_above_observer
+
+    out = [ozone_airmass(apparent_zenith_deg, station_height_m, h)
+           for h in OZONE_LAYER_HEIGHTS_KM if h > station_height_m / 1000.0]
+    out += [ozone_airmass_above_observer(apparent_zenith_deg, h)
+            for h in OZONE_LAYER_HEIGHTS_KM]
+    return [np.asarray(m, dtype=float) for m in out]
 
 
 def model_terms(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float,
@@ -307,7 +349,7 @@ def model_terms(channel: Channel, config: Config, airmass: np.ndarray, tau_total
     shifts, terms = systematic_terms(channel, config, airmass, tau_total, pressure_hpa)
     if config.fit.correct_model_terms:
         return shifts, terms
-    return {}, {k: math.hypot(u, shifts[k]) for k, u in terms.items()}
+    return {}, {k: math.hypot(u, shifts.get(k, 0.0)) for k, u in terms.items()}
 
 
 def shared_unc(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float) -> float:
@@ -351,7 +393,9 @@ def unseen_note(fit: FitResult, hours: np.ndarray | None, airmass: np.ndarray) -
     return (f"not visible in one session: a steady drift of the optical depth of "
             f"{UNSEEN_DRIFT_PER_HOUR:g} per hour keeps the plot straight and moves V0 by "
             f"{100 * shift:.2f} %; the same day's other session and the campaign's "
-            "repeatability are the checks")
+            "repeatability are the checks. A change both sessions of a day share (a haze "
+            "that peaks near noon) moves them alike, and one that recurs every day moves "
+            "the campaign too: no check here sees it (Shaw 1983)")
 
 
 def budget_terms(fit: FitResult, channel: Channel, config: Config, s: ChannelSeries,
@@ -412,19 +456,49 @@ def aerosol_at(wavelength_nm: float, aerosol: Mapping[float, float]) -> tuple[fl
         nearest in wavelength, one on each side where possible (Angstrom, A. 1929,
         Geogr. Ann. 11:156-166); None with fewer than two positive values.
     """
+    pair = _angstrom_pair(wavelength_nm, aerosol)
+    if pair is None:
+        return None
+    (w1, t1), (w2, t2) = pair
+    alpha = -math.log(t2 / t1) / math.log(w2 / w1)
+    tau = t1 * (wavelength_nm / w1) ** (-alpha)
+    return tau, f"{w1:g} and {w2:g} nm (Angstrom exponent {alpha:.2f})"
+
+
+def _angstrom_pair(wavelength_nm: float, aerosol: Mapping[float, float]
+                   ) -> tuple[tuple[float, float], tuple[float, float]] | None:
+    """The two (wavelength, tau) of :func:`aerosol_at`, shorter wavelength first."""
     positive = sorted((w, t) for w, t in aerosol.items() if t > 0.0 and math.isfinite(t))
     if len(positive) < 2:
         return None
     below = [wt for wt in positive if wt[0] <= wavelength_nm]
     above = [wt for wt in positive if wt[0] > wavelength_nm]
     if below and above:
-        (w1, t1), (w2, t2) = below[-1], above[0]
-    else:
-        near = sorted(positive, key=lambda wt: abs(wt[0] - wavelength_nm))[:2]
-        (w1, t1), (w2, t2) = sorted(near)
-    alpha = -math.log(t2 / t1) / math.log(w2 / w1)
-    tau = t1 * (wavelength_nm / w1) ** (-alpha)
-    return tau, f"{w1:g} and {w2:g} nm (Angstrom exponent {alpha:.2f})"
+        return below[-1], above[0]
+    near = sorted(positive, key=lambda wt: abs(wt[0] - wavelength_nm))[:2]
+    first, second = sorted(near)
+    return first, second
+
+
+def aerosol_unc_at(wavelength_nm: float, aerosol: Mapping[float, float],
+                   unc: Mapping[float, float]) -> float:
+    """Standard uncertainty of :func:`aerosol_at` from the window channels' own [tau].
+
+    ``ln tau(lambda) = (1 - f) ln t1 + f ln t2`` with ``f = ln(lambda/w1) / ln(w2/w1)``
+    (the Angstrom law through the two channels), so the relative uncertainties of
+    ``t1`` and ``t2`` (their fits' slope uncertainties, independent sessions of
+    independent channels) add as ``(1 - f) u1/t1`` and ``f u2/t2`` in quadrature
+    (first-order propagation, JCGM 100:2008, GUM, eq. 10). NaN when a channel's
+    uncertainty is unknown; 0.0 without a pair.
+    """
+    pair = _angstrom_pair(wavelength_nm, aerosol)
+    if pair is None:
+        return 0.0
+    (w1, t1), (w2, t2) = pair
+    f = math.log(wavelength_nm / w1) / math.log(w2 / w1)
+    tau = t1 * (t2 / t1) ** f
+    u1, u2 = unc.get(w1, math.nan), unc.get(w2, math.nan)
+    return tau * math.hypot((1.0 - f) * u1 / t1, f * u2 / t2)
 
 
 # --------------------------------------------------------------------------- rows
@@ -587,6 +661,7 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
     """
     rows: dict[str, dict[str, Any]] = {}
     aerosol: dict[float, float] = {}
+    aerosol_unc: dict[float, float] = {}
     empty = ChannelSeries(*(np.empty(0),) * 5, n_total=0, hours=np.empty(0))
     for channel in config.channels:
         if channel.water_vapour:
@@ -610,17 +685,19 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
         rows[channel.name] = row
         if row["accepted"] and math.isfinite(row["tau_aerosol"]):
             aerosol[channel.wavelength_nm] = row["tau_aerosol"]
+            aerosol_unc[channel.wavelength_nm] = fit.tau_unc
     for channel in config.channels:
         if channel.water_vapour:
             s = series.get(channel.name, empty)
             rows[channel.name] = _water_vapour_row(s, channel, config, aerosol, plan_date,
-                                                   session, repeatability)
+                                                   session, repeatability, aerosol_unc)
     return [rows[c.name] for c in config.channels]
 
 
 def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
                       aerosol: Mapping[float, float], plan_date: str, session: str,
-                      repeatability: Mapping[str, float] | None = None) -> dict[str, Any]:
+                      repeatability: Mapping[str, float] | None = None,
+                      aerosol_unc: Mapping[float, float] | None = None) -> dict[str, Any]:
     """The modified Langley: ln V plus the known extinctions against m^b.
 
     ``V = V0 exp(-tau_R m - tau_O3 m_O3 - tau_a m - a (W m)^b)`` for a water-vapour
@@ -664,7 +741,9 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
         return tau_r_i * m + tau_o3 * m_o3 + tau_a[0] * m
 
     known = known_extinction(s.airmass, s.ozone_airmass, s.pressure_hpa)
-    fit, wv, u_b_rel = water_vapour_fit(s, channel, config, known, p_ref)
+    u_tau_a = aerosol_unc_at(channel.wavelength_nm, aerosol, aerosol_unc or {})
+    fit, wv, u_b_rel = water_vapour_fit(s, channel, config, known, p_ref,
+                                        known_unc=u_tau_a * s.airmass)
     b = wv.b
     m_w = water_vapour_airmass_from_kasten_young(s.airmass)
     rep = (repeatability or {}).get(channel.name)
@@ -692,7 +771,8 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
 
 
 def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: np.ndarray,
-                     pressure_hpa: float) -> tuple[FitResult, Any, float]:
+                     pressure_hpa: float, known_unc: np.ndarray | None = None
+                     ) -> tuple[FitResult, Any, float]:
     """The modified-Langley fit with a, b from the filter, and b's share of V0's uncertainty.
 
     The regressor is ``m_w^b`` with ``m_w`` the water-vapour air mass (Kasten 1965,
@@ -704,9 +784,15 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
     session's column ``W = (slope / a)^(1/b)``; then a, b again over that column
     +/- :data:`WATER_VAPOUR_REFINE` (the session's own range) and the final fit. The fit
     is repeated with ``b +/- u_b``; half the change of ln V0 is b's part of V0's
-    relative uncertainty, added in quadrature to the fit's.
+    relative uncertainty, added in quadrature to the fit's. ``known_unc``, one standard
+    uncertainty of ``known`` per point (the aerosol taken from the window channels,
+    ``u(tau_a) m``), is propagated the same way: the fit repeated with ``known +/-
+    known_unc``, half the change of ln V0 as the ``aerosol_from_window_channels`` term
+    (a wrong aerosol adds ``delta tau_a m``, which is curved against ``m_w^b`` and so
+    moves the intercept, not only the slope).
 
-    Returns the fit (``v0_rel_unc`` including b's part), the constants used and b's part.
+    Returns the fit (``v0_rel_unc`` including b's and the aerosol's parts), the
+    constants used and b's part.
     """
     from daemon.science.watervapour import (  # pvlib: only for this channel
         derive_constants,
@@ -721,8 +807,8 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
     lo, hi = water_vapour_airmass_from_kasten_young(np.array(window))
     settings = replace(config.fit, airmass_min=float(lo), airmass_max=float(hi))
 
-    def run(b: float) -> FitResult:
-        return fit_session(m_w, s.signal_v, settings, ln_correction=known,
+    def run(b: float, correction: np.ndarray = known) -> FitResult:
+        return fit_session(m_w, s.signal_v, settings, ln_correction=correction,
                            regressor_exponent=b, hours=s.hours, burst_sd_ln=s.burst_sd_ln)
 
     wv = derive_constants(spec, pressure_hpa, window, channel.water_vapour_range_cm)
@@ -739,7 +825,11 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
     up, down = run(wv.b + wv.u_b), run(wv.b - wv.u_b)
     u_b_rel = abs(up.ln_v0 - down.ln_v0) / 2.0 if math.isfinite(up.ln_v0 + down.ln_v0) \
         else math.nan
-    return with_terms(fit, {"water_vapour_exponent": u_b_rel}), wv, u_b_rel
+    terms = {"water_vapour_exponent": u_b_rel}
+    if known_unc is not None and np.any(np.asarray(known_unc) != 0.0):
+        up, down = run(wv.b, known + known_unc), run(wv.b, known - known_unc)
+        terms["aerosol_from_window_channels"] = abs(up.ln_v0 - down.ln_v0) / 2.0
+    return with_terms(fit, terms), wv, u_b_rel
 
 
 #: The session's own column range for the refined a, b: its first estimate times or
@@ -756,6 +846,11 @@ def water_vapour_row_keys(wv: Any, fit: FitResult, u_b_rel: float) -> dict[str, 
 
 
 # --------------------------------------------------------------------------- same day
+
+#: How the day check's refusal begins (:func:`day_disagreements`);
+#: :func:`daemon.science.campaign.same_day_pair_sd` recognises it.
+DAY_CHECK_REASON = "morning and afternoon V0 at 1 AU differ by"
+
 
 def day_disagreements(am_rows: Sequence[Mapping[str, Any]], pm_rows: Sequence[Mapping[str, Any]],
                       settings: FitSettings) -> dict[str, str]:
@@ -784,7 +879,7 @@ def day_disagreements(am_rows: Sequence[Mapping[str, Any]], pm_rows: Sequence[Ma
         limit = max(settings.max_am_pm_difference, 3.0 * math.hypot(u_am, u_pm))
         if abs(diff) > limit:
             out[pm["channel"]] = (
-                f"morning and afternoon V0 at 1 AU differ by {100 * diff:+.2f} % (allowed "
+                f"{DAY_CHECK_REASON} {100 * diff:+.2f} % (allowed "
                 f"{100 * limit:.2f} %): the optical depth drifted during the day")
     return out
 
@@ -830,9 +925,23 @@ def add_same_day_terms(am_rows: Sequence[dict[str, Any]],
         term = same_day_term(u_am, u_pm, diff)
         out[pm["channel"]] = term
         for row, u in ((a, u_am), (pm, u_pm)):
+            # Rows of the result contract alone (no notes: a stored morning) stay as
+            # they are; the widening's note stays the last (the service stores it).
+            if "notes" in row and "campaign_repeatability" not in (
+                    row.get("uncertainty_budget") or {}):
+                row["notes"] = [*row["notes"], ONE_PAIR_NOTE]
             _widen(row, u, term, f"drift allowance {100 * term:.3f} % from the same day's "
                                  f"morning and afternoon V0 ({100 * diff:+.3f} % apart)")
     return out
+
+
+#: Said of a session whose drift allowance rests on its own day alone.
+ONE_PAIR_NOTE = ("no campaign repeatability in this uncertainty: its drift allowance rests "
+                 "on this day's two sessions alone, one degree of freedom (two sessions "
+                 "that drifted alike agree by chance, and on a slowly varying sky the "
+                 "stated uncertainty is then several times too small); a stored "
+                 "calibration's repeatability, from its sessions' spread and its same-day "
+                 "pairs, is the allowance from many days (heliotrope calibrate)")
 
 
 def _widen(row: dict[str, Any], unc: float, term: float, why: str) -> None:

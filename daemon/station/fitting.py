@@ -17,6 +17,7 @@ from typing import Any
 from daemon.config.settings import Config
 from daemon.science import atmosphere
 from daemon.science.aod import angstrom_pair, point_alpha, point_aod
+from daemon.science.campaign import drift_repeatability
 from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
 from daemon.science.sessionfit import aerosol_at, apply_day_check, fit_series, screen_channel
 from daemon.science.watervapour import point_water, water_vapour_channels
@@ -96,9 +97,9 @@ def campaign_repeatability(store: Store) -> dict[str, float]:
     cal = stored_calibration(store.conn)
     if cal is None:
         return {}
-    return {c["channel"]: c["repeatability_pct"] / 100.0 for c in cal["channels"]
-            if c["usable"] and c["repeatability_pct"] is not None
-            and c["repeatability_pct"] > 0.0}
+    # The larger of that and what the campaign's same-day pairs imply (refused included).
+    return drift_repeatability(cal["channels"],
+                               results_between(store.conn, cal["from"], cal["to"]))
 
 
 def _update_aod(store: Store, config: Config, date: str, session: str,
