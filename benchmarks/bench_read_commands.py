@@ -62,6 +62,16 @@ def _median_ms(cmd: list[str], runs: int, env: dict) -> float:
     return statistics.median(_run_ms(cmd, env) for _ in range(runs))
 
 
+def record_station_configuration(db: Path, config_path: Path) -> None:
+    """Record the configuration in the store as the service does at every start, so
+    ``plot`` and ``report`` read it from the store (its JSON form) as on a station."""
+    from daemon.store.writer import Store
+
+    with Store.open(db) as store:
+        store.record_configuration(config_path.read_text(), str(config_path), "bench",
+                                   dt.datetime.now(dt.UTC))
+
+
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--runs", type=int, default=21)
@@ -75,6 +85,7 @@ def main() -> int:
     with tempfile.TemporaryDirectory() as tmp:
         db = Path(tmp) / "heliotrope.db"
         build_day(db, heartbeat=dt.datetime.now(dt.UTC))
+        record_station_configuration(db, CONFIG_PATH)
         env = {**os.environ, "HELIOTROPE_DB": str(db), "HELIOTROPE_CONFIG": str(CONFIG_PATH)}
         cases = [
             ("python3 -c pass", [sys.executable, "-c", "pass"]),
@@ -87,6 +98,9 @@ def main() -> int:
             ("heliotrope ssh-gate (today --json)", base + ["ssh-gate"]),
             ("heliotrope plot --session am", base + ["plot", "--date", d, "--channel", "500",
                                                      "--session", "am"]),
+            ("heliotrope plot --session am --config", base + [
+                "plot", "--date", d, "--channel", "500", "--session", "am", "--config",
+                str(CONFIG_PATH)]),
             ("heliotrope report", base + ["report", "--date", d]),
         ]
         print(f"{'command':<38} {'median [ms]':>12} {'x bare':>7}   ({args.runs} runs each, "

@@ -149,7 +149,7 @@ def _shell_rows_per_s(db: Path, first: str, last: str) -> float | None:
 
 
 def bench(n_days: int, runs: int) -> None:
-    from benchmarks.bench_read_commands import _median_ms
+    from benchmarks.bench_read_commands import _median_ms, record_station_configuration
     from daemon.store.reader import open_readonly, session_points
     from tests.synthetic_store import CONFIG_PATH, DAY
 
@@ -161,6 +161,7 @@ def bench(n_days: int, runs: int) -> None:
         db = Path(tmp) / "heliotrope.db"
         t0 = time.perf_counter()
         counts = build_store(db, n_days)
+        record_station_configuration(db, CONFIG_PATH)
         size = db.stat().st_size / 2**20
         print(f"\n{n_days} days: {counts['measurements']:,} measurements, "
               f"{counts['samples']:,} samples, {size:.0f} MiB, built in "

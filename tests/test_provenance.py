@@ -140,3 +140,82 @@ def test_demo_never_appends_simulated_days_to_a_station_store(tmp_path, capsys):
     assert main(["demo", "--append", "--db", str(path)]) == 64
     assert "station's" in capsys.readouterr().err
     assert path.read_bytes() == before
+
+
+# --------------------------------------------------------------------------- JSON form
+
+def test_the_json_form_holds_the_data_exactly_or_is_not_kept():
+    """JSON (RFC 8259) has no dates, no non-finite numbers and only text keys, and a
+    Python json round trip turns an integer key into text: such data keeps no JSON form
+    (the text is parsed instead); everything else comes back value for value and type
+    for type (common practice, no source)."""
+    from daemon.config.yamltext import json_form, parse_yaml
+
+    data = parse_yaml(CONFIG_PATH.read_text())
+    assert json.loads(json_form(data)) == data
+    for text in ("a: 2027-02-15\n", "a: .nan\n", "a: .inf\n", "500: x\n", "a: {1: 2}\n",
+                 "true: 1\n"):
+        assert json_form(parse_yaml(text)) is None, text
+    assert json_form(parse_yaml("a: [1, 1.0, true, null, 'é']\n")) == \
+        '{"a":[1,1.0,true,null,"é"]}'
+
+
+def test_a_recorded_configuration_keeps_its_json_form_and_the_read_commands_use_it(
+        tmp_path):
+    from daemon.commands.storedconfig import choose_config
+    from daemon.config.yamltext import parse_yaml
+
+    path = tmp_path / "s.db"
+    commented = CONFIG_PATH.read_text() + "\n# moved to the east pier, 2027-02-15\n"
+    with Store.open(path) as store:
+        store.record_configuration(commented, "pier.yaml", "0.1.0", NOW)
+    conn = open_readonly(path)
+    try:
+        (stored,) = conn.execute("SELECT data_json FROM configurations").fetchone()
+    finally:
+        conn.close()
+    assert json.loads(stored) == parse_yaml(CONFIG_PATH.read_text())  # comments go
+    from_json = choose_config(None, path, "test")
+    from_file = choose_config(str(CONFIG_PATH), None, "test").config
+    assert from_json.config.text == commented and "data_json" not in from_json.stored
+    # Without the JSON form (a store written before it, or data JSON cannot hold) the
+    # text is parsed: the same configuration.
+    with sqlite3.connect(path) as c:
+        c.execute("UPDATE configurations SET data_json = NULL")
+    from_text = choose_config(None, path, "test").config
+    for config in (from_json.config, from_text):
+        assert (config.site, config.channels, config.fit, config.plan) == \
+            (from_file.site, from_file.channels, from_file.fit, from_file.plan)
+
+
+def test_the_upgrade_to_m008_gives_recorded_configurations_their_json_form(tmp_path):
+    from sqlite_utils import Database
+
+    from daemon.store import writer
+
+    path = tmp_path / "old.db"
+    db = Database(path)
+    writer.migrations.apply(db, stop_before="m008_configuration_data")
+    db["configurations"].insert({
+        "sha256": "0" * 64, "text": CONFIG_PATH.read_text(), "source": "old.yaml",
+        "software_version": "0.0.9", "origin": "service",
+        "first_used_utc": "2027-02-14T00:00:00+00:00",
+        "last_used_utc": "2027-02-14T00:00:00+00:00"})
+    db["configurations"].insert({
+        "sha256": "1" * 64, "text": "a: 2027-02-15\n", "source": "dated.yaml",
+        "software_version": "0.0.9", "origin": "service",
+        "first_used_utc": "2027-02-13T00:00:00+00:00",
+        "last_used_utc": "2027-02-13T00:00:00+00:00"})
+    db.close()
+    with Store.open(path):
+        pass
+    conn = open_readonly(path)
+    try:
+        got = dict(conn.execute("SELECT source, data_json FROM configurations").fetchall())
+        newest = stored_configuration(conn)
+    finally:
+        conn.close()
+    from daemon.config.yamltext import parse_yaml
+    assert json.loads(got["old.yaml"]) == parse_yaml(CONFIG_PATH.read_text())
+    assert got["dated.yaml"] is None
+    assert newest["source"] == "old.yaml" and newest["data_json"] == got["old.yaml"]

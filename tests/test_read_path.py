@@ -193,6 +193,26 @@ def test_plot_starts_without_the_modules_its_start_up_no_longer_needs(day):
         sorted(loaded & {"logging", "shutil", "bz2", "lzma", "numpy"})
 
 
+
+def test_plot_on_a_store_with_its_configuration_parses_no_yaml(day, tmp_path):
+    """The configuration the store recorded is validated from its JSON form: ``plot``
+    and ``report`` without ``--config`` never load PyYAML (about 20 ms of start)."""
+    from daemon.store.writer import Store
+
+    path = tmp_path / "recorded.db"
+    path.write_bytes(day.path.read_bytes())
+    with Store.open(path) as store:
+        store.record_configuration(CONFIG_PATH.read_text(), str(CONFIG_PATH), "0.1.0",
+                                   dt.datetime(2027, 2, 16, tzinfo=dt.UTC))
+    for argv in (["plot", "--date", D, "--channel", "500"], ["report", "--date", D]):
+        result = subprocess.run([sys.executable, "-c", _PROBE, *argv, "--db", str(path)],
+                                capture_output=True, text=True, cwd=ROOT, timeout=60,
+                                env={**os.environ, "HELIOTROPE_CONFIG": "/nonexistent"})
+        assert result.returncode == 0, result.stderr
+        info = json.loads(result.stdout.strip().splitlines()[-1])
+        assert info["rc"] == 0, info
+        assert "yaml" not in info["modules"], argv[0]
+
 def _help(parser, argv: list[str]) -> str:
     import contextlib
     import io
@@ -229,14 +249,14 @@ def test_the_libyaml_loader_reads_every_shipped_configuration_as_the_strict_one(
     same refusals, raised by the fast loader itself (not only by the fall-back)."""
     import yaml
 
-    from daemon.config import settings
+    from daemon.config import yamltext
 
     if not yaml.__with_libyaml__:
         pytest.skip("this PyYAML has no libyaml: the strict loader is the only one")
     for path in sorted((ROOT / "config").glob("*.yaml")):
         text = path.read_text()
-        strict = settings._StrictLoader(text)
-        fast = settings._FastStrictLoader(text)
+        strict = yamltext._StrictLoader(text)
+        fast = yamltext._FastStrictLoader(text)
         try:
             assert fast.get_single_data() == strict.get_single_data(), path.name
         finally:
@@ -253,15 +273,15 @@ def test_the_libyaml_loader_reads_every_shipped_configuration_as_the_strict_one(
     refused['site:\n  x: ["Pico Sereno é", &a 1]\n'] = "line 2, column 24: anchor &a"
     for text, message in refused.items():
         messages = []
-        for loader in (settings._FastStrictLoader, settings._StrictLoader):
-            with pytest.raises(settings._Refused) as caught:
-                settings._load(loader, text)
-            messages.append(str(settings._refusal(caught.value)))
+        for loader in (yamltext._FastStrictLoader, yamltext._StrictLoader):
+            with pytest.raises(yamltext._Refused) as caught:
+                yamltext._load(loader, text)
+            messages.append(str(yamltext._refusal(caught.value)))
         assert message in messages[0], (text[:20], messages[0])
         assert messages[0] == messages[1]  # the same words at the same line and column
-        with pytest.raises(settings.ConfigError, match=re.escape(messages[1])):
-            settings._parse_yaml(text)
+        with pytest.raises(yamltext.ConfigError, match=re.escape(messages[1])):
+            yamltext.parse_yaml(text)
     # A control character after a refusal: PyYAML's reader reports it first, so the
     # configuration's message does too.
-    with pytest.raises(settings.ConfigError, match="control character U\\+0007"):
-        settings._parse_yaml("a: &x 1\nb: 2\nc: \x07\n")
+    with pytest.raises(yamltext.ConfigError, match="control character U\\+0007"):
+        yamltext.parse_yaml("a: &x 1\nb: 2\nc: \x07\n")

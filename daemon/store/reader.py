@@ -814,15 +814,20 @@ def stored_configuration(conn: sqlite3.Connection,
 
     Keys: ``id``, ``sha256`` (of ``text``), ``text`` (the YAML as the run read it),
     ``source`` (its path then), ``software_version``, ``origin`` ('service' or 'bench'
-    for a store the simulator filled), ``first_used_utc``, ``last_used_utc``.
+    for a store the simulator filled), ``first_used_utc``, ``last_used_utc``, and, in
+    a store of schema m008 or later, ``data_json`` (the text's parsed data as JSON, or
+    None where JSON cannot hold it exactly).
     """
     if not _has_table(conn, "configurations"):
         return None
+    columns = _CONFIG_COLUMNS
+    if _has_column(conn, "configurations", "data_json"):
+        columns += ", data_json"
     if configuration_id is None:
-        cur = conn.execute(f"SELECT {_CONFIG_COLUMNS} FROM configurations "
+        cur = conn.execute(f"SELECT {columns} FROM configurations "
                            "ORDER BY last_used_utc DESC, id DESC LIMIT 1")
     else:
-        cur = conn.execute(f"SELECT {_CONFIG_COLUMNS} FROM configurations WHERE id = ?",
+        cur = conn.execute(f"SELECT {columns} FROM configurations WHERE id = ?",
                            (int(configuration_id),))
     return _configuration(cur)
 
@@ -846,7 +851,7 @@ def configurations_by_id(conn: sqlite3.Connection,
     for cid in sorted(ids):
         cfg = stored_configuration(conn, cid)
         if cfg is not None:
-            out[cid] = {k: v for k, v in cfg.items() if k != "text"}
+            out[cid] = {k: v for k, v in cfg.items() if k not in ("text", "data_json")}
     return out
 
 

@@ -207,11 +207,35 @@ def m006_water_vapour(db: Database) -> None:
     db["aod"].add_column("precipitable_water_cm", float)
 
 
+
+@migrations()
+def m008_configuration_data(db: Database) -> None:
+    # Beside each recorded configuration text, its parsed data as JSON when JSON holds
+    # it exactly (daemon.config.yamltext.json_form), so a read command can validate the
+    # store's configuration without loading PyYAML. NULL where it cannot (a date, a
+    # text this version refuses): the read commands then parse the text.
+    db["configurations"].add_column("data_json", str)
+    for cid, text in db.execute("SELECT id, text FROM configurations").fetchall():
+        db.execute("UPDATE configurations SET data_json = ? WHERE id = ?",
+                   (configuration_json(text), cid))
+
 # Every migration is pending on an empty database: that lists the names this version knows.
 KNOWN_MIGRATIONS = frozenset(m.name for m in migrations.pending(
     Database(memory=True, execute_plugins=False)))
 
 # --------------------------------------------------------------------------- records
+
+
+def configuration_json(text: str) -> str | None:
+    """The JSON form of a configuration text's data, or None where JSON cannot hold it
+    exactly or the text does not parse (the read commands then parse the text)."""
+    from daemon.config.errors import ConfigError
+    from daemon.config.yamltext import json_form, parse_yaml
+
+    try:
+        return json_form(parse_yaml(text))
+    except ConfigError:
+        return None
 
 
 def utc_iso(when: _dt.datetime) -> str:
@@ -431,7 +455,8 @@ class Store:
                 cid = int(self.db["configurations"].insert({
                     "sha256": digest, "text": text, "source": source,
                     "software_version": software_version, "origin": origin,
-                    "first_used_utc": when, "last_used_utc": when}).last_pk)
+                    "first_used_utc": when, "last_used_utc": when,
+                    "data_json": configuration_json(text)}).last_pk)
             else:
                 cid = int(row[0])
                 self.db.conn.execute("UPDATE configurations SET last_used_utc = ?, "
