@@ -202,3 +202,19 @@ def test_a_sun_table_stored_for_another_configuration_is_not_used(cfg, tmp_path)
     station.geometry(noon, DAY, 650.0)
     kinds = [k for (k,) in station.store.conn.execute("SELECT kind FROM events")]
     assert kinds == ["geometry_fallback"]
+
+
+def test_sun_tables_are_kept_a_week_and_plans_for_ever(cfg, tmp_path):
+    from daemon.store.writer import SUN_TABLE_KEEP_DAYS
+
+    store = Store.open(tmp_path / "k.db")
+    table = plan_sun_table(cfg, DAY).to_dict()
+    for k in range(12):
+        store.save_plan(DAY + timedelta(days=k), {"version": 1}, datetime.now(UTC),
+                        "a" * 64, table)
+    dates = [d for (d,) in store.conn.execute("SELECT plan_date FROM sun_tables "
+                                              "ORDER BY plan_date")]
+    n_plans = store.conn.execute("SELECT count(*) FROM plans").fetchone()[0]
+    store.close()
+    assert dates[0] == (DAY + timedelta(days=11 - SUN_TABLE_KEEP_DAYS)).isoformat()
+    assert len(dates) == SUN_TABLE_KEEP_DAYS + 1 and n_plans == 12

@@ -31,6 +31,7 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import signal
 import subprocess
 import sys
 import threading
@@ -126,6 +127,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     p.add_argument("--now", type=_aware, help="the service clock's time (plan, fit)")
     p.add_argument("--time", type=_aware, help="the instant (sun)")
     args = p.parse_args(argv)
+    # heliotroped blocks SIGTERM and SIGINT in all its threads (one thread waits for
+    # them) and a child inherits that mask: unblock them, so that systemd's stop of the
+    # unit's control group ends a child too.
+    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGTERM, signal.SIGINT})
     logging.basicConfig(level="WARNING", format="%(levelname)s %(name)s: %(message)s")
     try:
         config = config_from_text(sys.stdin.read(), args.source)
