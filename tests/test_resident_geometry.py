@@ -218,3 +218,17 @@ def test_sun_tables_are_kept_a_week_and_plans_for_ever(cfg, tmp_path):
     store.close()
     assert dates[0] == (DAY + timedelta(days=11 - SUN_TABLE_KEEP_DAYS)).isoformat()
     assert len(dates) == SUN_TABLE_KEEP_DAYS + 1 and n_plans == 12
+
+
+def test_the_fallback_child_gives_the_spas_geometry(cfg):
+    # The service's fallback: a fresh interpreter computes a sun table around the
+    # instant (python -m daemon.station.jobs sun); nothing is stored.
+    from daemon.station.jobs import ChildJobs
+
+    when = datetime(2027, 2, 15, 23, 17, 41, tzinfo=UTC)  # late afternoon at the site
+    table = SunTable.from_dict(ChildJobs(cfg, "/nonexistent/store.db").sun_table(when))
+    ours = table.geometry_at(when, cfg.site.elevation_m, 640.0, cfg.site.temperature_c)
+    ref = solar.geometry_at(when, cfg.site, 640.0)
+    assert ours.apparent_zenith_deg == pytest.approx(ref.apparent_zenith_deg,
+                                                     abs=ANGLE_TOL_DEG)
+    assert ours.airmass == pytest.approx(ref.airmass, rel=1e-7)
