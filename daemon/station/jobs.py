@@ -239,7 +239,7 @@ class ChildJobs:
 
     def cancel(self) -> None:
         """Kill the child in progress (the service is stopping); later runs fail at once."""
-        self._cancelled.set()
+        self._cancelled.set()  # before looking: see _run
         with self._lock:
             proc = self._running
         if proc is not None and proc.poll() is None:
@@ -257,8 +257,11 @@ class ChildJobs:
                                     stderr=subprocess.PIPE, text=True)
         except OSError as exc:
             raise ChildFailed(f"{what}: cannot start {self.python}: {exc}") from None
-        with self._lock:
+        with self._lock:  # cancel() either sees this child or we see its flag
             self._running = proc
+            cancelled = self._cancelled.is_set()
+        if cancelled:
+            proc.kill()
         try:
             out, err = proc.communicate(self.config.text, timeout=timeout)
         except subprocess.TimeoutExpired:
@@ -272,6 +275,8 @@ class ChildJobs:
                 self._running = None
         self._relay(what, err)
         rc = proc.returncode
+        if self._cancelled.is_set():
+            raise ChildFailed(f"{what}: cancelled, the service is stopping")
         if rc == EX_TEMPFAIL and not tempfail_ok:
             raise StoreRefused(f"{what}: the store refused the write ({_last(err)})")
         if rc not in (0, EX_TEMPFAIL):

@@ -161,12 +161,6 @@ class Service:
                               "configuration (its SHA-256 is not ours); not used")
         return plan[1], table[1]
 
-    def save_plan(self, day: date, out: dict) -> None:
-        """Store the plan of ``day`` (:func:`daemon.station.jobs.compute_plan`'s dict);
-        on a failing write, try again in RETRY_S."""
-        self.guarded(f"save-plan-{day}", f"plan for {day} not stored", self._store_plan,
-                     day, out)
-
     def _store_plan(self, day: date, out: dict) -> None:
         from daemon.station.jobs import store_plan
 
