@@ -48,8 +48,8 @@ class ReportingStore(Store):
         _say(f"event {eid}")
         return eid
 
-    def save_plan(self, plan_date, plan_dict, created_utc=None):
-        super().save_plan(plan_date, plan_dict, created_utc)
+    def save_plan(self, plan_date, plan_dict, created_utc=None, *args, **kwargs):
+        super().save_plan(plan_date, plan_dict, created_utc, *args, **kwargs)
         _say(f"plan {plan_date}")
 
     def save_session_results(self, plan_date, session, rows, fitted_utc=None):

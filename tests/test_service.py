@@ -25,7 +25,7 @@ from daemon.station.bench import quiet_site
 from daemon.station.clock import SimClock
 from daemon.station.planner import PlannedTarget, plan_day
 from daemon.station.service import Service
-from daemon.store.writer import Store
+from daemon.store.writer import Store, config_digest
 from tests.fakes import FakeRadiometer, FakeTracker
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -192,6 +192,10 @@ def test_life_cycle_under_systemd_notify(tmp_path):
         while not ({"READY=1", "WATCHDOG=1"} <= set(got)):
             got += sock.recv(4096).decode().splitlines()
         assert any(m.startswith("STATUS=") for m in got)
+        # The day was planned in a child: the resident process maps no extension module of
+        # numpy, pandas or scipy (proc(5), /proc/PID/maps lists the mapped files).
+        maps = Path(f"/proc/{svc.pid}/maps").read_text()
+        assert [m for m in ("numpy", "pandas", "scipy") if f"/{m}/" in maps] == []
         svc.send_signal(signal.SIGTERM)  # how fast it stops: benchmarks/bench_service.py
         rc = svc.wait(timeout=60)
         while "STOPPING=1" not in got:
@@ -199,9 +203,12 @@ def test_life_cycle_under_systemd_notify(tmp_path):
         assert rc == 0, svc.stderr.read()
         conn = sqlite3.connect(tmp_path / "svc.db")
         kinds = [k for (k,) in conn.execute("select kind from events order by id")]
+        hashes = {h for (h,) in conn.execute("select config_sha256 from plans union "
+                                              "select config_sha256 from sun_tables")}
         conn.close()
         assert kinds[0] == "start" and kinds[-1] == "stop"
         assert "device" in kinds and "plan" in kinds
+        assert hashes == {config_digest(cfg_path.read_text())}
     finally:
         sim.stdin.close()
         sim.wait(timeout=15)

@@ -1,20 +1,26 @@
-"""Extinction formulas of the atmosphere that need no solar position: pure numpy.
+"""Extinction formulas of the atmosphere that need no solar position, and refraction.
 
 Komhyr's ozone air mass and Bodhaine's Rayleigh optical depth are short published
 formulas pvlib does not carry. They live apart from :mod:`daemon.science.solar` (which
 imports pvlib and pandas) so the screening of a session, which the read-only commands
 reuse, can call them without the heavy imports. Angles in degrees, pressures in hPa.
+
+This module imports numpy only inside the functions that take arrays: the resident
+service (``heliotroped``) uses the scalar forms (:func:`kasten_young_airmass_at`,
+:func:`ozone_airmass_at`, :func:`refraction_deg`, :func:`site_pressure_hpa`) and holds
+no numpy (DEVELOPERS.md, "Architecture").
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
-from typing import TYPE_CHECKING
-
-import numpy as np
+from typing import TYPE_CHECKING, TypeAlias
 
 if TYPE_CHECKING:
+    from collections.abc import Sequence
+
+    import numpy as np
+
     from daemon.config.settings import Site
 
 #: Standard sea-level pressure [hPa]; Bodhaine et al. (1999) tabulate at this pressure.
@@ -23,7 +29,8 @@ STANDARD_PRESSURE_HPA = 1013.25
 #: Mean Earth radius used by Komhyr (1980) for the ozone air mass [km].
 EARTH_RADIUS_KM = 6371.229
 
-ArrayLike = float | Sequence[float] | np.ndarray
+# A string: numpy is not imported here at run time (see the module docstring).
+ArrayLike: TypeAlias = "float | Sequence[float] | np.ndarray"
 
 
 def site_pressure_hpa(site: Site) -> float:
@@ -64,6 +71,8 @@ def positive(name: str, value: float, unit: str) -> float:
 
 def like_input(value: ArrayLike, result: np.ndarray) -> float | np.ndarray:
     """Return a float for scalar input, an array otherwise."""
+    import numpy as np
+
     return float(result) if np.ndim(value) == 0 else np.asarray(result, dtype=float)
 
 
@@ -95,16 +104,33 @@ def ozone_airmass(apparent_zenith_deg: ArrayLike, station_height_m: float,
     spectrophotometer", WMO Global Ozone Research and Monitoring Project Report
     No. 6 (citation from memory; formula as given in docs/REFERENCES.md).
     """
+    import numpy as np
+
+    z = np.asarray(apparent_zenith_deg, dtype=float)
+    mu = _komhyr(np.sin(np.radians(z)), station_height_m, layer_height_km)
+    return like_input(apparent_zenith_deg, np.where(z > 90.0, np.nan, mu))
+
+
+def ozone_airmass_at(apparent_zenith_deg: float, station_height_m: float,
+                     layer_height_km: float = 22.0) -> float:
+    """:func:`ozone_airmass` of one zenith angle, without numpy [dimensionless]; NaN
+    beyond 90 degrees."""
+    z = float(apparent_zenith_deg)
+    if not z <= 90.0:
+        return math.nan
+    return float(_komhyr(math.sin(math.radians(z)), station_height_m, layer_height_km))
+
+
+def _komhyr(sin_z, station_height_m: float, layer_height_km: float):
+    """Komhyr's ratio for ``sin_z``, a float or an array (one formula for both forms)."""
     r_km = float(station_height_m) / 1000.0
     h_km = positive("layer_height_km", layer_height_km, "km")
     if r_km >= h_km:
         raise ValueError(f"station_height_m ({station_height_m:g} m) must lie below the ozone "
                          f"layer ({h_km:g} km)")
-    z = np.asarray(apparent_zenith_deg, dtype=float)
     outer = EARTH_RADIUS_KM + h_km
-    inner = (EARTH_RADIUS_KM + r_km) * np.sin(np.radians(z))
-    mu = outer / np.sqrt(outer**2 - inner**2)
-    return like_input(apparent_zenith_deg, np.where(z > 90.0, np.nan, mu))
+    inner = (EARTH_RADIUS_KM + r_km) * sin_z
+    return outer / (outer**2 - inner**2) ** 0.5
 
 
 #: Earth radius of the SPECTRL2 ozone air mass [km] (Bird and Riordan 1986, eq. 2-10).
@@ -176,6 +202,8 @@ def rayleigh_optical_depth(wavelength_nm: ArrayLike,
     from memory). At 3650 m and 20 deg N, ``g`` is lower than at the 45 deg sea-level
     reference, so this function gives tau_R about 0.3 % too small (estimate).
     """
+    import numpy as np
+
     p = positive("pressure_hpa", pressure_hpa, "hPa")
     wl = np.asarray(wavelength_nm, dtype=float)
     if not np.all(np.isfinite(wl) & (wl > 0)):
@@ -196,10 +224,26 @@ def kasten_young_airmass(apparent_zenith_deg: ArrayLike) -> np.ndarray:
     ``1 / (cos z + 0.50572 (96.07995 - z)^-1.6364)``, z the apparent zenith [deg];
     NaN beyond 90 degrees. The same formula as pvlib's ``kastenyoung1989`` (held to it
     by tests/test_atmosphere_light.py), written out so a session fit needs no pvlib."""
+    import numpy as np
+
     z = np.atleast_1d(np.asarray(apparent_zenith_deg, dtype=float))
     with np.errstate(invalid="ignore", divide="ignore"):
-        am = 1.0 / (np.cos(np.radians(z)) + 0.50572 * (96.07995 - z) ** -1.6364)
+        am = _kasten_young(z, np.cos(np.radians(z)))
     return np.where((z >= 0.0) & (z <= 90.0), am, np.nan)
+
+
+def kasten_young_airmass_at(apparent_zenith_deg: float) -> float:
+    """:func:`kasten_young_airmass` of one zenith angle, without numpy; NaN outside
+    0 to 90 degrees."""
+    z = float(apparent_zenith_deg)
+    if not 0.0 <= z <= 90.0:
+        return math.nan
+    return float(_kasten_young(z, math.cos(math.radians(z))))
+
+
+def _kasten_young(z, cos_z):
+    """Kasten and Young's formula for ``z`` and its cosine, floats or arrays."""
+    return 1.0 / (cos_z + 0.50572 * (96.07995 - z) ** -1.6364)
 
 
 def zenith_from_kasten_young(airmass: ArrayLike) -> np.ndarray:
@@ -207,6 +251,8 @@ def zenith_from_kasten_young(airmass: ArrayLike) -> np.ndarray:
     monotonically on 0-90 degrees; 60 halvings leave under 1e-16 degrees): the apparent
     zenith [deg] of each air mass, NaN outside 1/(1 + 0.50572 x 96.07995^-1.6364) to
     :data:`KY_HORIZON_AIRMASS`."""
+    import numpy as np
+
     m = np.atleast_1d(np.asarray(airmass, dtype=float))
     lo, hi = np.zeros_like(m), np.full_like(m, 90.0)
     for _ in range(60):
@@ -216,3 +262,49 @@ def zenith_from_kasten_young(airmass: ArrayLike) -> np.ndarray:
     z = 0.5 * (lo + hi)
     low = kasten_young_airmass(0.0)[0]
     return np.where((m >= low) & (m <= KY_HORIZON_AIRMASS), z, np.nan)
+
+
+# --------------------------------------------------------------------------- refraction
+
+#: Refraction at sunrise and sunset [degrees], the SPA's typical value (Reda and
+#: Andreas 2004, worked example inputs) and pvlib's default; below an unrefracted
+#: elevation of -(0.26667 + this) the SPA applies no refraction.
+SPA_HORIZON_REFRACTION_DEG = 0.5667
+
+
+def refraction_deg(elevation_deg: float, pressure_hpa: float, temperature_c: float) -> float:
+    """Atmospheric refraction of the sun's centre by the SPA [degrees], one angle.
+
+    ``(P / 1010) (283 / (273 + T)) 1.02 / (60 tan(e0 + 10.3 / (e0 + 5.11)))`` with the
+    unrefracted topocentric elevation ``e0`` [degrees], the pressure ``P`` [hPa] and the
+    temperature ``T`` [degC]; zero when ``e0`` lies below ``-(0.26667 + 0.5667)``
+    degrees. The apparent elevation is ``e0`` plus this.
+
+    Parameters
+    ----------
+    elevation_deg : float
+        Topocentric elevation without refraction, ``90 - zenith`` [degrees].
+    pressure_hpa : float
+        Station pressure [hPa].
+    temperature_c : float
+        Air temperature [degC].
+
+    Returns
+    -------
+    float
+        Refraction [degrees], positive (the sun appears higher).
+
+    References
+    ----------
+    Reda, I. and Andreas, A. (2004), "Solar position algorithm for solar radiation
+    applications", Solar Energy 76(5):577-589, :doi:`10.1016/j.solener.2003.12.003`,
+    eq. 42 (after Bennett's formula); written out here so the resident service needs
+    no pvlib; held to ``pvlib.spa.atmospheric_refraction_correction`` by
+    tests/test_resident_geometry.py.
+    """
+    e0 = float(elevation_deg)
+    p = positive("pressure_hpa", pressure_hpa, "hPa")
+    if e0 < -(0.26667 + SPA_HORIZON_REFRACTION_DEG):
+        return 0.0
+    return ((p / 1010.0) * (283.0 / (273.0 + float(temperature_c)))
+            * 1.02 / (60.0 * math.tan(math.radians(e0 + 10.3 / (e0 + 5.11)))))

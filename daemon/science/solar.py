@@ -17,6 +17,7 @@ Conventions
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -28,6 +29,7 @@ import pvlib
 import pvlib.spa
 
 from daemon.science.atmosphere import (  # noqa: F401 - part of this module's interface
+    SPA_HORIZON_REFRACTION_DEG,
     STANDARD_PRESSURE_HPA,
     ArrayLike,
     like_input,
@@ -36,14 +38,10 @@ from daemon.science.atmosphere import (  # noqa: F401 - part of this module's in
     rayleigh_optical_depth,
     site_pressure_hpa,
 )
+from daemon.science.suntable import COVER_ZENITH_DEG, PAD_NODES, STEP_S, Geometry, SunTable
 
 if TYPE_CHECKING:
     from daemon.config.settings import Site
-
-#: Refraction at sunrise and sunset, the SPA input that decides below which elevation
-#: no refraction is applied [degrees]; the SPA's typical value (Reda and Andreas 2004,
-#: worked example inputs) and pvlib's default.
-SPA_HORIZON_REFRACTION_DEG = 0.5667
 
 Times = datetime | Sequence[datetime] | pd.DatetimeIndex
 
@@ -343,39 +341,6 @@ def earth_sun_factor(times_utc: Times, delta_t_s: float | None = None) -> float 
 
 # --------------------------------------------------------------------------- one instant
 
-@dataclass(frozen=True)
-class Geometry:
-    """Solar geometry at one instant, as stored with each measurement.
-
-    Attributes
-    ----------
-    time_utc : datetime
-        The instant (aware, UTC).
-    apparent_zenith_deg, azimuth_deg, apparent_elevation_deg : float
-        Refracted zenith, azimuth east of north, refracted elevation [degrees].
-    airmass : float
-        Relative Kasten-Young air mass; NaN with the sun below the horizon.
-    ozone_airmass : float
-        Komhyr ozone air mass for a 22 km layer; NaN below the horizon.
-    earth_sun_factor : float
-        ``(1 AU / r)^2`` [dimensionless].
-    distance_au : float
-        Earth-Sun distance [AU].
-    pressure_hpa : float
-        The pressure used for refraction [hPa].
-    """
-
-    time_utc: datetime
-    apparent_zenith_deg: float
-    azimuth_deg: float
-    apparent_elevation_deg: float
-    airmass: float
-    ozone_airmass: float
-    earth_sun_factor: float
-    distance_au: float
-    pressure_hpa: float
-
-
 def geometry_at(when_utc: datetime, site: Site, pressure_hpa: float | None = None) -> Geometry:
     """Solar geometry and air masses at one instant.
 
@@ -409,3 +374,55 @@ def geometry_at(when_utc: datetime, site: Site, pressure_hpa: float | None = Non
         distance_au=r,
         pressure_hpa=p_hpa,
     )
+
+
+# --------------------------------------------------------------------------- sun table
+
+def sun_table(site: Site, start_unix: float, end_unix: float, delta_t_s: float,
+              step_s: float = STEP_S, cover_zenith_deg: float = COVER_ZENITH_DEG) -> SunTable:
+    """The SPA's unrefracted geometry on a grid, for reading back without pvlib.
+
+    Parameters
+    ----------
+    site : daemon.config.settings.Site
+    start_unix, end_unix : float
+        The window [POSIX s]; nodes run from ``start_unix`` every ``step_s`` up to
+        and including the first at or after ``end_unix``.
+    delta_t_s : float
+        Terrestrial minus universal time [s].
+    step_s : float, default :data:`daemon.science.suntable.STEP_S`
+    cover_zenith_deg : float, default :data:`daemon.science.suntable.COVER_ZENITH_DEG`
+        The table keeps the nodes where the geometric zenith is below this [degrees]
+        (180 keeps them all).
+
+    Returns
+    -------
+    SunTable
+        Trimmed to the nodes where the geometric zenith is below
+        ``cover_zenith_deg``, with
+        :data:`~daemon.science.suntable.PAD_NODES` more at each end (the cubic needs
+        them); empty when the sun stays below that all window long.
+
+    Notes
+    -----
+    The geometric zenith, azimuth and distance do not depend on pressure or
+    temperature; refraction is applied when the table is read
+    (:meth:`SunTable.geometry_at`).
+    """
+    n = int(math.ceil((end_unix - start_unix) / step_s)) + 1
+    grid = start_unix + step_s * np.arange(n, dtype=float)
+    pos = sun_position_unix(grid, site, site_pressure_hpa(site), site.temperature_c,
+                            delta_t_s)
+    up = np.nonzero(pos.zenith_deg <= cover_zenith_deg)[0]
+    if up.size == 0:
+        return SunTable(start_unix=float(start_unix), step_s=float(step_s), zenith_deg=(),
+                        azimuth_deg=(), distance_au=(), delta_t_s=float(delta_t_s))
+    first, last = max(int(up[0]) - PAD_NODES, 0), min(int(up[-1]) + PAD_NODES, n - 1)
+    part = slice(first, last + 1)
+    distance = pvlib.spa.earthsun_distance(grid[part], delta_t_s, 1)
+    return SunTable(
+        start_unix=float(grid[first]), step_s=float(step_s),
+        zenith_deg=tuple(float(v) for v in pos.zenith_deg[part]),
+        azimuth_deg=tuple(float(v) for v in np.unwrap(pos.azimuth_deg[part], period=360.0)),
+        distance_au=tuple(float(v) for v in np.asarray(distance, dtype=float)),
+        delta_t_s=float(delta_t_s))

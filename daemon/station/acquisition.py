@@ -6,6 +6,13 @@ to fit a finished session. :func:`run_day` walks a day's plan with any clock: th
 simulated clock for the demo and the tests, the real clock in the service. Device
 trouble never escapes from here: it becomes an event and, for a target, a measurement
 stored as failed, and the day goes on.
+
+This module is part of the resident service, which holds no pvlib, numpy, scipy or
+pandas (DEVELOPERS.md, "Architecture"): the geometry of a burst comes from the day's
+stored sun table (:mod:`daemon.science.suntable`), the fit and the plan from
+callables that run in a child process in the service (:mod:`daemon.station.jobs`) and
+in this process for the demo, the bench and the tests, which import the science
+lazily.
 """
 
 from __future__ import annotations
@@ -13,18 +20,19 @@ from __future__ import annotations
 import dataclasses
 import logging
 import math
-import sqlite3
 import threading
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta
+from typing import Any
 
 from daemon.config.settings import Config
-from daemon.science import solar
+from daemon.science.atmosphere import site_pressure_hpa
+from daemon.science.suntable import Geometry, SunTable
 from daemon.station.clock import Clock
-from daemon.station.fitting import fit_stored_session
-from daemon.station.planner import Plan, PlanEvent, PlannedTarget, plan_day
-from daemon.store.reader import StoreError
-from daemon.store.writer import MeasurementRecord, Store
+from daemon.station.jobs import ChildFailed
+from daemon.station.plans import Plan, PlanEvent, PlannedTarget
+from daemon.store.writer import STORE_ERRORS, MeasurementRecord, Store, config_digest
 from drivers.interfaces import (
     Burst,
     DeviceError,
@@ -47,11 +55,14 @@ PLAUSIBLE_HOUSEKEEPING = {
     "ambient_temp_c": (-60.0, 60.0), "supply_v": (0.0, 60.0), "humidity_pct": (0.0, 100.0),
     "pressure_hpa": (300.0, 1100.0),
 }
-#: What a store write raises when it cannot be done (a full disk, a read-only file
-#: system, a store in use): survived, and the write tried again later.
-STORE_ERRORS = (sqlite3.Error, StoreError)
 POLL_S = 1.0  # tracker state polling interval while waiting for a lock
 SLEW_TIMEOUT_S = 180.0  # a full-circle slew of a slow tracker, with margin
+SUN_TABLES_HELD = 3  # sun tables kept in memory (today's, and a day either side)
+
+#: Fits one stored session and stores the results: (plan date, session, now) -> rows.
+Fitter = Callable[[date, str, datetime], list[dict[str, Any]]]
+#: A sun table around one instant, as a dict (:meth:`SunTable.to_dict`).
+SunFallback = Callable[[datetime], dict[str, Any]]
 
 
 class NoSunLock(Exception):
@@ -74,15 +85,70 @@ class Station:
     """The devices, the store and the clock of one site."""
 
     def __init__(self, config: Config, radiometer: Radiometer, tracker: Tracker,
-                 store: Store, clock: Clock):
+                 store: Store, clock: Clock, fitter: Fitter | None = None,
+                 sun_fallback: SunFallback | None = None):
         self.config = config
         self.radiometer = radiometer
         self.tracker = tracker
         self.store = store
         self.clock = clock
-        self.pressure_hpa = solar.site_pressure_hpa(config.site)
+        self.pressure_hpa = site_pressure_hpa(config.site)
         self.stopping = threading.Event()
         self._link_seen: dict[str, dict[str, int]] = {}
+        #: The SHA-256 of the configuration text: a plan or sun table stored for
+        #: another one is not used.
+        self.config_sha256 = config_digest(config.text)
+        #: Fits a session (in this process unless the service hands it to a child).
+        self.fitter: Fitter = fitter or self._fit_here
+        #: A sun table around an instant the day's table does not cover.
+        self.sun_fallback: SunFallback = sun_fallback or self._sun_table_here
+        self._sun_tables: dict[str, SunTable | None] = {}
+
+    # ------------------------------------------------------------------ geometry
+
+    def use_sun_table(self, plan_date: date, table: SunTable) -> None:
+        """Take ``table`` as the sun table of ``plan_date`` (just planned)."""
+        self._sun_tables[plan_date.isoformat()] = table
+        while len(self._sun_tables) > SUN_TABLES_HELD:
+            self._sun_tables.pop(min(self._sun_tables))
+
+    def geometry(self, when: datetime, plan_date: date, pressure_hpa: float) -> Geometry:
+        """Solar geometry at ``when`` from the stored sun table of ``plan_date``, refracted
+        at ``pressure_hpa`` [hPa] and the site's temperature. Outside the table (or with
+        none stored for this configuration) it comes from :attr:`sun_fallback`, with a
+        warning event, so the stored value is the SPA's either way."""
+        site = self.config.site
+        table = self._sun_table(plan_date)
+        geo = None if table is None else table.geometry_at(when, site.elevation_m,
+                                                           pressure_hpa, site.temperature_c)
+        if geo is None:
+            self.event("warning", "geometry_fallback",
+                       f"{when:%Y-%m-%d %H:%M:%S} UTC lies outside the stored sun table of "
+                       f"{plan_date}; geometry computed by the full solar position algorithm",
+                       {"date": plan_date.isoformat()})
+            geo = SunTable.from_dict(self.sun_fallback(when)).geometry_at(
+                when, site.elevation_m, pressure_hpa, site.temperature_c)
+            if geo is None:
+                raise ChildFailed(f"the fallback sun table does not cover {when.isoformat()}")
+        return geo
+
+    def _sun_table(self, plan_date: date) -> SunTable | None:
+        key = plan_date.isoformat()
+        if key not in self._sun_tables:
+            table = None
+            try:
+                stored = self.store.sun_table(key)
+                if stored is not None and stored[0] == self.config_sha256:
+                    table = SunTable.from_dict(stored[1])
+            except (ValueError, *STORE_ERRORS) as exc:
+                log.error("sun table of %s not usable: %s", key, exc)
+            self.use_sun_table(plan_date, table)
+        return self._sun_tables[key]
+
+    def _sun_table_here(self, when: datetime) -> dict[str, Any]:
+        from daemon.station.jobs import sun_table_around
+
+        return sun_table_around(self.config, when)
 
     # ------------------------------------------------------------------ events
 
@@ -194,7 +260,7 @@ class Station:
         # alone: a new slew would only cost lock time.
         if not (state.mode == "tracking" and state.locked
                 and state.error_deg <= acq.max_pointing_error_deg):
-            aim = solar.geometry_at(self.clock.now(), self.config.site, self.pressure_hpa)
+            aim = self.geometry(self.clock.now(), plan_date, self.pressure_hpa)
             self.tracker.goto(aim.azimuth_deg, aim.apparent_elevation_deg)
             self.tracker.follow_sun(True)
         self._wait_for_lock()
@@ -211,7 +277,7 @@ class Station:
         self._check_shape(burst, dark)
         mean_time = started + timedelta(seconds=burst.duration_s / 2)
         pressure = housekeeping.pressure_hpa or self.pressure_hpa
-        geo = solar.geometry_at(mean_time, self.config.site, pressure)
+        geo = self.geometry(mean_time, plan_date, pressure)
         return MeasurementRecord(
             time_utc=mean_time, plan_date=plan_date.isoformat(), session=target.session,
             target_airmass=target.airmass, status="ok", failure=None,
@@ -254,7 +320,11 @@ class Station:
     def _failed_record(self, target: PlannedTarget, plan_date: date,
                        why: str) -> MeasurementRecord:
         now = self.clock.now()
-        geo = solar.geometry_at(now, self.config.site, self.pressure_hpa)
+        try:
+            geo = self.geometry(now, plan_date, self.pressure_hpa)
+        except Exception as exc:  # the failure must still be stored, without geometry
+            log.error("no geometry for the failed measurement: %s", exc)
+            geo = _NO_GEOMETRY
         return MeasurementRecord(
             time_utc=now, plan_date=plan_date.isoformat(), session=target.session,
             target_airmass=target.airmass, status="failed", failure=why,
@@ -274,18 +344,23 @@ class Station:
         A store that refuses the write is logged; with ``strict`` the error is raised
         as well, for a caller that tries again later (the service)."""
         try:
-            rows = fit_stored_session(self.store, self.config, plan_date.isoformat(), session,
-                                      self.clock.now())
-        except STORE_ERRORS as exc:
+            rows = self.fitter(plan_date, session, self.clock.now())
+        except (*STORE_ERRORS, ChildFailed) as exc:
             if strict:
                 raise
-            self.event("error", "store_error", f"{plan_date} {session}: fit not stored: {exc}")
+            self.event("error", "store_error" if isinstance(exc, STORE_ERRORS) else
+                       "job_error", f"{plan_date} {session}: fit not stored: {exc}")
             return []
         accepted = sum(1 for r in rows if r["accepted"])
         self.event("info", "session_fit",
                    f"{plan_date} {session}: {accepted}/{len(rows)} channels accepted",
                    {"date": plan_date.isoformat(), "session": session})
         return rows
+
+    def _fit_here(self, plan_date: date, session: str, now: datetime) -> list[dict[str, Any]]:
+        from daemon.station.fitting import fit_stored_session
+
+        return fit_stored_session(self.store, self.config, plan_date.isoformat(), session, now)
 
     def park(self) -> None:
         try:
@@ -332,9 +407,18 @@ def perform(station: Station, item: PlannedTarget | PlanEvent, day: date,
 
 def run_day(station: Station, day: date, plan: Plan | None = None,
             on_step=None, stop=lambda: False) -> dict[str, list[dict]]:
-    """Walk one day's plan with ``station.clock``; return the session fits by session."""
-    plan = plan or plan_day(station.config, day)
-    station.store.save_plan(day.isoformat(), plan.to_dict())
+    """Walk one day's plan with ``station.clock``; return the session fits by session.
+    The plan and the day's sun table are computed here (with the science) and stored,
+    as the service's child does; a given ``plan`` is stored with the day's sun table."""
+    from daemon.station.jobs import compute_plan, store_plan
+
+    out = compute_plan(station.config, day)
+    if plan is None:
+        plan = Plan.from_dict(out["plan"])
+    else:
+        out["plan"] = plan.to_dict()
+    store_plan(station.store, day, out, station.clock.now())
+    station.use_sun_table(day, SunTable.from_dict(out["sun_table"]))
     fits: dict[str, list[dict]] = {}
     for item in plan.timeline():
         station.clock.sleep_until(item.time_utc)
@@ -345,6 +429,15 @@ def run_day(station: Station, day: date, plan: Plan | None = None,
             on_step(outcome)
         station.store.heartbeat(station.clock.now())
     return fits
+
+
+#: The geometry of a failed measurement whose time no sun table covers and whose
+#: fallback failed too: unknown, stored as NULL.
+_NO_GEOMETRY = Geometry(time_utc=datetime.fromtimestamp(0, UTC), apparent_zenith_deg=math.nan,
+                        azimuth_deg=math.nan, apparent_elevation_deg=math.nan,
+                        airmass=math.nan, ozone_airmass=math.nan,
+                        earth_sun_factor=math.nan, distance_au=math.nan,
+                        pressure_hpa=math.nan)
 
 
 def open_devices(config: Config) -> tuple[Radiometer, Tracker]:

@@ -7,6 +7,11 @@ thread, so two targets never fight over the serial ports, and the once-a-minute
 ``tick`` (heartbeat, systemd watchdog, clock-step check) runs on that same worker: a
 worker stuck in a hung call stops the watchdog pings and systemd restarts the service.
 
+The resident process stays small (no pvlib, numpy, scipy or pandas): the day's plan
+and the session fits run in short-lived child processes (:mod:`daemon.station.jobs`)
+that write into the store; the service reads the stored plan and sun table back and
+schedules from them. Tests pass no ``children`` and plan and fit in this process.
+
 Exit codes: 0 stopped by a signal; 74 the store cannot be opened safely (it is left
 untouched); 78 bad configuration.
 """
@@ -67,7 +72,10 @@ class Service:
     """The scheduler adapter. ``scheduler`` and ``clock`` are injectable for tests."""
 
     def __init__(self, config: Config, store, radiometer, tracker, clock=None,
-                 scheduler=None):
+                 scheduler=None, children=None):
+        """``children`` (a :class:`daemon.station.jobs.ChildJobs`, or anything with its
+        ``plan``, ``fit``, ``sun_table`` and ``cancel``) plans and fits in child
+        processes; without it both run in this process (the tests' seam)."""
         from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED
         from apscheduler.executors.pool import ThreadPoolExecutor
         from apscheduler.schedulers.blocking import BlockingScheduler
@@ -76,7 +84,11 @@ class Service:
         from daemon.station.clock import RealClock, StepDetector
 
         self.clock = clock or RealClock()
+        self.children = children
         self.station = Station(config, radiometer, tracker, store, self.clock)
+        if children is not None:
+            self.station.fitter = self._fit_in_child
+            self.station.sun_fallback = children.sun_table
         self.steps = StepDetector(self.clock, CLOCK_STEP_S)
         self.fits: dict[str, list[dict]] = {}
         self.done: set[tuple] = set()
@@ -100,22 +112,65 @@ class Service:
         return self.clock.now().astimezone(self.station.config.tz).date()
 
     def schedule_day(self, day: date) -> None:
-        """Plan ``day`` and turn every item still ahead into a job."""
-        from daemon.station.planner import plan_day
+        """Plan ``day`` (in a child, or here without ``children``), read the stored plan
+        and sun table back and turn every item still ahead into a job.
 
-        plan = plan_day(self.station.config, day)
+        Raises :class:`daemon.station.jobs.ChildFailed` when the child fails or what is
+        stored was computed from another configuration (its SHA-256 differs)."""
+        from daemon.science.suntable import SunTable
+        from daemon.station.jobs import ChildFailed, plan_and_store
+        from daemon.station.plans import Plan
+
+        now = self.clock.now()
+        if self.children is not None:
+            out = self.children.plan(day, now)
+        else:
+            out = plan_and_store(self.station.config, self.station.store, day, now)
+        own = self.station.config_sha256
+        if out["config_sha256"] != own:
+            raise ChildFailed(f"the plan for {day} was computed from another configuration "
+                              f"(SHA-256 {str(out['config_sha256'])[:12]}, ours {own[:12]}); "
+                              "not used")
+        if out["stored"]:
+            plan_dict, table = self._stored_plan(day)
+        else:
+            plan_dict, table = out["plan"], out["sun_table"]
+        try:
+            plan, sun = Plan.from_dict(plan_dict), SunTable.from_dict(table)
+        except ValueError as exc:
+            raise ChildFailed(f"the plan for {day}: {exc}") from None
+        self.station.use_sun_table(day, sun)
         # The targets do not need the stored plan: schedule them even when it cannot be
         # written, and keep trying to store it, so a full disk costs no day.
         self.schedule_plan(plan, day)
-        self.save_plan(day, plan.to_dict())
+        if not out["stored"]:
+            self._retry_later(f"save-plan-{day}", f"plan for {day} not stored",
+                              out["store_error"], self._store_plan, day, out)
 
-    def save_plan(self, day: date, plan_dict: dict) -> None:
-        """Store the plan of ``day``; on a failing write, try again in RETRY_S."""
-        self.guarded(f"save-plan-{day}", f"plan for {day} not stored", self._store_plan,
-                     day, plan_dict)
+    def _stored_plan(self, day: date) -> tuple[dict, dict]:
+        """The plan and sun table of ``day`` as stored, both for our configuration."""
+        from daemon.station.jobs import ChildFailed
 
-    def _store_plan(self, day: date, plan_dict: dict) -> None:
-        self.station.store.save_plan(day.isoformat(), plan_dict, self.clock.now())
+        store, own = self.station.store, self.station.config_sha256
+        plan, table = store.stored_plan(day), store.sun_table(day)
+        if plan is None or table is None:
+            raise ChildFailed(f"the plan for {day} was reported stored but is not in the "
+                              "store")
+        if plan[0] != own or table[0] != own:
+            raise ChildFailed(f"the stored plan for {day} was computed from another "
+                              "configuration (its SHA-256 is not ours); not used")
+        return plan[1], table[1]
+
+    def _store_plan(self, day: date, out: dict) -> None:
+        from daemon.station.jobs import store_plan
+
+        store_plan(self.station.store, day, out, self.clock.now())
+
+    def _fit_in_child(self, day: date, session: str, now: datetime) -> list[dict]:
+        """The station's fitter with ``children``: the child fits and stores; the rows
+        are read back from the store."""
+        self.children.fit(day, session, now)
+        return self.station.store.session_results(day, session)
 
     def again_later(self, job_id: str, func: Callable[..., object], *args: object) -> datetime:
         """Run ``func(*args)`` again in RETRY_S as the one-shot job ``job_id`` (replacing
@@ -137,18 +192,23 @@ class Service:
         try:
             func(*args)
         except STORE_ERRORS as exc:
-            when = self.again_later(f"retry-{job_id}", self.guarded, job_id, what, func, *args)
-            self.station.event("error", "store_error",
-                               f"{what}: {exc}; trying again at {when:%H:%M:%S} UTC",
-                               {"job": job_id})
+            self._retry_later(job_id, what, exc, func, *args)
             return False
         return True
+
+    def _retry_later(self, job_id: str, what: str, why: object,
+                     func: Callable[..., object], *args: object) -> None:
+        """A refused write: an event, and ``guarded(func, *args)`` again in RETRY_S."""
+        when = self.again_later(f"retry-{job_id}", self.guarded, job_id, what, func, *args)
+        self.station.event("error", "store_error",
+                           f"{what}: {why}; trying again at {when:%H:%M:%S} UTC",
+                           {"job": job_id})
 
     def schedule_plan(self, plan, day: date) -> None:
         """Jobs for the items of ``plan`` that are still ahead. Items already past (a
         restart or a clock step in mid-session) are recorded as missed targets; items
         already carried out are not repeated."""
-        from daemon.station.planner import PlannedTarget
+        from daemon.station.plans import PlannedTarget
 
         for job in self.scheduler.get_jobs():
             if job.id.startswith("plan-"):
@@ -205,6 +265,7 @@ class Service:
     def run_item(self, item, day: date) -> None:
         """One plan item on the worker thread; nothing it raises stops the service."""
         from daemon.station.acquisition import STORE_ERRORS, perform
+        from daemon.station.jobs import ChildFailed
 
         key = (day, item)
         if key in self.done or self.station.stopping.is_set():
@@ -213,12 +274,13 @@ class Service:
         self._idle.clear()
         try:
             result = perform(self.station, item, day, self.fits, strict=True)
-        except STORE_ERRORS as exc:
-            # A fit whose results could not be written: the same item again later
-            # (a target never gets here: its air mass would be gone by then).
+        except (*STORE_ERRORS, ChildFailed) as exc:
+            # A fit whose results could not be written, or whose child failed: the same
+            # item again later (a target never gets here: its air mass would be gone).
             self.done.discard(key)
             when = self.again_later(f"retry-{day}-{item.kind}", self.run_item, item, day)
-            self.station.event("error", "store_error",
+            kind = "job_error" if isinstance(exc, ChildFailed) else "store_error"
+            self.station.event("error", kind,
                                f"{_describe(item)} not stored: {exc}; trying again at "
                                f"{when:%H:%M:%S} UTC")
             return
@@ -333,6 +395,8 @@ class Service:
         scheduler takes locks that the interrupted main thread may be holding."""
         self.station.stopping.set()
         self.clock.wake()
+        if self.children is not None:  # a plan or fit in progress: killed, not awaited
+            self.children.cancel()
         if self.scheduler.running:
             self.scheduler.shutdown(wait=False)
 
@@ -450,7 +514,9 @@ def main(argv: list[str] | None = None) -> int:
         print(f"heliotroped: {exc}", file=sys.stderr)
         return EX_CONFIG
 
+    import_writer_without_type_maps()
     from daemon.station.acquisition import open_devices
+    from daemon.station.jobs import ChildJobs
     from daemon.store.reader import software_version
     from daemon.store.writer import Store, StoreError
 
@@ -465,7 +531,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f"heliotroped: {exc}", file=sys.stderr)
         return EX_IOERR
     radiometer, tracker = open_devices(config)
-    service = Service(config, store, radiometer, tracker)
+    service = Service(config, store, radiometer, tracker,
+                      children=ChildJobs(config, str(store.path)))
     finished = threading.Event()
     threading.Thread(target=_stop_on_signal, args=(service, finished), daemon=True,
                      name="signals").start()
@@ -476,6 +543,34 @@ def main(argv: list[str] | None = None) -> int:
         release_devices(radiometer, tracker)
         store.close()
     return 0
+
+
+#: What sqlite-utils imports at import time only for its optional column-type maps.
+OPTIONAL_TYPE_MAP_MODULES = ("pandas", "numpy")
+
+
+def import_writer_without_type_maps() -> None:
+    """Import the store's writer (and sqlite-utils) without pandas and numpy.
+
+    sqlite-utils 4 imports pandas and numpy at import time, when they are installed
+    (pvlib installs them), only to add their scalar types to the map it uses to choose
+    a column type when it creates a table from values (``sqlite_utils.db``,
+    ``COLUMN_TYPE_MAPPING``); that costs the resident service about 50 MB. Our schema
+    is created by the migrations with Python types and the service writes Python
+    numbers, so the map is not needed here. The modules are marked absent
+    (``sys.modules[name] = None`` makes ``import`` raise ImportError, which sqlite-utils
+    catches) only while the writer is imported, then unmarked, so that a later import
+    of them still works. Tested by tests/test_resident_memory.py.
+    """
+    marked = [m for m in OPTIONAL_TYPE_MAP_MODULES if m not in sys.modules]
+    for name in marked:
+        sys.modules[name] = None  # type: ignore[assignment]
+    try:
+        import daemon.store.writer  # noqa: F401
+    finally:
+        for name in marked:
+            if sys.modules.get(name, 0) is None:
+                del sys.modules[name]
 
 
 def _migrating(names: list[str]) -> None:

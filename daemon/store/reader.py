@@ -317,6 +317,41 @@ def stored_plan(conn: sqlite3.Connection,
     return decode_plan(row[1], row[0]) if row else None
 
 
+def stored_sun_table(conn: sqlite3.Connection,
+                     plan_date: str | _dt.date) -> tuple[str, dict[str, Any]] | None:
+    """The stored sun table of one local date as (configuration SHA-256, table dict),
+    or None when there is none (a store from before m007 has no such table). A row that
+    is not JSON raises :class:`DamagedStoreError`."""
+    try:
+        row = conn.execute("SELECT config_sha256, table_json FROM sun_tables "
+                           "WHERE plan_date = ?", (check_plan_date(plan_date),)).fetchone()
+    except sqlite3.OperationalError as exc:
+        if "no such table" in str(exc):
+            return None
+        raise
+    if row is None:
+        return None
+    try:
+        return row[0], json.loads(row[1])
+    except (TypeError, ValueError):
+        raise DamagedStoreError(f"the stored sun table for {plan_date} is not JSON; the "
+                                "service computes it again when it next plans that day"
+                                ) from None
+
+
+def stored_plan_digest(conn: sqlite3.Connection, plan_date: str | _dt.date) -> str | None:
+    """The configuration SHA-256 the stored plan of ``plan_date`` was computed from;
+    None when there is no plan, or it was stored without one (before m007)."""
+    try:
+        row = conn.execute("SELECT config_sha256 FROM plans WHERE plan_date = ?",
+                           (check_plan_date(plan_date),)).fetchone()
+    except sqlite3.OperationalError as exc:
+        if "no such column" in str(exc):
+            return None
+        raise
+    return row[0] if row else None
+
+
 def recent_events(conn: sqlite3.Connection, limit: int = 20) -> list[dict[str, Any]]:
     """The newest ``limit`` events, newest first; ``detail`` decoded from JSON."""
     cur = conn.execute("SELECT id, time_utc, level, kind, message, detail FROM events "

@@ -38,7 +38,11 @@ from daemon.store.reader import (
     SESSIONS,
     StoreError,
     check_plan_date,
+    results_between,
     session_points,
+    stored_plan,
+    stored_plan_digest,
+    stored_sun_table,
 )
 from drivers.interfaces import Housekeeping
 
@@ -51,6 +55,11 @@ EVENT_LEVELS = ("debug", "info", "warning", "error", "critical")
 #: command that writes (calibrate with --config).
 CONFIG_ORIGINS = ("service", "bench", "operator")
 BUSY_TIMEOUT_S = 5.0
+#: What a store write raises when it cannot be done (a full disk, a read-only file
+#: system, a store in use): the service survives it and tries the write again later.
+STORE_ERRORS = (sqlite3.Error, StoreError)
+#: Sun tables kept before the newest plan's date [days] (see Store.save_plan).
+SUN_TABLE_KEEP_DAYS = 7
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 # --------------------------------------------------------------------------- schema
@@ -207,6 +216,17 @@ def m006_water_vapour(db: Database) -> None:
     db["aod"].add_column("precipitable_water_cm", float)
 
 
+@migrations()
+def m007_sun_tables(db: Database) -> None:
+    # The plan's child process stores, beside the plan, the day's sun table (the SPA's
+    # unrefracted geometry on a time grid, which the resident service interpolates
+    # without pvlib) and, with both, the SHA-256 of the configuration text they were
+    # computed from: the service uses neither when the hash is not its own.
+    db.execute("ALTER TABLE plans ADD COLUMN config_sha256 TEXT")
+    db["sun_tables"].create({
+        "plan_date": str, "config_sha256": str, "created_utc": str, "table_json": str,
+    }, pk="plan_date", not_null=["config_sha256", "created_utc", "table_json"])
+
 
 @migrations()
 def m008_configuration_data(db: Database) -> None:
@@ -219,11 +239,17 @@ def m008_configuration_data(db: Database) -> None:
         db.execute("UPDATE configurations SET data_json = ? WHERE id = ?",
                    (configuration_json(text), cid))
 
+
 # Every migration is pending on an empty database: that lists the names this version knows.
 KNOWN_MIGRATIONS = frozenset(m.name for m in migrations.pending(
     Database(memory=True, execute_plugins=False)))
 
 # --------------------------------------------------------------------------- records
+
+
+def config_digest(text: str) -> str:
+    """The SHA-256 of a configuration text, as recorded with results and plans."""
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
 def configuration_json(text: str) -> str | None:
@@ -445,7 +471,7 @@ class Store:
         if not text.strip():
             raise ValueError("an empty configuration text cannot be recorded; pass the "
                              "text of the YAML file the run loaded")
-        digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
+        digest = config_digest(text)
         when = utc_iso(now)
         with self._lock, self.db.atomic():
             row = self.db.conn.execute(
@@ -529,17 +555,35 @@ class Store:
             return int(self.db["events"].insert(row).last_pk)
 
     def save_plan(self, plan_date: str | _dt.date, plan_dict: Mapping[str, Any],
-                  created_utc: _dt.datetime | None = None) -> None:
-        """Store (or replace) the plan of one local date as JSON.
+                  created_utc: _dt.datetime | None = None, config_sha256: str | None = None,
+                  sun_table: Mapping[str, Any] | None = None) -> None:
+        """Store (or replace) the plan of one local date as JSON, and with it, in the
+        same transaction, the day's sun table when one is given.
 
         ``created_utc`` should come from the injected clock; the system clock is
-        used when it is left out.
+        used when it is left out. ``config_sha256`` is the SHA-256 of the
+        configuration text the plan was computed from (:func:`config_digest`). Sun
+        tables are derived data (a pure function of the configuration and the date):
+        those more than :data:`SUN_TABLE_KEEP_DAYS` before ``plan_date`` are deleted
+        as a new one is stored, so they cost a few days' worth of rows, not years'.
         """
         created = created_utc if created_utc is not None else _dt.datetime.now(_dt.UTC)
-        row = {"plan_date": check_plan_date(plan_date), "created_utc": utc_iso(created),
-               "plan_json": _dumps(plan_dict)}
+        date = check_plan_date(plan_date)
+        row = {"plan_date": date, "created_utc": utc_iso(created),
+               "plan_json": _dumps(plan_dict), "config_sha256": config_sha256}
         with self._lock, self.db.atomic():
             self.db["plans"].insert(row, replace=True)
+            if sun_table is not None:
+                if config_sha256 is None:
+                    raise ValueError("a sun table is stored with the SHA-256 of its "
+                                     "configuration; pass config_sha256")
+                oldest = _dt.date.fromisoformat(date) - _dt.timedelta(days=SUN_TABLE_KEEP_DAYS)
+                self.db.execute("DELETE FROM sun_tables WHERE plan_date < ?",
+                                (oldest.isoformat(),))
+                self.db["sun_tables"].insert({
+                    "plan_date": date, "config_sha256": config_sha256,
+                    "created_utc": utc_iso(created), "table_json": _dumps(sun_table)},
+                    replace=True)
 
     def save_session_results(self, plan_date: str | _dt.date, session: str,
                              rows: Iterable[Mapping[str, Any]],
@@ -712,6 +756,27 @@ class Store:
                                    replace=True)
 
     # ------------------------------------------------------------------ reading
+
+    def sun_table(self, plan_date: str | _dt.date) -> tuple[str, dict[str, Any]] | None:
+        """The stored sun table of a date as (configuration SHA-256, table dict), or
+        None (see :func:`daemon.store.reader.stored_sun_table`)."""
+        with self._lock:
+            return stored_sun_table(self.db.conn, plan_date)
+
+    def stored_plan(self, plan_date: str | _dt.date) -> tuple[str | None, dict[str, Any]] | None:
+        """The stored plan of a date as (configuration SHA-256 or None, plan dict), or
+        None when there is none."""
+        with self._lock:
+            plan = stored_plan(self.db.conn, plan_date)
+            return None if plan is None else (stored_plan_digest(self.db.conn, plan_date),
+                                              plan)
+
+    def session_results(self, plan_date: str | _dt.date, session: str) -> list[dict[str, Any]]:
+        """The stored results of one session in the JSON contract."""
+        date = check_plan_date(plan_date)
+        with self._lock:
+            return [r for r in results_between(self.db.conn, date, date)
+                    if r["session"] == session]
 
     def session_points(self, plan_date: str | _dt.date, session: str) -> list[SessionPoint]:
         """The 'ok' measurements of one session with per-channel sample aggregates.
