@@ -162,6 +162,8 @@ def ozone_airmass_above_observer(apparent_zenith_deg: ArrayLike,
     float or numpy.ndarray
         Ozone air mass [dimensionless]; NaN beyond 90 degrees.
     """
+    import numpy as np
+
     h = positive("layer_height_km", layer_height_km, "km") / SPECTRL2_EARTH_RADIUS_KM
     z = np.asarray(apparent_zenith_deg, dtype=float)
     mu = (1.0 + h) / np.sqrt(np.cos(np.radians(z)) ** 2 + 2.0 * h)
