@@ -12,7 +12,10 @@ beside it, by a plain ``numpy.polyfit`` line through the same corrected points (
 Cases: stable; slowly varying (a 6 h sinusoid of 30 % in the aerosol); noon-peaked
 haze (+0.03 at 500 nm, 2 h wide); cirrus (a 25 min and a 20 min band, optical depth
 0.05 and 0.08, patchy); a pressure ramp (-1 hPa/h); a western site (150 W) whose
-afternoon crosses 00 h UTC; 940 nm at 0.2, 0.5, 1.0 and 2.0 cm.
+afternoon crosses 00 h UTC; the stable sky with its aerosol layer at either end of the
+heights the uncertainty budget spans (0.5 and 3 km,
+``daemon.science.sessionfit.AEROSOL_SCALE_HEIGHTS_KM``); 940 nm at 0.2, 0.5, 1.0 and
+2.0 cm.
 
 Per case and channel it prints, first for each session fitted alone: sessions, the
 accepted share, our V0-at-1-AU error (mean and rms over all sessions; percent), the
@@ -28,8 +31,17 @@ stores it, and handed to the fit by
 :func:`daemon.science.campaign.drift_repeatability` as the service's
 ``campaign_repeatability`` does); and polyfit's rms error.
 
+With ``--widening`` it prints, per case and channel, how the statistical term's
+widening for residuals correlated along the air mass
+(:func:`daemon.science.langley.residual_correlation`) acted on the sessions fitted
+alone: the share widened, the median and largest factor, rms(error/uncertainty) as
+stated and with that one factor taken out, and the 90 % interval of the true rms that
+the stated one allows from this many sessions (chi-square with one degree of freedom
+per session, for normal errors; common practice, no source); and the same for
+white noise (numpy normal deviates) on a line of 17 and of 41 points.
+
     nice -n 10 .venv/bin/python benchmarks/bench_independent_sky.py [--days 25]
-        [--noise 0.001] [--prior-days 10] [--cases stable,sinusoid,...]
+        [--noise 0.001] [--prior-days 10] [--cases stable,sinusoid,...] [--widening]
 """
 
 from __future__ import annotations
@@ -48,7 +60,10 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from daemon.science.langley import chi2_quantile, fit_line, residual_correlation  # noqa: E402
 from daemon.science.sessionfit import (  # noqa: E402
+    AEROSOL_SCALE_HEIGHTS_KM,
+    ROLE_USED,
     aerosol_at,
     apply_day_check,
     extinction_corrections,
@@ -81,6 +96,11 @@ def cases(base):
     yield "pressure ramp", replace(base, weather=replace(weather,
                                                          pressure_trend_hpa_per_h=-1.0)), WINDOW
     yield "west 150W", replace(base, site=replace(site, longitude_deg=-150.0)), WINDOW
+    # The stable sky with its aerosol at either end of the heights the budget's
+    # aerosol_layer_airmass term spans (the stable sky's 1.5 km is near the middle).
+    for h in AEROSOL_SCALE_HEIGHTS_KM:
+        yield f"aerosol {h:g} km", replace(base, atmosphere=replace(
+            atm, aerosol_scale_height_km=h)), WINDOW
     for w in (0.2, 0.5, 1.0, 2.0):
         yield f"940 {w:.1f} cm", replace(base, atmosphere=replace(
             atm, precipitable_water_cm=w)), ("940",)
@@ -139,12 +159,64 @@ def stored_repeatability(scen, config, n_days: int, noise: float) -> dict[str, f
     return drift_repeatability([asdict(c) for c in campaign(rows, config)], rows)
 
 
+def widening(row: dict) -> float:
+    """The factor the fit widened ``row``'s statistical term by, recomputed from its used
+    points as :func:`daemon.science.langley.fit_session` does (1 when not widened)."""
+    pts = [p for p in row.get("fit_points", ()) if p["role"] == ROLE_USED]
+    if len(pts) < 3:
+        return 1.0
+    x = np.array([p["x"] for p in pts])
+    y = np.array([p["y"] for p in pts])
+    line = fit_line(x, y)
+    order = np.argsort(x, kind="stable")
+    return residual_correlation(x[order], (y - line.intercept - line.slope * x)[order]).inflation
+
+
+def unwidened(row: dict, factor: float) -> float:
+    """``row``'s stated uncertainty with its statistical term not widened."""
+    u = row["v0_rel_unc"]
+    stat = (row.get("uncertainty_budget") or {}).get("statistical", 0.0)
+    return math.sqrt(max(u * u - stat * stat, 0.0) + (stat / factor) ** 2)
+
+
+def rms_interval(rms: float, n: int, level: float = 0.90) -> tuple[float, float]:
+    """Interval of the true rms of normal z that an observed ``rms`` over ``n`` allows."""
+    tail = (1.0 - level) / 2.0
+    return (rms * math.sqrt(n / chi2_quantile(1.0 - tail, n)),
+            rms * math.sqrt(n / chi2_quantile(tail, n)))
+
+
+def white_noise_widening(n_points: int, n_series: int = 3000, seed: int = 5) -> str:
+    """How the widening acts on white noise over a line of ``n_points`` air masses 2 to 6:
+    numpy normal deviates, the daemon's line fit and widening; one line of text."""
+    rng = np.random.default_rng(seed)
+    x = np.linspace(2.0, 6.0, n_points)
+    factors, z_stated, z_plain = [], [], []
+    for _ in range(n_series):
+        y = rng.standard_normal(n_points)
+        line = fit_line(x, y)
+        f = residual_correlation(x, y - line.intercept - line.slope * x).inflation
+        factors.append(f)
+        z_plain.append(line.intercept / line.se_intercept)
+        z_stated.append(z_plain[-1] / f)
+    f = np.asarray(factors)
+    # A t distribution with n - 2 degrees of freedom has rms sqrt(nu / (nu - 2))
+    # (common practice, no source): what the unwidened error should give.
+    nu = n_points - 2
+    return (f"white noise, {n_points} points, {n_series} series: widened "
+            f"{100 * np.mean(f > 1):.0f} %, "
+            f"median {np.median(f[f > 1]):.2f}, 95th percentile {np.percentile(f, 95):.2f}, "
+            f"largest {f.max():.2f}; rms(error/uncertainty) {_rms(z_stated):.3f} widened, "
+            f"{_rms(z_plain):.3f} unwidened (t with {nu} dof: {math.sqrt(nu / (nu - 2)):.3f})")
+
+
 def _rms(a) -> float:
     a = np.asarray(a, dtype=float)
     return float(np.sqrt(np.mean(np.square(a)))) if a.size else math.nan
 
 
-def run(n_days: int, noise: float, prior_days: int, wanted: set[str] | None) -> None:
+def run(n_days: int, noise: float, prior_days: int, wanted: set[str] | None,
+        show_widening: bool = False) -> None:
     base = load_scenario("pico-sereno-independent")
     print(f"Independent sky, {n_days} days x am/pm per case, burst-mean noise "
           f"{100 * noise:.2f} %; V0 at 1 AU errors in percent; 'day' = after the same-day "
@@ -162,7 +234,7 @@ def run(n_days: int, noise: float, prior_days: int, wanted: set[str] | None) -> 
         rep = stored_repeatability(scen, config, prior_days, noise) if prior_days else None
         n_fits += 2 * prior_days
         res = {n: {k: [] for k in ("err", "u", "acc", "u_day", "acc_day", "u_camp",
-                                   "acc_camp", "poly")} for n in names}
+                                   "acc_camp", "poly", "factor", "u_plain")} for n in names}
         for d in days(n_days):
             first = day_rows(scen, config, d, 11, noise)
             camp = day_rows(scen, config, d, 11, noise, rep) if rep else None
@@ -179,6 +251,10 @@ def run(n_days: int, noise: float, prior_days: int, wanted: set[str] | None) -> 
                     r["u"].append(row["v0_rel_unc"] if row["v0_rel_unc"] is not None
                                   else math.nan)
                     r["acc"].append(bool(row["accepted"]))
+                    if show_widening:
+                        f = widening(row)
+                        r["factor"].append(f)
+                        r["u_plain"].append(unwidened(row, f))
                     r["u_day"].append(checked_by[n]["v0_rel_unc"])
                     r["acc_day"].append(bool(checked_by[n]["accepted"]))
                     c = camp_by.get(n, checked_by[n])
@@ -202,10 +278,28 @@ def run(n_days: int, noise: float, prior_days: int, wanted: set[str] | None) -> 
                   f"{100 * np.nanmedian(r['u']):6.3f} {_rms(r['err'][ok] / r['u'][ok]):6.2f} "
                   f"{_rms(r['err'][ok & acc] / r['u'][ok & acc]):6.2f} | {cols[0]} | "
                   f"{cols[1]} | {100 * _rms(poly):8.3f}")
+        if show_widening:
+            print(f"{'':14} widening of the statistical term, sessions alone: channel, share "
+                  "widened, median and largest factor, z_all as stated [90 % interval] and "
+                  "unwidened")
+            for n in names:
+                r = {k: np.asarray(v, dtype=float) for k, v in res[n].items()}
+                ok = np.isfinite(r["err"]) & np.isfinite(r["u"]) & (r["u"] > 0)
+                f = r["factor"][ok]
+                wide = f > 1.0
+                z = _rms(r["err"][ok] / r["u"][ok])
+                lo, hi = rms_interval(z, int(ok.sum()))
+                med = float(np.median(f[wide])) if wide.any() else 1.0
+                print(f"{'':14} {n:>5} {100 * wide.mean():4.0f}% {med:5.2f} {f.max():5.2f} "
+                      f"{z:6.2f} [{lo:4.2f}-{hi:4.2f}] "
+                      f"{_rms(r['err'][ok] / r['u_plain'][ok]):6.2f}")
         if rep:
             print(f"{'':14} stored repeatability [%]: " + ", ".join(
                 f"{k} {100 * v:.3f}" for k, v in rep.items()))
     dt_s = time.perf_counter() - t0
+    if show_widening:
+        for k in (17, 41):  # the demo's planned session, this benchmark's sessions
+            print(white_noise_widening(k))
     print(f"{n_fits} simulated and fitted sessions in {dt_s:.1f} s "
           f"({1000 * dt_s / max(n_fits, 1):.0f} ms each, simulation included)")
 
@@ -220,9 +314,11 @@ def main() -> None:
                          "(0: none)")
     ap.add_argument("--cases", default="",
                     help="comma-separated case labels to run (default all)")
+    ap.add_argument("--widening", action="store_true",
+                    help="also print how the correlation widening acted on each channel")
     args = ap.parse_args()
     wanted = {c.strip() for c in args.cases.split(",") if c.strip()} or None
-    run(args.days, args.noise, args.prior_days, wanted)
+    run(args.days, args.noise, args.prior_days, wanted, args.widening)
 
 
 if __name__ == "__main__":

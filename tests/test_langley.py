@@ -226,6 +226,34 @@ def test_uncertainty_is_widened_for_correlated_residuals():
     assert float(np.median(widen)) > 1.2
 
 
+def test_strongly_correlated_residuals_over_40_points_are_still_widened():
+    # AR(1) noise with phi = 0.7 over 40 points: far beyond what white noise gives a
+    # lag-1 r, so every session must be widened, by about what the correlation needs.
+    # The need, from the noise model alone (numpy, not the fit): the OLS sandwich
+    # variance of the intercept, c' R c with R = phi^|i-j|, over the naive variance,
+    # c'c tr(M R) / (n - 2) (common practice, no source).
+    v0, tau, sd, phi = 1.2, 0.1, 0.003, 0.7
+    m = np.linspace(2.0, 6.0, 40)
+    design = np.column_stack([np.ones(m.size), m])
+    weights = np.linalg.solve(design.T @ design, design.T)
+    c = weights[0]
+    corr = phi ** np.abs(np.arange(m.size)[:, None] - np.arange(m.size)[None, :])
+    resid_maker = np.eye(m.size) - design @ weights
+    needed = math.sqrt(float(c @ corr @ c) / (float(c @ c) * float(np.trace(resid_maker @ corr))
+                                              / (m.size - 2)))
+    widen = []
+    for seed in range(200):
+        rng = np.random.default_rng(5000 + seed)
+        ln_v = math.log(v0) - tau * m + sd * ar1_noise(rng, m.size, phi)
+        r = fit_session(m, np.exp(ln_v), SETTINGS)
+        used = np.asarray(r.used)
+        widen.append(r.v0_rel_unc / fit_line(m[used], ln_v[used]).se_intercept)
+    widen = np.asarray(widen)
+    assert float(np.mean(widen > 1.0)) >= 0.95
+    # Within the 0.7-1.3 band the project holds error/uncertainty to.
+    assert 0.7 * needed < float(np.median(widen)) < 1.3 * needed
+
+
 def test_residual_correlation_never_narrows_and_detects_drift():
     x = np.linspace(2.0, 6.0, 17)
     alternating = np.tile([1.0, -1.0], 9)[:17]
