@@ -167,6 +167,18 @@ def test_a_tick_with_no_next_day_ahead_says_so(cfg, tmp_path, caplog):
     assert "no job ahead" in caplog.text
 
 
+def test_a_tick_while_the_service_stops_raises_no_alarm(cfg, tmp_path, caplog):
+    """Seen in the start-up benchmark: a SIGTERM just after READY shuts the scheduler
+    down while the first tick runs, and a stopped APScheduler 3 scheduler lists none of
+    its jobs (BaseScheduler.get_jobs), which read as "no job ahead"."""
+    svc = _service(cfg, tmp_path, datetime(2027, 2, 15, 6, tzinfo=UTC))
+    svc.schedule_day(DAY)  # the helper started the scheduler (paused)
+    svc.stop()
+    assert not [j for j in svc.scheduler.get_jobs() if j.id.startswith("plan-next")]
+    svc.tick()
+    assert "no job ahead" not in caplog.text
+
+
 # ------------------------------------------------------------------ the stop path
 
 def _dead_tracker(opens: list, sleeps: list) -> SerialTracker:

@@ -307,7 +307,9 @@ class Service:
                                f"wall clock stepped {step:+.0f} s; re-planning",
                                {"step_s": step})
             self.plan_next(self.local_today())
-        if not self._jobs_ahead():
+        # A stopped scheduler lists no jobs (APScheduler 3: only those added before it
+        # started), so a tick that runs while the service stops would cry wolf.
+        if not self.station.stopping.is_set() and not self._jobs_ahead():
             log.error("no job ahead: nothing is scheduled to plan another day; "
                       "restart the service (systemctl restart heliotroped)")
 
