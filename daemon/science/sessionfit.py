@@ -25,6 +25,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -292,7 +293,7 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
     tau_o3 = 0.0 if sigma is None else ozone_optical_depth(sigma, config.site.ozone_du)
     tau_a = tau_total - tau_r - tau_o3 if math.isfinite(tau_total) else 0.0
     tau_a = max(tau_a, 0.0)
-    z = atmosphere.zenith_from_kasten_young(m)
+    z = _zenith_of(tuple(m.tolist()))
     m, z = m[np.isfinite(z)], z[np.isfinite(z)]  # beyond the horizon's air mass: no zenith
     if m.size < 2 or np.ptp(m) == 0.0:
         return {}, {}
@@ -315,6 +316,16 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
              "ozone_airmass_model": 0.5 * (max(ozone) - min(ozone)) / math.sqrt(3.0),
              "ozone_optical_depth": OZONE_TAU_REL_UNC * abs(shift(tau_o3 * (m_o3 - m)))}
     return shifts, terms
+
+
+@lru_cache(maxsize=32)
+def _zenith_of(airmass: tuple[float, ...]) -> np.ndarray:
+    """:func:`daemon.science.atmosphere.zenith_from_kasten_young`, read-only and kept
+    for the last few air-mass sets: a campaign asks for each session's nominal air
+    masses once per channel, and the channels of a session share them."""
+    z = atmosphere.zenith_from_kasten_young(np.asarray(airmass, dtype=float))
+    z.setflags(write=False)
+    return z
 
 
 def ozone_layer_airmasses(apparent_zenith_deg: np.ndarray,

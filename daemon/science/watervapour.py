@@ -88,9 +88,9 @@ def water_vapour_airmass(apparent_zenith_deg) -> np.ndarray:
 
 def water_vapour_airmass_from_kasten_young(airmass) -> np.ndarray:
     """:func:`water_vapour_airmass` at the zenith of a Kasten-Young air mass."""
-    from daemon.science.solar import apparent_zenith_from_airmass  # pvlib
+    from daemon.science.atmosphere import zenith_from_kasten_young
 
-    return water_vapour_airmass(apparent_zenith_from_airmass(np.asarray(airmass, dtype=float)))
+    return water_vapour_airmass(zenith_from_kasten_young(np.asarray(airmass, dtype=float)))
 
 
 @lru_cache(maxsize=1)
@@ -237,9 +237,9 @@ def point_water(p, channels, config, v0: dict, window_aod: dict, calibration_id:
     unflagged window AODs through ``aerosol_at(wavelength_nm, {nm: aod})`` (the
     session fit's Angstrom interpolation, :func:`daemon.science.sessionfit.aerosol_at`).
     """
+    from daemon.science.atmosphere import ozone_airmass, rayleigh_optical_depth
     from daemon.science.ozone import channel_cross_section_cm2, ozone_optical_depth
     from daemon.science.screening import point_signal
-    from daemon.science.solar import ozone_airmass, rayleigh_optical_depth
 
     m, esf = p.airmass, p.earth_sun_factor
     if not channels or m is None or not m > 0 or esf is None or not esf > 0:
