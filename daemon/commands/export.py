@@ -176,24 +176,31 @@ def reading_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[di
 def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
     """Every raw sample [V], sun before dark, in time and channel order."""
     names = [c for c, _ in SAMPLE_COLUMNS]
-    cur = conn.execute(_SAMPLES_SQL, (first, last))
+    cur = conn.cursor()
+    cur.row_factory = None  # plain tuples: this is the export of millions of rows
+    cur.execute(_SAMPLES_SQL, (first, last))
     group: list[tuple] = []
+    current = None
     while batch := cur.fetchmany(1000):
         for r in batch:
-            r = tuple(r)
-            if group and r[0] != group[0][0]:
+            if r[0] != current:
                 yield from _measurement_samples(group, names)
-                group = []
+                group, current = [], r[0]
             group.append(r)
     yield from _measurement_samples(group, names)
 
 
+def _sample_order(r: tuple) -> tuple:
+    return (r[5] != "sun", r[8] is not None, r[8] or 0)
+
+
 def _measurement_samples(group: list[tuple], names: list[str]) -> Iterator[dict]:
     # The cursor gives kind, channel name, index; the export wants sun first, then the
-    # instrument's channel order. The sort is stable, so sample_index order stays.
-    group.sort(key=lambda r: (r[5] != "sun", r[8] is not None, r[8] or 0))
+    # instrument's channel order. The sort is stable, so sample_index order stays. The
+    # rows carry channel_index as a ninth field, which zip leaves out.
+    group.sort(key=_sample_order)
     for r in group:
-        yield dict(zip(names, r[:8], strict=True))
+        yield dict(zip(names, r, strict=False))
 
 
 def result_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
