@@ -176,6 +176,14 @@ def reading_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[di
 def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
     """Every raw sample [V], sun before dark, in time and channel order."""
     names = [c for c, _ in SAMPLE_COLUMNS]
+    for group in _sample_groups(conn, first, last):
+        for r in group:
+            yield dict(zip(names, r, strict=False))  # the ninth field is the order's
+
+
+def _sample_groups(conn: sqlite3.Connection, first: str, last: str) -> Iterator[list[tuple]]:
+    """Each measurement's samples as plain tuples in the export's order: the columns of
+    SAMPLE_COLUMNS, then channel_index."""
     cur = conn.cursor()
     cur.row_factory = None  # plain tuples: this is the export of millions of rows
     cur.execute(_SAMPLES_SQL, (first, last))
@@ -184,23 +192,42 @@ def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dic
     while batch := cur.fetchmany(1000):
         for r in batch:
             if r[0] != current:
-                yield from _measurement_samples(group, names)
+                if group:
+                    yield _in_export_order(group)
                 group, current = [], r[0]
             group.append(r)
-    yield from _measurement_samples(group, names)
+    if group:
+        yield _in_export_order(group)
 
 
 def _sample_order(r: tuple) -> tuple:
     return (r[5] != "sun", r[8] is not None, r[8] or 0)
 
 
-def _measurement_samples(group: list[tuple], names: list[str]) -> Iterator[dict]:
-    # The cursor gives kind, channel name, index; the export wants sun first, then the
-    # instrument's channel order. The sort is stable, so sample_index order stays. The
-    # rows carry channel_index as a ninth field, which zip leaves out.
+def _in_export_order(group: list[tuple]) -> list[tuple]:
+    # The cursor gives kind, channel name, index (the samples index's order, so no
+    # temporary B-tree); the export wants sun first, then the instrument's channel
+    # order. The sort is stable, so sample_index order stays.
     group.sort(key=_sample_order)
-    for r in group:
-        yield dict(zip(names, r, strict=False))
+    return group
+
+
+def write_samples_csv(conn: sqlite3.Connection, first: str, last: str, out: IO[str]) -> int:
+    """The samples export as CSV straight from the tuples (what :func:`write_csv` writes
+    from :func:`sample_rows`' dicts, byte for byte, in about half the time)."""
+    # The first seven columns are the store's text and whole numbers (or NULL), which
+    # the csv module writes as _csv_cell would; only the value needs its float rule.
+    assert [c for c, _ in SAMPLE_COLUMNS].index("value_v") == VALUE_FIELD
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(csv_header(SAMPLE_COLUMNS))
+    n = 0
+    for group in _sample_groups(conn, first, last):
+        writer.writerows((*r[:VALUE_FIELD], _csv_cell(r[VALUE_FIELD])) for r in group)
+        n += len(group)
+    return n
+
+
+VALUE_FIELD = 7  # value_v's place in SAMPLE_COLUMNS and in the query's rows
 
 
 def result_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
@@ -251,17 +278,23 @@ SOURCES = {"measurements": measurement_rows, "samples": sample_rows, "results": 
 def export_rows(conn: sqlite3.Connection, what: str, first: str | _dt.date,
                 last: str | _dt.date) -> Iterator[dict]:
     """Rows of one kind for local dates ``first`` to ``last`` (inclusive), lazily."""
-    from daemon.store.reader import check_plan_date
 
     if what not in SOURCES:
         raise ExportError(f"cannot export {what!r}; choose one of {', '.join(WHATS)}")
+    d1, d2 = _check_dates(first, last)
+    return SOURCES[what](conn, d1, d2)
+
+
+def _check_dates(first: str | _dt.date, last: str | _dt.date) -> tuple[str, str]:
+    from daemon.store.reader import check_plan_date
+
     try:
         d1, d2 = check_plan_date(first), check_plan_date(last)
     except ValueError as exc:
         raise ExportError(str(exc)) from None
     if d2 < d1:
         raise ExportError(f"the end date {d2} is before the start date {d1}; swap them")
-    return SOURCES[what](conn, d1, d2)
+    return d1, d2
 
 
 # --------------------------------------------------------------------------- writers
@@ -272,8 +305,13 @@ def csv_header(columns: Iterable[tuple[str, str | None]]) -> list[str]:
 
 
 def _csv_cell(value: Any) -> Any:
-    if value is None:
-        return ""
+    # The common cases first, by exact type (a bool is an int): millions of cells. The
+    # csv module writes None as an empty field and a float as its repr.
+    kind = type(value)
+    if kind is float:
+        return value if math.isfinite(value) else ""
+    if kind is str or kind is int or value is None:
+        return value
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, float):
@@ -324,7 +362,10 @@ def export(conn: sqlite3.Connection, what: str, first: str | _dt.date, last: str
     """Stream one kind of rows to ``out`` in ``fmt`` ('csv' or 'json'); return the row count."""
     if fmt not in FORMATS:
         raise ExportError(f"unknown format {fmt!r}; choose csv or json")
-    rows = export_rows(conn, what, first, last)
+    rows = export_rows(conn, what, first, last)  # checks what and the dates
+    if what == "samples" and fmt == "csv":
+        d1, d2 = _check_dates(first, last)
+        return write_samples_csv(conn, d1, d2, out)
     writer = write_csv if fmt == "csv" else write_json
     return writer(rows, COLUMNS[what], out)
 
