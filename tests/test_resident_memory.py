@@ -287,3 +287,28 @@ def test_a_failed_fit_child_is_an_event_and_the_fit_is_tried_again(cfg, tmp_path
     assert len(failed) == 1 and "exited with status 1" in failed[0]
     retry = svc.scheduler.get_job(f"retry-{DAY}-fit_am")
     assert retry.next_run_time == fit_am.time_utc + timedelta(seconds=RETRY_S)
+
+
+def test_a_fit_child_that_keeps_failing_is_tried_less_and_less_often(cfg, tmp_path):
+    """Never given up, but backed off: RETRY_S, then doubled each time up to
+    FIT_RETRY_MAX_S (common practice for retries, no source), so a fault in the science
+    leaves a few events a day, not one every five minutes."""
+    from daemon.station.planner import plan_day
+    from daemon.station.service import FIT_RETRY_MAX_S, RETRY_S
+
+    plan = plan_day(cfg, DAY)
+    fit_am = next(e for e in plan.events if e.kind == "fit_am")
+    svc = _service(cfg, tmp_path, _Children, fit_am.time_utc - timedelta(seconds=1))
+    svc.schedule_day(DAY)
+    svc.clock.sleep_until(fit_am.time_utc)
+    svc.run_item(fit_am, DAY)
+    delays = []
+    for _ in range(9):
+        retry = svc.scheduler.get_job(f"retry-{DAY}-fit_am")
+        delays.append((retry.next_run_time - svc.clock.now()).total_seconds())
+        svc.clock.sleep_until(retry.next_run_time)
+        retry.func(*retry.args)
+    expected = [min(RETRY_S * 2 ** k, FIT_RETRY_MAX_S) for k in range(9)]
+    assert delays == pytest.approx(expected, abs=1.0)
+    assert delays[-1] == pytest.approx(FIT_RETRY_MAX_S, abs=1.0)
+    assert len(_events(svc, "job_error")) == 10  # every failure is still an event

@@ -46,6 +46,10 @@ STOP_WAIT_S = 2.0  # how long shutdown waits for the job in progress [s]
 PARK_ONCE_S = 2.0  # one PARK without retry or back-off [s]
 SHUTDOWN_S = 1.0  # per device, to end an exchange another thread is stuck in [s]
 RETRY_S = 300  # a job whose store write failed (full disk, read-only) runs again [s]
+#: A fit whose child keeps failing (a fault in the science, not the disk) is tried again
+#: after RETRY_S, then twice as long each time up to this [s]: never given up, but a
+#: few events a day rather than one every five minutes for weeks.
+FIT_RETRY_MAX_S = 6 * 3600
 # The store's full integrity check runs after READY and then once a day, in a thread of
 # its own at the lowest CPU priority, beside acquisition (its cost grows with the store).
 STORE_CHECK_EVERY_H = 24
@@ -92,6 +96,7 @@ class Service:
         self.steps = StepDetector(self.clock, CLOCK_STEP_S)
         self.fits: dict[str, list[dict]] = {}
         self.done: set[tuple] = set()
+        self._child_failures: dict[tuple, int] = {}  # (day, item) -> failed fit children
         self.day: date | None = None
         self.last_result = "no session fitted yet"
         self._idle = threading.Event()
@@ -172,11 +177,13 @@ class Service:
         self.children.fit(day, session, now)
         return self.station.store.session_results(day, session)
 
-    def again_later(self, job_id: str, func: Callable[..., object], *args: object) -> datetime:
-        """Run ``func(*args)`` again in RETRY_S as the one-shot job ``job_id`` (replacing
-        an earlier retry of the same job); return when. Every job that must not be lost
-        to a failing write or a silent device comes back through here."""
-        when = self.clock.now() + timedelta(seconds=RETRY_S)
+    def again_later(self, job_id: str, func: Callable[..., object], *args: object,
+                    delay_s: float = RETRY_S) -> datetime:
+        """Run ``func(*args)`` again in ``delay_s`` (RETRY_S) as the one-shot job
+        ``job_id`` (replacing an earlier retry of the same job); return when. Every job
+        that must not be lost to a failing write or a silent device comes back through
+        here."""
+        when = self.clock.now() + timedelta(seconds=delay_s)
         self.scheduler.add_job(func, "date", run_date=when, args=list(args), id=job_id,
                                replace_existing=True, misfire_grace_time=None)
         return when
@@ -215,6 +222,7 @@ class Service:
                 job.remove()
         if day != self.day:
             self.fits, self.done, self.day = {}, set(), day
+            self._child_failures = {}
         now = self.clock.now()
         missed = 0
         for i, item in enumerate(plan.timeline()):
@@ -265,7 +273,7 @@ class Service:
     def run_item(self, item, day: date) -> None:
         """One plan item on the worker thread; nothing it raises stops the service."""
         from daemon.station.acquisition import STORE_ERRORS, perform
-        from daemon.station.jobs import ChildFailed
+        from daemon.station.jobs import ChildFailed, StoreRefused
 
         key = (day, item)
         if key in self.done or self.station.stopping.is_set():
@@ -278,7 +286,13 @@ class Service:
             # A fit whose results could not be written, or whose child failed: the same
             # item again later (a target never gets here: its air mass would be gone).
             self.done.discard(key)
-            when = self.again_later(f"retry-{day}-{item.kind}", self.run_item, item, day)
+            delay = RETRY_S
+            if isinstance(exc, ChildFailed) and not isinstance(exc, StoreRefused):
+                failures = self._child_failures.get(key, 0)
+                self._child_failures[key] = failures + 1
+                delay = min(RETRY_S * 2 ** min(failures, 16), FIT_RETRY_MAX_S)
+            when = self.again_later(f"retry-{day}-{item.kind}", self.run_item, item, day,
+                                    delay_s=delay)
             kind = "job_error" if isinstance(exc, ChildFailed) else "store_error"
             self.station.event("error", kind,
                                f"{_describe(item)} not stored: {exc}; trying again at "
