@@ -273,9 +273,9 @@ def test_a_plan_for_another_configuration_is_not_used(cfg, tmp_path):
     assert not [j for j in svc.scheduler.get_jobs() if j.id.startswith("plan-2027")]
 
 
-def test_a_failed_fit_child_is_an_event_and_the_fit_is_tried_again(cfg, tmp_path):
+def _failed_morning_fit(cfg, tmp_path):
+    """A service whose fit children always fail, just after the morning fit failed once."""
     from daemon.station.planner import plan_day
-    from daemon.station.service import RETRY_S
 
     plan = plan_day(cfg, DAY)
     fit_am = next(e for e in plan.events if e.kind == "fit_am")
@@ -283,6 +283,13 @@ def test_a_failed_fit_child_is_an_event_and_the_fit_is_tried_again(cfg, tmp_path
     svc.schedule_day(DAY)
     svc.clock.sleep_until(fit_am.time_utc)
     svc.run_item(fit_am, DAY)
+    return svc, fit_am
+
+
+def test_a_failed_fit_child_is_an_event_and_the_fit_is_tried_again(cfg, tmp_path):
+    from daemon.station.service import RETRY_S
+
+    svc, fit_am = _failed_morning_fit(cfg, tmp_path)
     failed = _events(svc, "job_error")
     assert len(failed) == 1 and "exited with status 1" in failed[0]
     retry = svc.scheduler.get_job(f"retry-{DAY}-fit_am")
@@ -293,15 +300,9 @@ def test_a_fit_child_that_keeps_failing_is_tried_less_and_less_often(cfg, tmp_pa
     """Never given up, but backed off: RETRY_S, then doubled each time up to
     FIT_RETRY_MAX_S (common practice for retries, no source), so a fault in the science
     leaves a few events a day, not one every five minutes."""
-    from daemon.station.planner import plan_day
     from daemon.station.service import FIT_RETRY_MAX_S, RETRY_S
 
-    plan = plan_day(cfg, DAY)
-    fit_am = next(e for e in plan.events if e.kind == "fit_am")
-    svc = _service(cfg, tmp_path, _Children, fit_am.time_utc - timedelta(seconds=1))
-    svc.schedule_day(DAY)
-    svc.clock.sleep_until(fit_am.time_utc)
-    svc.run_item(fit_am, DAY)
+    svc, _ = _failed_morning_fit(cfg, tmp_path)
     delays = []
     for _ in range(9):
         retry = svc.scheduler.get_job(f"retry-{DAY}-fit_am")
