@@ -37,6 +37,7 @@ from daemon.science.atmosphere import (  # noqa: F401 - part of this module's in
     positive,
     rayleigh_optical_depth,
     site_pressure_hpa,
+    zenith_from_kasten_young,
 )
 from daemon.science.suntable import COVER_ZENITH_DEG, PAD_NODES, STEP_S, Geometry, SunTable
 
@@ -254,19 +255,11 @@ def apparent_zenith_from_airmass(airmass: ArrayLike) -> float | np.ndarray:
 
     Notes
     -----
-    The formula increases monotonically on 0 to 90 degrees, so bisection on it
-    converges; 60 halvings of 90 degrees leave an error below 1e-16 degrees.
+    The bisection of :func:`daemon.science.atmosphere.zenith_from_kasten_young` (the
+    same formula as pvlib's ``kastenyoung1989``, held to it by
+    tests/test_atmosphere_light.py).
     """
-    m = np.atleast_1d(np.asarray(airmass, dtype=float))
-    lo = np.zeros_like(m)
-    hi = np.full_like(m, 90.0)
-    for _ in range(60):
-        mid = 0.5 * (lo + hi)
-        above = pvlib.atmosphere.get_relative_airmass(mid, model="kastenyoung1989") > m
-        hi = np.where(above, mid, hi)
-        lo = np.where(above, lo, mid)
-    z = 0.5 * (lo + hi)
-    z = np.where((m >= relative_airmass(0.0)) & (m <= HORIZON_AIRMASS), z, np.nan)
+    z = zenith_from_kasten_young(airmass)
     return like_input(airmass, z if np.ndim(airmass) else z[0])
 
 
