@@ -215,9 +215,8 @@ def _in_export_order(group: list[tuple]) -> list[tuple]:
 def write_samples_csv(conn: sqlite3.Connection, first: str, last: str, out: IO[str]) -> int:
     """The samples export as CSV straight from the tuples (what :func:`write_csv` writes
     from :func:`sample_rows`' dicts, byte for byte, in about half the time)."""
-    # The first seven columns are the store's text and whole numbers (or NULL), which
-    # the csv module writes as _csv_cell would; only the value needs its float rule.
-    assert [c for c, _ in SAMPLE_COLUMNS].index("value_v") == VALUE_FIELD
+    # The columns before the value are the store's text and whole numbers (or NULL),
+    # which the csv module writes as _csv_cell would; only the value needs its float rule.
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(csv_header(SAMPLE_COLUMNS))
     n = 0
@@ -227,7 +226,8 @@ def write_samples_csv(conn: sqlite3.Connection, first: str, last: str, out: IO[s
     return n
 
 
-VALUE_FIELD = 7  # value_v's place in SAMPLE_COLUMNS and in the query's rows
+#: value_v's place in SAMPLE_COLUMNS and in the query's rows (the last column).
+VALUE_FIELD = [c for c, _ in SAMPLE_COLUMNS].index("value_v")
 
 
 def result_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
@@ -362,10 +362,9 @@ def export(conn: sqlite3.Connection, what: str, first: str | _dt.date, last: str
     """Stream one kind of rows to ``out`` in ``fmt`` ('csv' or 'json'); return the row count."""
     if fmt not in FORMATS:
         raise ExportError(f"unknown format {fmt!r}; choose csv or json")
-    rows = export_rows(conn, what, first, last)  # checks what and the dates
     if what == "samples" and fmt == "csv":
-        d1, d2 = _check_dates(first, last)
-        return write_samples_csv(conn, d1, d2, out)
+        return write_samples_csv(conn, *_check_dates(first, last), out)
+    rows = export_rows(conn, what, first, last)
     writer = write_csv if fmt == "csv" else write_json
     return writer(rows, COLUMNS[what], out)
 
