@@ -319,10 +319,16 @@ def drift_repeatability(channels: Sequence[Mapping[str, Any]],
         rep = c.get("repeatability_pct")
         if not c.get("usable") or rep is None or not rep > 0.0:
             continue
-        sd, n = same_day_pair_sd([r for r in results if r["channel"] == c["channel"]])
-        pair = sd if n >= MIN_DAY_PAIRS and math.isfinite(sd) else 0.0
+        pair, _ = pair_spread_floor([r for r in results if r["channel"] == c["channel"]])
         out[c["channel"]] = max(rep / 100.0, pair)
     return out
+
+
+def pair_spread_floor(rows: Sequence[Mapping[str, Any]]) -> tuple[float, int]:
+    """:func:`same_day_pair_sd` as a lower bound of the sessions' spread [fraction]: 0
+    with fewer than :data:`MIN_DAY_PAIRS` pairs; and the number of pairs."""
+    sd, n = same_day_pair_sd(rows)
+    return (sd if n >= MIN_DAY_PAIRS and math.isfinite(sd) else 0.0), n
 
 
 def _shared(channel: Channel, config: Config, row: Mapping[str, Any]) -> float:
@@ -347,8 +353,7 @@ def campaign(results: Sequence[Mapping[str, Any]], config: Config,
         accepted = [SessionV0(r["date"], r["session"], r["v0_1au"], r["v0_rel_unc"],
                               _shared(ch, config, r))
                     for r in rows if r["accepted"] and r["v0_1au"] is not None]
-        pair_sd, n_pairs = same_day_pair_sd(rows)
-        floor = pair_sd if n_pairs >= MIN_DAY_PAIRS else 0.0
+        floor, n_pairs = pair_spread_floor(rows)
         cal = combine_sessions(ch.name, ch.wavelength_nm, accepted, fit.campaign_clip_sigma,
                                fit.campaign_min_sessions, floor)
         if floor > 0.0 and notes is not None and (
