@@ -34,6 +34,8 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
+from daemon.science.points import DAYS_PER_YEAR, SESSION_DAY_FRACTION
+
 _CLIP_IDS = itertools.count(1)
 # The Okabe and Ito (2008) palette (see the module docstring), by its own colour names.
 OKABE_ITO = {"black": "#000000", "orange": "#E69F00", "sky blue": "#56B4E9",
@@ -57,10 +59,6 @@ DRIFT_POINTS = {"am": (OKABE_ITO["blue"], "dot", False),
                 "flagged": (OKABE_ITO["reddish purple"], "cross", False)}
 DRIFT_MEAN_COLOUR = OKABE_ITO["black"]
 DRIFT_LINE = (OKABE_ITO["bluish green"], "5 3")  # colour and dash of the drift line
-# Where a session sits in its day, as the campaign's drift fit places it
-# (daemon.science.campaign._years): mid-morning, mid-afternoon.
-SESSION_DAY_FRACTION = {"am": 0.375, "pm": 0.625}
-DAYS_PER_YEAR = 365.25  # the drift's year, as daemon.science.campaign.DAYS_PER_YEAR
 # Channel colours and shapes for the AOD chart, shortest wavelength first.
 CHANNEL_STYLES = ((OKABE_ITO["reddish purple"], "dot"), (OKABE_ITO["blue"], "triangle"),
                   (OKABE_ITO["bluish green"], "square"), (OKABE_ITO["orange"], "diamond"),

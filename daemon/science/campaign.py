@@ -22,11 +22,11 @@ import numpy as np
 from daemon.config.settings import Channel, Config
 from daemon.science.lamp import lamp_check
 from daemon.science.langley import fit_line
+from daemon.science.points import DAYS_PER_YEAR, SESSION_DAY_FRACTION
 from daemon.science.sessionfit import shared_unc
 
 #: Normal-consistent scale of the median absolute deviation (common practice, no source).
 MAD_TO_SD = 1.4826
-DAYS_PER_YEAR = 365.25
 # At most this share of a campaign's sessions may be flagged: beyond it the spread
 # is the campaign's, not a few bad days'.
 MAX_FLAGGED_FRACTION = 0.5
@@ -85,8 +85,8 @@ class ChannelCalibration:
 
 def _years(date: str, session: str) -> float:
     d = _dt.date.fromisoformat(date)
-    # Mid-morning or mid-afternoon: only the order within a day matters.
-    return (d.toordinal() + (0.375 if session == "am" else 0.625)) / DAYS_PER_YEAR
+    fraction = SESSION_DAY_FRACTION["am" if session == "am" else "pm"]
+    return (d.toordinal() + fraction) / DAYS_PER_YEAR
 
 
 def campaign_uncertainty(mean: float, sd: float, stated: np.ndarray,

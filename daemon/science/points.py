@@ -10,6 +10,12 @@ import datetime as _dt
 from dataclasses import dataclass, field
 from typing import Any
 
+#: Where a session sits in its day for a campaign's drift fit (mid-morning,
+#: mid-afternoon: only the order within a day matters), and the drift's year [days].
+#: Shared by :mod:`daemon.science.campaign` and the report's drift chart.
+SESSION_DAY_FRACTION = {"am": 0.375, "pm": 0.625}
+DAYS_PER_YEAR = 365.25
+
 #: Roles of a point in a stored session fit: in the final line; a candidate the fit
 #: clipped as an outlier; outside the air-mass window or without a finite x or y;
 #: screened out before the fit (``reason`` names the rule: missing, unlocked,
