@@ -412,11 +412,8 @@ def run_day(station: Station, day: date, plan: Plan | None = None,
     as the service's child does; a given ``plan`` is stored with the day's sun table."""
     from daemon.station.jobs import compute_plan, store_plan
 
-    out = compute_plan(station.config, day)
-    if plan is None:
-        plan = Plan.from_dict(out["plan"])
-    else:
-        out["plan"] = plan.to_dict()
+    out = compute_plan(station.config, day, plan)
+    plan = plan or Plan.from_dict(out["plan"])
     store_plan(station.store, day, out, station.clock.now())
     station.use_sun_table(day, SunTable.from_dict(out["sun_table"]))
     fits: dict[str, list[dict]] = {}

@@ -85,14 +85,14 @@ def plan_and_store(config: Config, store, day: date, now: datetime) -> dict[str,
     return out
 
 
-def compute_plan(config: Config, day: date) -> dict[str, Any]:
-    """The plan of ``day`` and its sun table, as :func:`plan_and_store` returns them
-    (not yet stored)."""
+def compute_plan(config: Config, day: date, plan=None) -> dict[str, Any]:
+    """The plan of ``day`` (``plan`` when given, a :class:`~daemon.station.plans.Plan`)
+    and its sun table, as :func:`plan_and_store` returns them (not yet stored)."""
     from daemon.station.planner import plan_day, plan_sun_table
     from daemon.store.writer import config_digest
 
     return {"config_sha256": config_digest(config.text),
-            "plan": plan_day(config, day).to_dict(),
+            "plan": (plan or plan_day(config, day)).to_dict(),
             "sun_table": plan_sun_table(config, day).to_dict(),
             "stored": False, "store_error": None}
 
