@@ -12,11 +12,12 @@ Printed per store: the median wall time of fresh ``heliotrope today --json``,
 ``status --json``, ``results --from D`` and ``plot`` processes beside ``python3 -c
 pass``; the median time of one session's points read (``reader.session_points``,
 in-process); the samples export of the newest day and of the whole store: time to
-the first row and rows per second, beside the ``sqlite3`` shell on the same query
-when it is installed; and heliotroped's start-up to READY against the simulator, warm
-and with the store's pages dropped, beside the full integrity check it runs after
-READY; on the 1-year and 10-year stores ``calibrate`` over the newest year, wall
-time and peak resident memory.
+the first row, rows per second of its CSV (in-process, to /dev/null) and of the whole
+``heliotrope export --what samples --format csv`` command (a fresh process, read from
+a pipe), beside ``sqlite3 -csv`` on the same rows when it is installed; and
+heliotroped's start-up to READY against the simulator, warm and with the store's pages
+dropped, beside the full integrity check it runs after READY; on the 1-year and
+10-year stores ``calibrate`` over the newest year, wall time and peak resident memory.
 
     .venv/bin/python benchmarks/bench_store_age.py [--runs N] [--ten]
 """
@@ -118,30 +119,51 @@ def build_store(path: Path, n_days: int) -> dict[str, int]:
     return counts
 
 
+#: The samples export's rows in one query for the shell, in the order of the indexes
+#: (the measurements by (plan_date, time_utc), each one's samples by the primary key):
+#: the export's rows, with no sort at all, the shell's fastest way to them.
+SHELL_SAMPLES_SQL = """
+SELECT m.id, m.time_utc, m.plan_date, m.session, s.channel, s.kind, s.sample_index, s.value_v
+FROM measurements m CROSS JOIN samples s ON s.measurement_id = m.id
+WHERE m.plan_date BETWEEN ?1 AND ?2
+ORDER BY m.plan_date, m.time_utc, m.id, s.kind, s.channel, s.sample_index
+"""
+
+
 def _export_figures(db: Path, first: str, last: str) -> tuple[float, int, float]:
-    """Time to the first samples-export row [ms], rows, and rows per second."""
-    from daemon.commands.export import export_rows
+    """Time to the first samples-export row [ms] (rows as dicts, in-process), rows, and
+    rows per second of the CSV the command writes (in-process, to /dev/null)."""
+    from daemon.commands.export import export_rows, write_samples_csv
     from daemon.store.reader import open_readonly
 
     conn = open_readonly(db)
     t0 = time.perf_counter()
-    rows = export_rows(conn, "samples", first, last)
-    next(rows)
+    next(export_rows(conn, "samples", first, last))
     t_first = (time.perf_counter() - t0) * 1000
-    n = 1 + sum(1 for _ in rows)
-    total = time.perf_counter() - t0
+    with open(os.devnull, "w", encoding="utf-8", newline="") as sink:
+        t0 = time.perf_counter()
+        n = write_samples_csv(conn, first, last, sink)
+        total = time.perf_counter() - t0
     conn.close()
     return t_first, n, n / total
 
 
-def _shell_rows_per_s(db: Path, first: str, last: str) -> float | None:
-    """The ``sqlite3`` shell on the export's own query, CSV to /dev/null [rows/s]."""
-    from daemon.commands.export import _SAMPLES_SQL
+def _command_rows_per_s(base: list[str], env: dict, first: str, last: str) -> float:
+    """``heliotrope export --what samples --format csv`` as an operator runs it, a fresh
+    process reading its CSV from a pipe as the shell's figure does [rows/s]."""
+    t0 = time.perf_counter()
+    out = subprocess.run(base + ["export", "--what", "samples", "--format", "csv", "--from",
+                                 first, "--to", last], capture_output=True, check=True,
+                         env=env).stdout
+    return (out.count(b"\n") - 1) / (time.perf_counter() - t0)  # less the header
 
+
+def _shell_rows_per_s(db: Path, first: str, last: str) -> float | None:
+    """The ``sqlite3`` shell on the same rows, CSV read from a pipe [rows/s]."""
     shell = shutil.which("sqlite3")
     if shell is None:
         return None
-    sql = _SAMPLES_SQL.replace("?1", f"'{first}'").replace("?2", f"'{last}'")
+    sql = SHELL_SAMPLES_SQL.replace("?1", f"'{first}'").replace("?2", f"'{last}'")
     t0 = time.perf_counter()
     out = subprocess.run([shell, "-readonly", "-csv", str(db), sql], capture_output=True,
                          check=True).stdout
@@ -187,10 +209,13 @@ def bench(n_days: int, runs: int) -> None:
         print(f"  {'session_points (one session)':<32} {statistics.median(times):>9.2f} ms")
         for label, a in (("newest day", d), ("whole store", first)):
             t_first, n, rate = _export_figures(db, a, d)
+            command = _command_rows_per_s(base, env, a, d)
             shell = _shell_rows_per_s(db, a, d)
-            beside = "" if shell is None else f", sqlite3 shell {shell:,.0f} rows/s"
-            print(f"  samples export, {label}: first row {t_first:.1f} ms, {n:,} rows, "
-                  f"{rate:,.0f} rows/s{beside}")
+            beside = "" if shell is None else (
+                f"; sqlite3 -csv shell {shell:,.0f} rows/s (CSV {shell / rate:.2f} times, "
+                f"command {shell / command:.2f} times slower)")
+            print(f"  samples export, {label}: first row {t_first:.1f} ms, {n:,} rows; CSV "
+                  f"{rate:,.0f} rows/s, the whole command {command:,.0f} rows/s{beside}")
         _startup_figures(db, Path(tmp))
         if n_days >= 365:  # last: it writes a calibration and the year's AOD
             year = (DAY - dt.timedelta(days=364)).isoformat()

@@ -231,3 +231,33 @@ def test_the_samples_csv_from_tuples_is_the_generic_writer_byte_for_byte(day):
     # A non-finite value (a store written by something else) is an empty field in both.
     assert ex._csv_cell(float("inf")) == "" and ex._csv_cell(float("nan")) == ""
     assert ex._csv_cell(True) == "true" and ex._csv_cell(1) == 1
+
+
+def test_the_samples_csv_from_tuples_quotes_and_blanks_as_the_csv_module(day, tmp_path):
+    """Cells a store written by something else may hold (a NULL or infinite value, a
+    channel name with a comma or a quote, a missing index) come out of the fast writer
+    as the csv module writes them from the row dicts (Python's csv module, QUOTE_MINIMAL,
+    is the reference; common practice, no source)."""
+    import shutil
+    import sqlite3
+
+    db = tmp_path / "odd.db"
+    shutil.copy(day.path, db)
+    with sqlite3.connect(db) as conn:
+        ids = [r[0] for r in conn.execute(
+            "SELECT rowid FROM samples ORDER BY rowid LIMIT 4")]
+        conn.execute("UPDATE samples SET value_v = NULL WHERE rowid = ?", (ids[0],))
+        conn.execute("UPDATE samples SET value_v = 1e999 WHERE rowid = ?", (ids[1],))
+        conn.execute("UPDATE samples SET channel = 'a,\"b' WHERE rowid = ?", (ids[2],))
+        conn.execute("UPDATE samples SET sample_index = NULL WHERE rowid = ?", (ids[3],))
+    conn.close()
+    conn = open_readonly(db)
+    try:
+        d = DAY.isoformat()
+        fast, generic = io.StringIO(), io.StringIO()
+        ex.write_samples_csv(conn, d, d, fast)
+        ex.write_csv(ex.sample_rows(conn, d, d), ex.SAMPLE_COLUMNS, generic)
+    finally:
+        conn.close()
+    assert fast.getvalue() == generic.getvalue()
+    assert ',"a,""b",' in fast.getvalue()

@@ -82,7 +82,8 @@ QUERIES = {
         "DELETE FROM fit_points WHERE plan_date = ? AND session = ? AND channel = ?",
         (D, "am", "500")),
     "aod between dates": (reader._AOD_SQL, (D, D)),
-    "samples export": (export_cmd._SAMPLES_SQL, (D, D)),
+    "samples export (measurements)": (export_cmd._SAMPLE_MEASUREMENTS_SQL, (D, D)),
+    "samples export (one measurement's samples)": (export_cmd._MEASUREMENT_SAMPLES_SQL, (1,)),
     "measurements export": (export_cmd._MEASUREMENTS_SQL, (D, D)),
     "last measurement (status)": (
         "SELECT status FROM measurements WHERE time_utc >= ? "
@@ -99,10 +100,14 @@ def test_query_reaches_its_rows_through_an_index(store, name):
 
 
 def test_samples_export_streams_in_index_order(store):
-    # No sort step: the first row comes off the index at once, with no temporary
-    # B-tree (which SQLite spills to temporary files when it outgrows the cache).
-    plan = _plan(store, export_cmd._SAMPLES_SQL, (D, D))
+    # No sort of the range: the measurements come off their index at once, with no
+    # temporary B-tree (which SQLite spills to temporary files when it outgrows the
+    # cache); only one measurement's samples, found by the primary key, are sorted.
+    plan = _plan(store, export_cmd._SAMPLE_MEASUREMENTS_SQL, (D, D))
     assert not [line for line in plan if "TEMP B-TREE" in line], plan
+    plan = _plan(store, export_cmd._MEASUREMENT_SAMPLES_SQL, (1,))
+    assert any(line.startswith("SEARCH s USING") and "(measurement_id=?)" in line
+               for line in plan), plan
 
 
 def test_aod_between_sorts_only_within_a_measurement(store):

@@ -35,6 +35,7 @@ from __future__ import annotations
 import argparse
 import csv
 import datetime as _dt
+import io
 import json
 import math
 import os
@@ -64,6 +65,7 @@ SAMPLE_COLUMNS: tuple[tuple[str, str | None], ...] = (
     ("measurement_id", None), ("time_utc", None), ("plan_date", None), ("session", None),
     ("channel", None), ("kind", None), ("sample_index", None), ("value_v", "V"),
 )
+_SAMPLE_NAMES = tuple(c for c, _ in SAMPLE_COLUMNS)
 RESULT_COLUMNS: tuple[tuple[str, str | None], ...] = (
     ("date", None), ("session", None), ("channel", None), ("wavelength_nm", "nm"),
     ("v0", "V"), ("v0_1au", "V"), ("v0_rel_unc", "1"), ("tau", "1"), ("n_used", None),
@@ -112,18 +114,27 @@ LEFT JOIN housekeeping h ON h.measurement_id = m.id
 ORDER BY m.time_utc, m.id, mc.channel_index
 """
 
-# In the order of the indexes: measurements by (plan_date, time_utc), which is time order
-# since a plan date is the local date of its measurements, then each one's samples by
-# the samples primary key (kind, channel, sample_index). No sort of the range, so the
-# first row comes at once and SQLite writes no temporary files; sample_rows() puts one
-# measurement's samples (a few hundred) in the exported order.
-_SAMPLES_SQL = """
-SELECT m.id, m.time_utc, m.plan_date, m.session, s.channel, s.kind, s.sample_index, s.value_v,
-       mc.channel_index
-FROM measurements m CROSS JOIN samples s ON s.measurement_id = m.id
-LEFT JOIN measurement_channels mc ON mc.measurement_id = m.id AND mc.channel = s.channel
-WHERE m.plan_date BETWEEN ?1 AND ?2
-ORDER BY m.plan_date, m.time_utc, m.id, s.kind, s.channel, s.sample_index
+# Measurements in the order of their (plan_date, time_utc) index, which is time order
+# since a plan date is the local date of its measurements; then, per measurement, its
+# samples through the samples primary key (measurement_id, ...), sorted within the
+# measurement (a few hundred rows, in memory) into the exported order: sun before dark,
+# the instrument's channel order (a channel without a channel row first, by name), the
+# sample index. No sort of the range, so the first row comes at once and SQLite writes
+# no temporary files; and the measurement's four columns are read once, not once per
+# sample (the export of millions of rows is mostly the making of Python objects).
+_SAMPLE_MEASUREMENTS_SQL = """
+SELECT id, time_utc, plan_date, session FROM measurements
+WHERE plan_date BETWEEN ?1 AND ?2
+ORDER BY plan_date, time_utc, id
+"""
+_MEASUREMENT_SAMPLES_SQL = """
+SELECT s.channel, s.kind, s.sample_index, s.value_v
+FROM samples s
+LEFT JOIN measurement_channels mc ON mc.measurement_id = s.measurement_id
+     AND mc.channel = s.channel
+WHERE s.measurement_id = ?
+ORDER BY s.kind != 'sun', mc.channel_index IS NOT NULL, mc.channel_index, s.kind, s.channel,
+         s.sample_index
 """
 
 _RESULTS_SQL = """
@@ -175,59 +186,63 @@ def reading_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[di
 
 def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
     """Every raw sample [V], sun before dark, in time and channel order."""
-    names = [c for c, _ in SAMPLE_COLUMNS]
-    for group in _sample_groups(conn, first, last):
-        for r in group:
-            yield dict(zip(names, r, strict=False))  # the ninth field is the order's
+    for measurement, samples in _sample_groups(conn, first, last):
+        for r in samples:
+            yield dict(zip(_SAMPLE_NAMES, measurement + r, strict=True))
 
 
-def _sample_groups(conn: sqlite3.Connection, first: str, last: str) -> Iterator[list[tuple]]:
-    """Each measurement's samples as plain tuples in the export's order: the columns of
-    SAMPLE_COLUMNS, then channel_index."""
-    cur = conn.cursor()
-    cur.row_factory = None  # plain tuples: this is the export of millions of rows
-    cur.execute(_SAMPLES_SQL, (first, last))
-    group: list[tuple] = []
-    current = None
-    while batch := cur.fetchmany(1000):
-        for r in batch:
-            if r[0] != current:
-                if group:
-                    yield _in_export_order(group)
-                group, current = [], r[0]
-            group.append(r)
-    if group:
-        yield _in_export_order(group)
-
-
-def _sample_order(r: tuple) -> tuple:
-    return (r[5] != "sun", r[8] is not None, r[8] or 0)
-
-
-def _in_export_order(group: list[tuple]) -> list[tuple]:
-    # The cursor gives kind, channel name, index (the samples index's order, so no
-    # temporary B-tree); the export wants sun first, then the instrument's channel
-    # order. The sort is stable, so sample_index order stays.
-    group.sort(key=_sample_order)
-    return group
+def _sample_groups(conn: sqlite3.Connection, first: str, last: str
+                   ) -> Iterator[tuple[tuple, list[tuple]]]:
+    """Per measurement with samples, in time order: its (measurement_id, time_utc,
+    plan_date, session) and its samples' (channel, kind, sample_index, value_v) in the
+    export's order, as plain tuples. Both queries run in the read transaction the
+    measurements cursor holds open, so they see one state of the store."""
+    measurements, samples = conn.cursor(), conn.cursor()
+    measurements.row_factory = samples.row_factory = None  # millions of rows: no Row objects
+    for m in measurements.execute(_SAMPLE_MEASUREMENTS_SQL, (first, last)):
+        rows = samples.execute(_MEASUREMENT_SAMPLES_SQL, (m[0],)).fetchall()
+        if rows:
+            yield m, rows
 
 
 def write_samples_csv(conn: sqlite3.Connection, first: str, last: str, out: IO[str]) -> int:
     """The samples export as CSV straight from the tuples (what :func:`write_csv` writes
-    from :func:`sample_rows`' dicts, byte for byte, in about half the time)."""
-    # The columns before the value are the store's text and whole numbers (or NULL),
-    # which the csv module writes as _csv_cell would; only the value needs its float rule.
-    writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(csv_header(SAMPLE_COLUMNS))
+    from :func:`sample_rows`' dicts, byte for byte, in about a quarter of the time)."""
+    # The csv module's writerow costs more than the query here; so each cell's text is
+    # made by the csv module once per distinct value (a measurement's four fields once
+    # per measurement, the few channel names, kinds and indices once per export) and
+    # the lines are joined from those texts. Only the value is new in every row: a
+    # finite float is its repr, as the csv module writes it; anything else goes through
+    # the same cell rule as the generic writer.
+    csv.writer(out, lineterminator="\n").writerow(csv_header(SAMPLE_COLUMNS))
+    channels, kinds, indices = _CellTexts(), _CellTexts(), _CellTexts()
+    isfinite, text = math.isfinite, _csv_text
     n = 0
-    for group in _sample_groups(conn, first, last):
-        writer.writerows((*r[:VALUE_FIELD], _csv_cell(r[VALUE_FIELD])) for r in group)
-        n += len(group)
+    for measurement, samples in _sample_groups(conn, first, last):
+        head = ",".join(map(text, measurement))
+        out.write("".join([
+            f"{head},{channels[c]},{kinds[k]},{indices[i]},"
+            f"{repr(v) if type(v) is float and isfinite(v) else text(v)}\n"
+            for c, k, i, v in samples]))
+        n += len(samples)
     return n
 
 
-#: value_v's place in SAMPLE_COLUMNS and in the query's rows (the last column).
-VALUE_FIELD = [c for c, _ in SAMPLE_COLUMNS].index("value_v")
+def _csv_text(value: Any) -> str:
+    """One cell's text exactly as :func:`write_csv`'s csv writer puts it in a row."""
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="\n").writerow([_csv_cell(value), ""])
+    return buf.getvalue()[:-2]  # without the empty second cell's "," and the line's end
+
+
+class _CellTexts(dict):
+    """The CSV texts of one column's values, each made by :func:`_csv_text` when first
+    seen (a column of few distinct values: channel names, sample kinds, indices)."""
+
+    def __missing__(self, value: Any) -> str:
+        text = self[value] = _csv_text(value)
+        return text
+
 
 
 def result_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
