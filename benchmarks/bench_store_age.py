@@ -9,15 +9,18 @@ transaction into a schema made by the writer's own migrations. Oldest days get t
 lowest ids, as in a store that grew day by day.
 
 Printed per store: the median wall time of fresh ``heliotrope today --json``,
-``status --json``, ``results --from D`` and ``plot`` processes beside ``python3 -c
-pass``; the median time of one session's points read (``reader.session_points``,
-in-process); the samples export of the newest day and of the whole store: time to
-the first row, rows per second of its CSV (in-process, to /dev/null) and of the whole
-``heliotrope export --what samples --format csv`` command (a fresh process, read from
-a pipe), beside ``sqlite3 -csv`` on the same rows when it is installed; and
-heliotroped's start-up to READY against the simulator, warm and with the store's pages
-dropped, beside the full integrity check it runs after READY; on the 1-year and
-10-year stores ``calibrate`` over the newest year, wall time and peak resident memory.
+``status --json``, ``results --from D`` and ``plot`` processes beside the bare
+interpreter (``python3 -S -c pass``; and this venv's ``python3 -c pass``, which also
+runs the editable install's finder, see ``bench_read_commands.py``) and ``plot``'s
+ratio to it; the median time of one session's points read
+(``reader.session_points``, in-process); the samples export of the newest day and of
+the whole store: time to the first row, rows per second of its CSV (in-process, to
+/dev/null) and of the whole ``heliotrope export --what samples --format csv`` command
+(a fresh process, read from a pipe), beside ``sqlite3 -csv`` on the same rows when it
+is installed; and heliotroped's start-up to READY against the simulator, warm and
+with the store's pages dropped, beside the full integrity check it runs after READY;
+on the 1-year and 10-year stores ``calibrate`` over the newest year, wall time and
+peak resident memory.
 
     .venv/bin/python benchmarks/bench_store_age.py [--runs N] [--ten]
 """
@@ -171,7 +174,7 @@ def _shell_rows_per_s(db: Path, first: str, last: str) -> float | None:
 
 
 def bench(n_days: int, runs: int) -> None:
-    from benchmarks.bench_read_commands import _median_ms, record_station_configuration
+    from benchmarks.bench_read_commands import BARE, _median_ms, record_station_configuration
     from daemon.store.reader import open_readonly, session_points
     from tests.synthetic_store import CONFIG_PATH, DAY
 
@@ -190,15 +193,19 @@ def bench(n_days: int, runs: int) -> None:
               f"{time.perf_counter() - t0:.1f} s")
         env = {**os.environ, "HELIOTROPE_DB": str(db), "HELIOTROPE_CONFIG": str(CONFIG_PATH)}
         cases = [
-            ("python3 -c pass", [sys.executable, "-c", "pass"]),
+            (BARE, [sys.executable, "-S", "-c", "pass"]),
+            ("python3 -c pass (this venv)", [sys.executable, "-c", "pass"]),
             ("today --json", base + ["today", "--json"]),
             ("status --json", base + ["status", "--json"]),
             ("results --from D", base + ["results", "--from", d]),
             ("plot --session am", base + ["plot", "--date", d, "--channel", "500",
                                           "--session", "am"]),
         ]
+        medians = {}
         for name, cmd in cases:
-            print(f"  {name:<32} {_median_ms(cmd, runs, env):>9.1f} ms")
+            medians[name] = _median_ms(cmd, runs, env)
+            print(f"  {name:<32} {medians[name]:>9.1f} ms")
+        print(f"  plot: {medians['plot --session am'] / medians[BARE]:.2f} times {BARE}")
         conn = open_readonly(db)
         times = []
         for _ in range(max(runs, 5)):

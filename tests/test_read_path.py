@@ -85,6 +85,24 @@ def test_read_command_imports_nothing_heavy(day, argv, numpy_ok, env):
         assert "numpy" not in loaded
 
 
+#: The quick look-ups an operator types most, which must not make dataclasses: creating
+#: one (and importing dataclasses, which imports inspect, ast and dis) costs a fresh
+#: process about 1-2 ms a class on Python 3.11, tens of milliseconds on their path
+#: (benchmarks/bench_read_commands.py; common practice, no source).
+QUICK = [c for c in READ_COMMANDS if c[0][0] in ("status", "today", "results", "ssh-gate")]
+
+
+@pytest.mark.parametrize("argv,numpy_ok,env", QUICK, ids=_ids(QUICK))
+def test_quick_read_commands_make_no_dataclasses(day, argv, numpy_ok, env):
+    full = [*argv, "--db", str(day.path)]
+    result = subprocess.run([sys.executable, "-c", _PROBE, *full], capture_output=True,
+                            text=True, cwd=ROOT, env={**os.environ, **env}, timeout=60)
+    assert result.returncode == 0, result.stderr
+    info = json.loads(result.stdout.strip().splitlines()[-1])
+    assert info["rc"] in (0, 1), (info, result.stderr)
+    assert "dataclasses" not in info["modules"]
+
+
 def test_read_commands_leave_the_store_file_untouched(day, capsys):
     before = _sha(day.path), day.path.stat().st_mtime_ns
     for argv, _, env in READ_COMMANDS:

@@ -44,7 +44,7 @@ AIRMASS_LABEL = "air mass"
 LN_V_LABEL = "ln V"
 MARKS_STORED = "stored fit points"
 MARKS_RECOMPUTED = "recomputed here"
-# Stored roles (daemon.store.reader.FIT_POINT_ROLES) as the plot marks them, and why.
+# Stored roles (daemon.science.points.FIT_POINT_ROLES) as the plot marks them, and why.
 _STORED_ROLES = {"used": (USED, None),
                  "rejected": (REJECTED, "rejected by the fit as an outlier"),
                  "outside": (EXCLUDED, "outside the fit's air-mass window, or no finite value"),

@@ -26,11 +26,11 @@ import sqlite3
 import sys
 from collections.abc import Iterator, Mapping
 from pathlib import Path
-from typing import Any, TextIO
+from typing import TYPE_CHECKING, Any, TextIO
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from daemon.science.points import FIT_POINT_ROLES, ChannelStats, SessionPoint  # noqa: F401
-from drivers.interfaces import Housekeeping
+if TYPE_CHECKING:
+    from daemon.science.points import SessionPoint
 
 
 class StoreError(Exception):
@@ -555,6 +555,12 @@ def session_points(conn: sqlite3.Connection, plan_date: str | _dt.date,
     avoids the cancellation of the sum-of-squares formula). The service's writer and
     the read-only commands both read points through here.
     """
+    # Here, not at the top: the points are frozen dataclasses, and making a dataclass
+    # (and importing dataclasses, which imports inspect) costs a fresh process tens of
+    # milliseconds that today, status and results do not need.
+    from daemon.science.points import ChannelStats, SessionPoint
+    from drivers.interfaces import Housekeeping
+
     date = check_plan_date(plan_date)
     if session not in SESSIONS:
         raise ValueError(f"session must be one of {', '.join(SESSIONS)}; got {session!r}")

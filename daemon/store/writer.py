@@ -31,9 +31,8 @@ from typing import Any
 from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
-from daemon.science.points import ChannelStats, SessionPoint
+from daemon.science.points import FIT_POINT_ROLES, ChannelStats, SessionPoint
 from daemon.store.reader import (
-    FIT_POINT_ROLES,
     FIT_SESSIONS,
     SESSIONS,
     StoreError,
@@ -595,7 +594,7 @@ class Store:
         ``airmass_min``, ``airmass_max``, ``accepted`` and ``reasons``, and may carry
         ``notes``, ``earth_sun_factor``, ``residual_sd``, ``fitted_utc`` and
         ``fit_points`` (dicts with ``measurement_id``, ``x``, ``y``, ``role`` from
-        :data:`daemon.store.reader.FIT_POINT_ROLES` and ``reason``, the screening key of
+        :data:`daemon.science.points.FIT_POINT_ROLES` and ``reason``, the screening key of
         a 'screened' point). NaN is stored as NULL. ``fitted_utc`` defaults to the
         system clock. In one transaction with the results, the stored fit points of
         every channel saved are replaced by the row's ``fit_points`` (none when the
