@@ -71,15 +71,20 @@ print(json.dumps({"rc": rc, "modules": sorted(m.split(".")[0] for m in sys.modul
 """
 
 
-@pytest.mark.parametrize("argv,numpy_ok,env", READ_COMMANDS, ids=_ids(READ_COMMANDS))
-def test_read_command_imports_nothing_heavy(day, argv, numpy_ok, env):
+def _modules_loaded(day, argv, env) -> set[str]:
+    """The top-level modules a fresh interpreter holds after the read command."""
     full = [*argv, "--db", str(day.path)]
     result = subprocess.run([sys.executable, "-c", _PROBE, *full], capture_output=True,
                             text=True, cwd=ROOT, env={**os.environ, **env}, timeout=60)
     assert result.returncode == 0, result.stderr
     info = json.loads(result.stdout.strip().splitlines()[-1])
     assert info["rc"] in (0, 1), (info, result.stderr)
-    loaded = set(info["modules"])
+    return set(info["modules"])
+
+
+@pytest.mark.parametrize("argv,numpy_ok,env", READ_COMMANDS, ids=_ids(READ_COMMANDS))
+def test_read_command_imports_nothing_heavy(day, argv, numpy_ok, env):
+    loaded = _modules_loaded(day, argv, env)
     assert not loaded & set(HEAVY), sorted(loaded & set(HEAVY))
     if not numpy_ok:
         assert "numpy" not in loaded
@@ -94,13 +99,7 @@ QUICK = [c for c in READ_COMMANDS if c[0][0] in ("status", "today", "results", "
 
 @pytest.mark.parametrize("argv,numpy_ok,env", QUICK, ids=_ids(QUICK))
 def test_quick_read_commands_make_no_dataclasses(day, argv, numpy_ok, env):
-    full = [*argv, "--db", str(day.path)]
-    result = subprocess.run([sys.executable, "-c", _PROBE, *full], capture_output=True,
-                            text=True, cwd=ROOT, env={**os.environ, **env}, timeout=60)
-    assert result.returncode == 0, result.stderr
-    info = json.loads(result.stdout.strip().splitlines()[-1])
-    assert info["rc"] in (0, 1), (info, result.stderr)
-    assert "dataclasses" not in info["modules"]
+    assert "dataclasses" not in _modules_loaded(day, argv, env)
 
 
 def test_read_commands_leave_the_store_file_untouched(day, capsys):
