@@ -20,7 +20,8 @@ heights the uncertainty budget spans (0.5 and 3 km,
 Per case and channel it prints, first for each session fitted alone: sessions, the
 accepted share, our V0-at-1-AU error (mean and rms over all sessions; percent), the
 median stated uncertainty, the rms of error/uncertainty over all sessions and over
-the accepted ones; then as the service states it: after the afternoon's same-day
+the accepted ones and its largest magnitude among those (z_max); then as the service
+states it: after the afternoon's same-day
 check (:func:`daemon.science.sessionfit.apply_day_check`: a disagreeing pair refused,
 both sessions widened for their disagreement), the accepted share, the median stated
 uncertainty and rms(error/uncertainty) of the accepted sessions; then the same with
@@ -210,6 +211,11 @@ def white_noise_widening(n_points: int, n_series: int = 3000, seed: int = 5) -> 
             f"{_rms(z_plain):.3f} unwidened (t with {nu} dof: {math.sqrt(nu / (nu - 2)):.3f})")
 
 
+def _max_abs(a) -> float:
+    a = np.asarray(a, dtype=float)
+    return float(np.max(np.abs(a))) if a.size else math.nan
+
+
 def _rms(a) -> float:
     a = np.asarray(a, dtype=float)
     return float(np.sqrt(np.mean(np.square(a)))) if a.size else math.nan
@@ -223,7 +229,7 @@ def run(n_days: int, noise: float, prior_days: int, wanted: set[str] | None,
           f"check, 'camp' = with the repeatability of a prior {prior_days}-day campaign "
           "and the same-day check")
     print(f"{'case':14} {'ch':>5} {'n':>3} {'acc':>5} {'mean':>7} {'rms':>6} {'u_med':>6} "
-          f"{'z_all':>6} {'z_acc':>6} | {'acc':>5} {'u_med':>6} {'z_acc':>6} | "
+          f"{'z_all':>6} {'z_acc':>6} {'z_max':>6} | {'acc':>5} {'u_med':>6} {'z_acc':>6} | "
           f"{'acc':>5} {'u_med':>6} {'z_acc':>6} | {'polyfit':>8}")
     t0 = time.perf_counter()
     n_fits = 0
@@ -276,7 +282,8 @@ def run(n_days: int, noise: float, prior_days: int, wanted: set[str] | None,
             print(f"{label:14} {n:>5} {len(acc):3d} {100 * acc.mean():4.0f}% "
                   f"{100 * np.nanmean(r['err']):+7.3f} {100 * _rms(r['err'][ok]):6.3f} "
                   f"{100 * np.nanmedian(r['u']):6.3f} {_rms(r['err'][ok] / r['u'][ok]):6.2f} "
-                  f"{_rms(r['err'][ok & acc] / r['u'][ok & acc]):6.2f} | {cols[0]} | "
+                  f"{_rms(r['err'][ok & acc] / r['u'][ok & acc]):6.2f} "
+                  f"{_max_abs(r['err'][ok & acc] / r['u'][ok & acc]):6.2f} | {cols[0]} | "
                   f"{cols[1]} | {100 * _rms(poly):8.3f}")
         if show_widening:
             print(f"{'':14} widening of the statistical term, sessions alone: channel, share "

@@ -128,3 +128,23 @@ def test_export_gives_the_precipitable_water_of_each_measurement(tmp_path):
     assert all(r["aod"] is None for r in water)
     np.testing.assert_allclose([r["precipitable_water_cm"] for r in water], 0.8, rtol=0.03)
     assert all(r["precipitable_water_cm"] is None for r in out if r["channel"] != "940")
+
+
+def test_the_vapour_layer_heights_span_the_published_scale_heights():
+    # ITU-R P.835 (reference standard atmospheres): water vapour on a 2 km scale height
+    # (as documented by pyrtlib's standard_water_vapour_pressure, h_0 = 2 km).
+    # Gueymard (1994), apparent water-vapour scale height from the surface temperature,
+    # H_v = 0.4976 + 1.5265 t + exp(13.6897 t - 14.9188 t^3), t = T / 273.15 K (as
+    # quoted in DNV's SolarFarmer calculation reference): 2.17-2.83 km for -10 to 35 degC.
+    # Butler's rule for precipitable water: 1.5 km (from memory).
+    from daemon.science.sessionfit import WATER_VAPOUR_SCALE_HEIGHTS_KM
+
+    lo, hi = WATER_VAPOUR_SCALE_HEIGHTS_KM
+
+    published = [2.0, 1.5]
+    for celsius in range(-10, 36, 5):
+        t = (celsius + 273.15) / 273.15
+        published.append(0.4976 + 1.5265 * t + math.exp(13.6897 * t - 14.9188 * t ** 3))
+    assert min(published) == pytest.approx(1.5)
+    assert max(published) == pytest.approx(2.83, abs=0.01)
+    assert all(lo <= h <= hi for h in published), (published, lo, hi)

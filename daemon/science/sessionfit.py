@@ -754,7 +754,7 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
     known = known_extinction(s.airmass, s.ozone_airmass, s.pressure_hpa)
     u_tau_a = aerosol_unc_at(channel.wavelength_nm, aerosol, aerosol_unc or {})
     fit, wv, u_b_rel = water_vapour_fit(s, channel, config, known, p_ref,
-                                        known_unc=u_tau_a * s.airmass)
+                                        known_unc=u_tau_a * s.airmass, tau_a=tau_a[0])
     b = wv.b
     m_w = water_vapour_airmass_from_kasten_young(s.airmass)
     rep = (repeatability or {}).get(channel.name)
@@ -782,8 +782,8 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
 
 
 def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: np.ndarray,
-                     pressure_hpa: float, known_unc: np.ndarray | None = None
-                     ) -> tuple[FitResult, Any, float]:
+                     pressure_hpa: float, known_unc: np.ndarray | None = None,
+                     tau_a: float = 0.0) -> tuple[FitResult, Any, float]:
     """The modified-Langley fit with a, b from the filter, and b's share of V0's uncertainty.
 
     The regressor is ``m_w^b`` with ``m_w`` the water-vapour air mass (Kasten 1965,
@@ -800,10 +800,12 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
     ``u(tau_a) m``), is propagated the same way: the fit repeated with ``known +/-
     known_unc``, half the change of ln V0 as the ``aerosol_from_window_channels`` term
     (a wrong aerosol adds ``delta tau_a m``, which is curved against ``m_w^b`` and so
-    moves the intercept, not only the slope).
+    moves the intercept, not only the slope). Last, the layer air masses of the vapour
+    and of the aerosol ``tau_a`` (:func:`water_vapour_layer_terms`) correct V0 and add
+    their terms.
 
-    Returns the fit (``v0_rel_unc`` including b's and the aerosol's parts), the
-    constants used and b's part.
+    Returns the fit (``v0_rel_unc`` including b's, the aerosol's and the layers'
+    parts), the constants used and b's part.
     """
     from daemon.science.watervapour import (  # pvlib: only for this channel
         derive_constants,
@@ -840,7 +842,86 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
     if known_unc is not None and np.any(np.asarray(known_unc) != 0.0):
         up, down = run(wv.b, known + known_unc), run(wv.b, known - known_unc)
         terms["aerosol_from_window_channels"] = abs(up.ln_v0 - down.ln_v0) / 2.0
-    return with_terms(fit, terms), wv, u_b_rel
+    fit, layer_terms, notes = water_vapour_layer_terms(fit, m_w, s.airmass, wv.b, tau_a,
+                                                       config)
+    return with_terms(fit, {**terms, **layer_terms}, tuple(notes)), wv, u_b_rel
+
+
+#: Scale heights of the water vapour above the site the budget spans [km]. The fit's
+#: water-vapour air mass is Kasten's (1965) formula for one standard profile; the real
+#: vapour's slant path is that of its own layer. ITU-R P.835's reference atmosphere
+#: puts the vapour on a 2 km scale height (as documented by pyrtlib's
+#: ``standard_water_vapour_pressure``); Gueymard's (1994) apparent scale height,
+#: ``H_v = 0.4976 + 1.5265 t + exp(13.6897 t - 14.9188 t^3)`` with ``t = T / 273.15 K``
+#: (as quoted by DNV's SolarFarmer calculation reference), gives 2.17-2.83 km for
+#: surface temperatures of -10 to 35 degC; the rule used with Butler's estimate of
+#: precipitable water takes 1.5 km (from memory). The range spans them.
+WATER_VAPOUR_SCALE_HEIGHTS_KM = (1.5, 3.0)
+
+
+def water_vapour_layer_terms(fit: FitResult, m_w: np.ndarray, airmass: np.ndarray, b: float,
+                             tau_a: float, config: Config
+                             ) -> tuple[FitResult, dict[str, float], list[str]]:
+    """The modified Langley's layer air masses: corrections and their terms.
+
+    ``water_vapour_airmass_model``: if the vapour's slant path is ``m_h``, a thin layer
+    at a height ``h`` of :data:`WATER_VAPOUR_SCALE_HEIGHTS_KM` above the site
+    (Komhyr's spherical-shell form, :func:`daemon.science.atmosphere.ozone_airmass`)
+    rather than the fit's ``m_w``, the line through ``ln V + known`` against ``m_w^b``
+    misses the pattern ``-tau (m_h^b - m_w^b)`` (``tau`` the fitted slope, ``a W^b``).
+    ``aerosol_layer_airmass``: the known extinction puts the window channels' aerosol
+    ``tau_a`` on the Kasten-Young air mass ``m``; on a layer at one of
+    :data:`AEROSOL_SCALE_HEIGHTS_KM` the line misses ``-tau_a (m_layer - m)``, which
+    against ``m_w^b`` is curved and moves the intercept far more than in a window
+    channel's line against ``m``.
+
+    Each bias is the intercept of a line fitted to its pattern over the used points.
+    As for the window channels (:func:`systematic_terms`), it is corrected to the
+    middle of its range and the rectangular half-width over sqrt(3) stays as its term
+    (JCGM 100:2008, sec. 4.3.7); with ``fit.correct_model_terms: false`` nothing is
+    corrected and each term is ``hypot(half-width / sqrt(3), middle)``.
+    """
+    from daemon.science.atmosphere import ozone_airmass
+
+    used = np.asarray(fit.used, dtype=bool)
+    if fit.n_used < 2 or not (math.isfinite(fit.ln_v0) and math.isfinite(fit.tau)):
+        return fit, {}, []
+    m = np.asarray(airmass, dtype=float)[used]
+    z = _zenith_of(tuple(m.tolist()))
+    x = np.asarray(m_w, dtype=float)[used] ** b
+    ok = np.isfinite(z) & np.isfinite(x)
+    if ok.sum() < 2 or np.ptp(x[ok]) == 0.0:
+        return fit, {}, []
+    m, z, x = m[ok], z[ok], x[ok]
+    elev_m = config.site.elevation_m
+
+    def layer(h_km: float) -> np.ndarray:
+        return ozone_airmass(z, elev_m, elev_m / 1000.0 + h_km)
+
+    patterns = {
+        "water_vapour_airmass_model": [-fit.tau * (layer(h) ** b - x)
+                                       for h in WATER_VAPOUR_SCALE_HEIGHTS_KM],
+        "aerosol_layer_airmass": [-max(tau_a, 0.0) * (layer(h) - m)
+                                  for h in AEROSOL_SCALE_HEIGHTS_KM],
+    }
+    shifts, terms = {}, {}
+    for name, (low, high) in patterns.items():
+        ends = [fit_line(x, low).intercept, fit_line(x, high).intercept]
+        middle, half = 0.5 * (ends[0] + ends[1]), 0.5 * abs(ends[1] - ends[0]) / math.sqrt(3.0)
+        if config.fit.correct_model_terms:
+            shifts[name], terms[name] = middle, half
+        else:
+            terms[name] = math.hypot(half, middle)
+    if not shifts:
+        return fit, terms, []
+    ln_v0 = fit.ln_v0 - sum(shifts.values())
+    note = ("V0 corrected by " + ", ".join(f"{k.replace('_', ' ')} {-100 * v:+.3f} %"
+                                           for k, v in shifts.items())
+            + f" (the vapour on a layer {WATER_VAPOUR_SCALE_HEIGHTS_KM[0]:g}-"
+            f"{WATER_VAPOUR_SCALE_HEIGHTS_KM[1]:g} km and the aerosol on one "
+            f"{AEROSOL_SCALE_HEIGHTS_KM[0]:g}-{AEROSOL_SCALE_HEIGHTS_KM[1]:g} km above the "
+            "site, not Kasten's 1965 profile and the whole atmosphere's air mass)")
+    return replace(fit, ln_v0=ln_v0, v0=math.exp(ln_v0)), terms, [note]
 
 
 #: The session's own column range for the refined a, b: its first estimate times or
