@@ -3,12 +3,13 @@
 Each command runs as a fresh process (the installed ``heliotrope`` script when it is
 there, else ``python -m daemon.commands.cli``) against a synthetic clear day, and the median of
 N runs is printed beside that of the bare interpreter, after the project's bytecode
-caches are written (:func:`compile_bytecode`). The bare interpreter is ``python3 -S -c
-pass``, the interpreter's own start-up (:data:`BARE`): this development venv's
-``python3 -c pass`` also runs the editable install's import finder, which imports
-``pathlib``, ``re`` and ``urllib.parse`` at every start (some 25-35 ms here) and which a
-station's installed package does not have; it is printed too, but the ratios are
-taken against the interpreter's own start.
+caches are written (:func:`compile_bytecode`). The bare interpreter (:data:`BARE`) is
+``python3 -c pass`` in a fresh venv with nothing installed (:func:`bare_python`), the
+interpreter's own start-up with its site module: this development venv's ``python3 -c
+pass`` also runs the editable install's import finder, which imports ``pathlib``,
+``re`` and ``urllib.parse`` at every start (some 25-35 ms here) and which a station's
+installed package does not have; it is printed too, but the ratios are taken against
+the interpreter's own start.
 Budget (DESIGN.md): ``heliotrope today --json`` under 150 ms on the development machine.
 
     .venv/bin/python benchmarks/bench_read_commands.py [--runs N]
@@ -30,9 +31,17 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 BUDGET_MS = 150.0
-#: The bare interpreter the budgets' ratios are taken against: no site, so none of this
-#: venv's .pth files (the editable install's finder) run.
-BARE = "python3 -S -c pass"
+#: The bare interpreter the budgets' ratios are taken against: a fresh venv's, so none
+#: of this venv's .pth files (the editable install's finder) run.
+BARE = "python3 -c pass (fresh venv)"
+
+
+def bare_python(directory: Path) -> str:
+    """The interpreter of a fresh venv made in ``directory``, with nothing installed."""
+    import venv
+
+    venv.EnvBuilder(with_pip=False).create(directory)
+    return str(directory / "bin" / "python")
 
 
 _compiled = False
@@ -96,7 +105,7 @@ def main() -> int:
         record_station_configuration(db, CONFIG_PATH)
         env = {**os.environ, "HELIOTROPE_DB": str(db), "HELIOTROPE_CONFIG": str(CONFIG_PATH)}
         cases = [
-            (BARE, [sys.executable, "-S", "-c", "pass"]),
+            (BARE, [bare_python(Path(tmp) / "bare"), "-c", "pass"]),
             ("python3 -c pass (this venv)", [sys.executable, "-c", "pass"]),
             ("heliotrope today --json", base + ["today", "--json"]),
             ("heliotrope status --json", base + ["status", "--json"]),

@@ -10,8 +10,8 @@ lowest ids, as in a store that grew day by day.
 
 Printed per store: the median wall time of fresh ``heliotrope today --json``,
 ``status --json``, ``results --from D`` and ``plot`` processes beside the bare
-interpreter (``python3 -S -c pass``; and this venv's ``python3 -c pass``, which also
-runs the editable install's finder, see ``bench_read_commands.py``) and ``plot``'s
+interpreter (``python3 -c pass`` of a fresh venv; and this venv's, which also runs
+the editable install's finder, see ``bench_read_commands.py``) and ``plot``'s
 ratio to it; the median time of one session's points read
 (``reader.session_points``, in-process); the samples export of the newest day and of
 the whole store: time to the first row, rows per second of its CSV (in-process, to
@@ -174,7 +174,12 @@ def _shell_rows_per_s(db: Path, first: str, last: str) -> float | None:
 
 
 def bench(n_days: int, runs: int) -> None:
-    from benchmarks.bench_read_commands import BARE, _median_ms, record_station_configuration
+    from benchmarks.bench_read_commands import (
+        BARE,
+        _median_ms,
+        bare_python,
+        record_station_configuration,
+    )
     from daemon.store.reader import open_readonly, session_points
     from tests.synthetic_store import CONFIG_PATH, DAY
 
@@ -193,7 +198,7 @@ def bench(n_days: int, runs: int) -> None:
               f"{time.perf_counter() - t0:.1f} s")
         env = {**os.environ, "HELIOTROPE_DB": str(db), "HELIOTROPE_CONFIG": str(CONFIG_PATH)}
         cases = [
-            (BARE, [sys.executable, "-S", "-c", "pass"]),
+            (BARE, [bare_python(Path(tmp) / "bare"), "-c", "pass"]),
             ("python3 -c pass (this venv)", [sys.executable, "-c", "pass"]),
             ("today --json", base + ["today", "--json"]),
             ("status --json", base + ["status", "--json"]),

@@ -178,7 +178,8 @@ def _screen(points: list, channel, config) -> tuple[list[dict], list[PlotPoint]]
     return kept, screened
 
 
-def langley_view(conn, config, plan_date: str, session: str, channel_name: str) -> SessionView:
+def langley_view(conn, config, plan_date: str, session: str, channel_name: str, *,
+                 points: list | None = None, results: list[dict] | None = None) -> SessionView:
     """One channel's session: its points with their roles in the fit, and the fitted line.
 
     From the stored fit points when the store has them (exact marks, y as fitted);
@@ -197,12 +198,18 @@ def langley_view(conn, config, plan_date: str, session: str, channel_name: str) 
         'am' or 'pm'.
     channel_name : str
         A channel named in the configuration.
+    points, results : list, optional
+        The session's :func:`daemon.store.reader.session_points` and the date's
+        :func:`daemon.store.reader.results_between`, when the caller has read them
+        already (a report draws every channel of both sessions from one read of each).
     """
     from daemon.store.reader import fit_points, results_between, session_points
 
     channel = config.channel(channel_name)
-    raw = session_points(conn, plan_date, session)
-    stored = next((r for r in results_between(conn, plan_date, plan_date)
+    raw = session_points(conn, plan_date, session) if points is None else points
+    if results is None:
+        results = results_between(conn, plan_date, plan_date)
+    stored = next((r for r in results
                    if r["session"] == session and r["channel"] == channel_name), None)
     records = fit_points(conn, plan_date, session, channel_name)
     if records:

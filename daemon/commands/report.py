@@ -717,6 +717,7 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         events_between,
         open_readonly,
         results_between,
+        session_points,
         stored_calibration,
         stored_plan,
     )
@@ -736,7 +737,9 @@ def build_report(db: str | Path, config, plan_date: str, now: _dt.datetime) -> s
         end = _dt.datetime(nxt.year, nxt.month, nxt.day, tzinfo=tz)
         events = events_between(conn, start.astimezone(_dt.UTC).isoformat(),
                                 end.astimezone(_dt.UTC).isoformat())
-        views = {ch.name: [langley_view(conn, config, plan_date, s, ch.name)
+        points = {s: session_points(conn, plan_date, s) for s in ("am", "pm")}
+        views = {ch.name: [langley_view(conn, config, plan_date, s, ch.name, points=points[s],
+                                        results=results)
                            for s in ("am", "pm")] for ch in config.channels}
         calibration = stored_calibration(conn)
         aod = list(aod_between(conn, plan_date, plan_date))
