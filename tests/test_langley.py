@@ -451,3 +451,20 @@ def test_duplicate_air_masses_and_a_single_point_are_judged_not_crashed():
     m = np.array([2.0, 2.0, 4.0, 4.0, 6.0, 6.0])
     dup = fit_session(m, np.exp(-0.1 * m), replace(SETTINGS, min_points=3))
     assert dup.accepted and dup.n_used == 6
+
+
+def test_intercept_weights_give_numpy_polyfits_intercept():
+    # The least-squares intercept as a dot product with weights of x alone, against
+    # numpy.polyfit (a general-purpose reference library) on unrelated y.
+    from daemon.science.langley import intercept_weights
+
+    rng = np.random.default_rng(4)
+    x = np.linspace(1.9, 6.2, 23) ** 0.55
+    w = intercept_weights(x)
+    for _ in range(5):
+        y = rng.normal(size=x.size)
+        assert float(w @ y) == pytest.approx(np.polyfit(x, y, 1)[1], abs=1e-12)
+    with pytest.raises(ValueError, match="spread in x"):
+        intercept_weights([2.0, 2.0, 2.0])
+    with pytest.raises(ValueError, match="at least"):
+        intercept_weights([1.0])

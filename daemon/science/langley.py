@@ -212,6 +212,31 @@ def fit_line(x: ArrayLike, y: ArrayLike) -> LineFit:
                    se_slope=se_slope, residual_sd=residual_sd, n=n)
 
 
+def intercept_weights(x: ArrayLike) -> np.ndarray:
+    """Weights ``w`` with ``fit_line(x, y).intercept == w @ y`` for every ``y``.
+
+    The least-squares intercept is linear in ``y``: ``w_i = 1/n - x_mean (x_i - x_mean)
+    / Sxx`` (common practice, no source). For many patterns over the same ``x`` (the
+    budget's model terms) one dot product each replaces a fit each.
+
+    Parameters
+    ----------
+    x : array_like
+        1-D array of finite values, at least two, not all equal.
+    """
+    x = np.asarray(x, dtype=float).ravel()
+    if x.size < 2 or not np.all(np.isfinite(x)):
+        raise ValueError(f"intercept_weights: {x.size} value(s) given; a line needs at least "
+                         "2 finite x values")
+    x_mean = x.mean()
+    dx = x - x_mean
+    sxx = float(np.dot(dx, dx))
+    if sxx == 0.0:
+        raise ValueError(f"intercept_weights: all x values equal {x[0]:g}; a line needs a "
+                         "spread in x")
+    return 1.0 / x.size - x_mean * dx / sxx
+
+
 def lag1_autocorrelation(residuals: ArrayLike) -> float:
     """Lag-1 autocorrelation coefficient of a residual series (in the given order).
 

@@ -37,8 +37,8 @@ from daemon.science.langley import (
     FitResult,
     drift_sensitivity,
     fit_coordinates,
-    fit_line,
     fit_session,
+    intercept_weights,
     v0_at_1au,
     with_terms,
 )
@@ -299,8 +299,10 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
         return {}, {}
     elev_m = config.site.elevation_m
 
-    def shift(pattern: np.ndarray) -> float:
-        return fit_line(m, pattern).intercept
+    weights = intercept_weights(m)
+
+    def shift(pattern: np.ndarray) -> float:  # the intercept of a line fitted to it
+        return float(weights @ pattern)
 
     sd_tau = RAYLEIGH_EXPONENT * tau_r * (channel.bandwidth_nm / FWHM_PER_SD) / lam
     width = shift(0.5 * sd_tau * sd_tau * m * m)
@@ -904,9 +906,10 @@ def water_vapour_layer_terms(fit: FitResult, m_w: np.ndarray, airmass: np.ndarra
         "aerosol_layer_airmass": [-max(tau_a, 0.0) * (layer(h) - m)
                                   for h in AEROSOL_SCALE_HEIGHTS_KM],
     }
+    weights = intercept_weights(x)
     shifts, terms = {}, {}
     for name, (low, high) in patterns.items():
-        ends = [fit_line(x, low).intercept, fit_line(x, high).intercept]
+        ends = [float(weights @ low), float(weights @ high)]
         middle, half = 0.5 * (ends[0] + ends[1]), 0.5 * abs(ends[1] - ends[0]) / math.sqrt(3.0)
         if config.fit.correct_model_terms:
             shifts[name], terms[name] = middle, half
