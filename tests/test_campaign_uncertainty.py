@@ -48,11 +48,10 @@ def test_campaign_uncertainty_formula_takes_the_larger_independent_part():
     assert campaign_uncertainty(1.0, 0.006, stated, shared) == pytest.approx(0.003)
 
 
-@pytest.mark.slow
-def test_ten_simulated_days_campaign_uncertainty_not_below_spread_over_sqrt_n():
-    # Done-when: on ten simulated days the campaign uncertainty is not below (session
-    # spread) / sqrt(N), and not below what the sessions share; no more the 0.006 to
-    # 0.025 % that the standard error of agreeing sessions alone gave.
+@pytest.fixture(scope="module")
+def ten_days():
+    """Ten days of the independent sky, fitted and day-checked as the service does:
+    (config, result rows, truth V0 at 1 AU by channel)."""
     scenario = load_scenario("pico-sereno-independent")
     config = config_for(scenario)
     results = []
@@ -64,7 +63,15 @@ def test_ten_simulated_days_campaign_uncertainty_not_below_spread_over_sqrt_n():
                                        session)
         apply_day_check(rows["am"], rows["pm"], config.fit)
         results += rows["am"] + rows["pm"]
-    truth = {name: t.v0_1au_v for name, t in s.truth.items()}
+    return config, results, {name: t.v0_1au_v for name, t in s.truth.items()}
+
+
+@pytest.mark.slow
+def test_ten_simulated_days_campaign_uncertainty_not_below_spread_over_sqrt_n(ten_days):
+    # Done-when: on ten simulated days the campaign uncertainty is not below (session
+    # spread) / sqrt(N), and not below what the sessions share; no more the 0.006 to
+    # 0.025 % that the standard error of agreeing sessions alone gave.
+    config, results, truth = ten_days
     cals = [c for c in campaign(results, config) if c.channel != "940"]
     assert cals and all(c.usable for c in cals)
     for c in cals:
@@ -80,3 +87,23 @@ def test_ten_simulated_days_campaign_uncertainty_not_below_spread_over_sqrt_n():
         # The campaign's error is within three of its stated uncertainties (GUM: a
         # standard uncertainty; beyond three would be a dishonest one).
         assert abs(c.v0_1au / truth[c.channel] - 1) < 3 * c.v0_1au_unc / c.v0_1au, c.channel
+
+
+@pytest.mark.slow
+def test_the_water_vapour_campaign_keeps_its_shared_terms_whole(ten_days):
+    # The 940 nm channel's b and its layer air masses are the same on every day: the
+    # campaign adds them whole, not divided by the number of sessions (GUM 5.2, fully
+    # correlated), and its error stays within three of its uncertainties.
+    config, results, truth = ten_days
+    c = next(c for c in campaign(results, config) if c.channel == "940")
+    assert c.usable
+    shared = [r["v0_shared_rel_unc"] for r in results if r["channel"] == "940"
+              and r["accepted"]]
+    assert len(shared) >= 10 and min(shared) > 0.0
+    assert c.v0_1au_unc / c.v0_1au >= min(shared) * (1 - 1e-9)
+    assert abs(c.v0_1au / truth["940"] - 1) < 3 * c.v0_1au_unc / c.v0_1au
+    # the shared part is the root sum of squares of the shared budget terms
+    r = next(r for r in results if r["channel"] == "940" and r["accepted"])
+    names = ("water_vapour_exponent", "water_vapour_airmass_model", "aerosol_layer_airmass")
+    assert r["v0_shared_rel_unc"] == pytest.approx(math.sqrt(sum(
+        r["uncertainty_budget"].get(k, 0.0) ** 2 for k in names)), rel=1e-12)

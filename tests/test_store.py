@@ -329,6 +329,22 @@ def result_row(channel: str, wl: float, **changes) -> dict:
     return row
 
 
+def test_the_shared_part_of_a_result_is_stored_and_read_back(store, db_path):
+    # m009: the fit's shared part of V0's uncertainty, read back by (date, session,
+    # channel) for the campaign; a row without one is left out (common practice, no
+    # source: a round trip).
+    store.save_session_results("2025-03-21", "am", [
+        result_row("940", 940, v0_shared_rel_unc=0.0023), result_row("500", 500)],
+        fitted_utc=T0)
+    conn = storeread.open_readonly(db_path)
+    try:
+        assert storeread.shared_uncertainties(conn, "2025-03-20", "2025-03-22") == {
+            ("2025-03-21", "am", "940"): 0.0023}
+        assert storeread.shared_uncertainties(conn, "2025-03-22", "2025-03-22") == {}
+    finally:
+        conn.close()
+
+
 def test_session_results_replace_on_refit_and_nan_becomes_null(store, db_path):
     store.save_session_results("2025-03-20", "am", [result_row("500", 500)], fitted_utc=T0)
     store.save_session_results("2025-03-21", "am", [result_row("870", 870),

@@ -19,7 +19,12 @@ from daemon.commands.tables import fmt, table
 from daemon.config.settings import Config
 from daemon.science.campaign import CalibrationError, campaign
 from daemon.station.fitting import update_aod
-from daemon.store.reader import check_plan_date, results_between, stored_calibration
+from daemon.store.reader import (
+    check_plan_date,
+    results_between,
+    shared_uncertainties,
+    stored_calibration,
+)
 from daemon.store.writer import Store
 
 
@@ -54,7 +59,9 @@ def calibrate(store: Store, config: Config, first: str | _dt.date, last: str | _
     d1, d2 = check_plan_date(first), check_plan_date(last)
     if d2 < d1:
         raise CalibrationError(f"the end date {d2} is before the start date {d1}; swap them")
-    results = results_between(store.conn, d1, d2)
+    shared = shared_uncertainties(store.conn, d1, d2)
+    results = [{**r, "v0_shared_rel_unc": shared.get((r["date"], r["session"], r["channel"]))}
+               for r in results_between(store.conn, d1, d2)]
     sessions_found = len({(r["date"], r["session"]) for r in results})
     notes: list[str] = []
     channels = campaign(results, config, notes)

@@ -332,7 +332,13 @@ def pair_spread_floor(rows: Sequence[Mapping[str, Any]]) -> tuple[float, int]:
 
 
 def _shared(channel: Channel, config: Config, row: Mapping[str, Any]) -> float:
-    """The shared part of a stored session's uncertainty, from its air-mass range and tau."""
+    """The shared part of a session's uncertainty: the fit's own figure
+    (``v0_shared_rel_unc``, stored with the result since m009), or for an older row
+    of a window channel the model terms again from its air-mass range and tau (an
+    older water-vapour row has none: 0)."""
+    stored = row.get("v0_shared_rel_unc")
+    if stored is not None and math.isfinite(stored):
+        return float(stored)
     lo, hi, tau = row.get("airmass_min"), row.get("airmass_max"), row.get("tau")
     if lo is None or hi is None or tau is None or not hi > lo:
         return 0.0

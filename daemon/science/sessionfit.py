@@ -204,6 +204,10 @@ RAYLEIGH_EXPONENT = 4.0
 #: sessions would claim an accuracy the model does not have.
 SYSTEMATIC_TERMS = ("filter_width", "aerosol_layer_airmass", "ozone_airmass_model",
                     "ozone_optical_depth")
+#: A water-vapour channel's terms its sessions share besides those: the filter's ``b``
+#: and the vapour's layer air mass (its aerosol from the window channels is each
+#: session's own).
+WATER_VAPOUR_SHARED_TERMS = ("water_vapour_exponent", "water_vapour_airmass_model")
 #: Relative standard uncertainty of the ozone optical depth the correction uses [fraction]:
 #: the configured nominal column against the day's (total ozone varies by some 5-10 %
 #: from day to day and with the season; from memory) and the band's cross-section
@@ -666,8 +670,9 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
         One row per configured channel in configuration order: the contract keys
         (:data:`daemon.store.reader.RESULT_KEYS`) plus ``notes``, ``earth_sun_factor``,
         ``residual_sd``, ``tau_aerosol``, ``tau_rayleigh``, ``tau_ozone``,
-        ``e0_1au_w_m2_nm`` and ``astm_ratio`` (NaN where not computed), and
-        ``fit_points`` (:func:`fit_point_records`).
+        ``e0_1au_w_m2_nm`` and ``astm_ratio`` (NaN where not computed),
+        ``fit_points`` (:func:`fit_point_records`) and ``v0_shared_rel_unc``
+        (:func:`shared_part`).
         Water-vapour channels are fitted after the window channels, whose accepted
         aerosol optical depths they need; their ``tau`` is None (the modified
         Langley's slope is not an optical depth).
@@ -704,7 +709,20 @@ def fit_series(series: Mapping[str, ChannelSeries], config: Config, plan_date: s
             s = series.get(channel.name, empty)
             rows[channel.name] = _water_vapour_row(s, channel, config, aerosol, plan_date,
                                                    session, repeatability, aerosol_unc)
+    for row in rows.values():
+        row["v0_shared_rel_unc"] = shared_part(row["uncertainty_budget"])
     return [rows[c.name] for c in config.channels]
+
+
+def shared_part(budget: Mapping[str, float]) -> float | None:
+    """The part of a session's V0 uncertainty the sessions of a campaign share
+    [fraction]: the root sum of squares of the budget's :data:`SYSTEMATIC_TERMS` and
+    :data:`WATER_VAPOUR_SHARED_TERMS` (None for a session without a budget: not
+    fitted). The campaign does not divide it by its number of sessions."""
+    if not budget:
+        return None
+    names = SYSTEMATIC_TERMS + WATER_VAPOUR_SHARED_TERMS
+    return math.sqrt(sum(u * u for k, u in budget.items() if k in names))
 
 
 def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,

@@ -761,6 +761,21 @@ def water_vapour_result(conn: sqlite3.Connection, plan_date: str | _dt.date, ses
     return dict(zip(WATER_VAPOUR_KEYS, tuple(row), strict=True))
 
 
+def shared_uncertainties(conn: sqlite3.Connection, first: str | _dt.date,
+                         last: str | _dt.date) -> dict[tuple[str, str, str], float]:
+    """The stored shared part of each session result's V0 uncertainty (m009), by
+    (date, session, channel), for plan dates ``first`` to ``last``; rows without one
+    (older rows, channels not fitted) are left out, as is everything in a store
+    before m009."""
+    if not _has_column(conn, "session_results", "v0_shared_rel_unc"):
+        return {}
+    rows = conn.execute(
+        "SELECT plan_date, session, channel, v0_shared_rel_unc FROM session_results "
+        "WHERE plan_date BETWEEN ? AND ? AND v0_shared_rel_unc IS NOT NULL",
+        (check_plan_date(first), check_plan_date(last)))
+    return {(d, s, c): u for d, s, c, u in rows}
+
+
 def _calibration_row(conn: sqlite3.Connection, cal: Mapping[str, Any]) -> dict[str, Any]:
     cur = conn.execute(
         "SELECT channel, wavelength_nm, v0_1au, v0_1au_unc, repeatability_pct, n_sessions, "

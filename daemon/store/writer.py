@@ -239,6 +239,16 @@ def m008_configuration_data(db: Database) -> None:
                    (configuration_json(text), cid))
 
 
+@migrations()
+def m009_shared_uncertainty(db: Database) -> None:
+    # The part of a session's V0 uncertainty the sessions of a campaign share (its
+    # model terms; for a water-vapour channel also b and the vapour's layer air mass),
+    # as the fit computed it, so that the campaign need not recompute it from the
+    # air-mass range (which it cannot do for a water-vapour channel). NULL in older
+    # rows: the campaign then recomputes a window channel's.
+    db["session_results"].add_column("v0_shared_rel_unc", float)
+
+
 # Every migration is pending on an empty database: that lists the names this version knows.
 KNOWN_MIGRATIONS = frozenset(m.name for m in migrations.pending(
     Database(memory=True, execute_plugins=False)))
@@ -627,6 +637,7 @@ class Store:
                 "fitted_utc": fitted if isinstance(fitted, str) else utc_iso(fitted),
                 "configuration_id": self.configuration_id,
                 **{k: _num(r.get(k)) for k in WATER_VAPOUR_RESULT_COLUMNS},
+                "v0_shared_rel_unc": _num(r.get("v0_shared_rel_unc")),
             })
             points += _fit_point_rows(date, session, str(r["channel"]), r.get("fit_points", ()))
         with self._lock, self.db.atomic():
