@@ -310,18 +310,36 @@ def systematic_terms(channel: Channel, config: Config, airmass: np.ndarray,
 
     sd_tau = RAYLEIGH_EXPONENT * tau_r * (channel.bandwidth_nm / FWHM_PER_SD) / lam
     width = shift(0.5 * sd_tau * sd_tau * m * m)
-    site_km = elev_m / 1000.0
-    layer = [shift(-tau_a * (ozone_airmass(z, elev_m, site_km + h) - m))
-             for h in AEROSOL_SCALE_HEIGHTS_KM]
+    layer = range_term([shift(-tau_a * (m_h - m)) for m_h in layer_airmasses(
+        z, elev_m, AEROSOL_SCALE_HEIGHTS_KM)])
     m_o3 = ozone_airmass(z, elev_m)
-    ozone = [shift(-tau_o3 * (m_h - m_o3)) for m_h in ozone_layer_airmasses(z, elev_m)]
-    shifts = {"filter_width": width, "aerosol_layer_airmass": 0.5 * (layer[0] + layer[1]),
-              "ozone_airmass_model": 0.5 * (min(ozone) + max(ozone))}
+    ozone = range_term([shift(-tau_o3 * (m_h - m_o3))
+                        for m_h in ozone_layer_airmasses(z, elev_m)])
+    shifts = {"filter_width": width, "aerosol_layer_airmass": layer[0],
+              "ozone_airmass_model": ozone[0]}
     terms = {"filter_width": BAND_MODEL_SHARE * abs(width),
-             "aerosol_layer_airmass": 0.5 * abs(layer[1] - layer[0]) / math.sqrt(3.0),
-             "ozone_airmass_model": 0.5 * (max(ozone) - min(ozone)) / math.sqrt(3.0),
+             "aerosol_layer_airmass": layer[1], "ozone_airmass_model": ozone[1],
              "ozone_optical_depth": OZONE_TAU_REL_UNC * abs(shift(tau_o3 * (m_o3 - m)))}
     return shifts, terms
+
+
+def range_term(shifts: Sequence[float]) -> tuple[float, float]:
+    """A bias known to lie between the smallest and largest of ``shifts``: its middle
+    and the rectangular half-width over sqrt(3) (JCGM 100:2008, GUM, sec. 4.3.7)."""
+    lo, hi = min(shifts), max(shifts)
+    return 0.5 * (lo + hi), 0.5 * (hi - lo) / math.sqrt(3.0)
+
+
+def layer_airmasses(apparent_zenith_deg: np.ndarray, station_height_m: float,
+                    heights_km: Sequence[float]) -> list[np.ndarray]:
+    """Air masses of thin layers ``heights_km`` above the station (Komhyr's
+    spherical-shell form, :func:`daemon.science.atmosphere.ozone_airmass`): the
+    aerosol's and the water vapour's in the budget."""
+    from daemon.science.atmosphere import ozone_airmass
+
+    site_km = station_height_m / 1000.0
+    return [ozone_airmass(apparent_zenith_deg, station_height_m, site_km + h)
+            for h in heights_km]
 
 
 @lru_cache(maxsize=32)
@@ -363,10 +381,24 @@ def model_terms(channel: Channel, config: Config, airmass: np.ndarray, tau_total
     Corrected: the shifts and what is left of each term. Not corrected: no shifts, and
     each bias counts in full, rms about zero (JCGM 100:2008, GUM, sec. F.2.4.5).
     """
-    shifts, terms = systematic_terms(channel, config, airmass, tau_total, pressure_hpa)
+    return as_configured(*systematic_terms(channel, config, airmass, tau_total,
+                                           pressure_hpa), config)
+
+
+def as_configured(shifts: dict[str, float], terms: dict[str, float], config: Config
+                  ) -> tuple[dict[str, float], dict[str, float]]:
+    """Model terms as ``fit.correct_model_terms`` applies them: the shifts and what is
+    left of each term; or no shifts, each bias counted in full (JCGM 100:2008, GUM,
+    sec. F.2.4.5)."""
     if config.fit.correct_model_terms:
         return shifts, terms
     return {}, {k: math.hypot(u, shifts.get(k, 0.0)) for k, u in terms.items()}
+
+
+def correction_note(shifts: Mapping[str, float], why: str) -> str:
+    """The note of a V0 corrected by ``shifts`` (ln V, subtracted), and why."""
+    return ("V0 corrected by " + ", ".join(f"{k.replace('_', ' ')} {-100 * v:+.3f} %"
+                                           for k, v in shifts.items()) + why)
 
 
 def shared_unc(channel: Channel, config: Config, airmass: np.ndarray, tau_total: float) -> float:
@@ -431,9 +463,7 @@ def budget_terms(fit: FitResult, channel: Channel, config: Config, s: ChannelSer
     total = sum(shifts.values())
     if shifts and math.isfinite(fit.ln_v0):
         fit = replace(fit, ln_v0=fit.ln_v0 - total, v0=math.exp(fit.ln_v0 - total))
-        notes.append("V0 corrected by " + ", ".join(
-            f"{k.replace('_', ' ')} {-100 * v:+.3f} %" for k, v in shifts.items())
-            + " for what a straight line cannot describe")
+        notes.append(correction_note(shifts, " for what a straight line cannot describe"))
     u = math.sqrt(fit.v0_stat_unc ** 2 + sum(t * t for t in terms.values()))
     allowance = drift_allowance(u, repeatability)
     if allowance > 0.0:
@@ -802,8 +832,8 @@ def _water_vapour_row(s: ChannelSeries, channel: Channel, config: Config,
 
 
 def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: np.ndarray,
-                     pressure_hpa: float, known_unc: np.ndarray | None = None,
-                     tau_a: float = 0.0) -> tuple[FitResult, Any, float]:
+                     pressure_hpa: float, known_unc: np.ndarray | None = None, *,
+                     tau_a: float) -> tuple[FitResult, Any, float]:
     """The modified-Langley fit with a, b from the filter, and b's share of V0's uncertainty.
 
     The regressor is ``m_w^b`` with ``m_w`` the water-vapour air mass (Kasten 1965,
@@ -873,7 +903,7 @@ def water_vapour_fit(s: ChannelSeries, channel: Channel, config: Config, known: 
 #: puts the vapour on a 2 km scale height (as documented by pyrtlib's
 #: ``standard_water_vapour_pressure``); Gueymard's (1994) apparent scale height,
 #: ``H_v = 0.4976 + 1.5265 t + exp(13.6897 t - 14.9188 t^3)`` with ``t = T / 273.15 K``
-#: (as quoted by DNV's SolarFarmer calculation reference), gives 2.17-2.83 km for
+#: (as quoted by DNV's SolarFarmer calculation reference), gives 2.15-2.83 km for
 #: surface temperatures of -10 to 35 degC; the rule used with Butler's estimate of
 #: precipitable water takes 1.5 km (from memory). The range spans them.
 WATER_VAPOUR_SCALE_HEIGHTS_KM = (1.5, 3.0)
@@ -886,23 +916,19 @@ def water_vapour_layer_terms(fit: FitResult, m_w: np.ndarray, airmass: np.ndarra
 
     ``water_vapour_airmass_model``: if the vapour's slant path is ``m_h``, a thin layer
     at a height ``h`` of :data:`WATER_VAPOUR_SCALE_HEIGHTS_KM` above the site
-    (Komhyr's spherical-shell form, :func:`daemon.science.atmosphere.ozone_airmass`)
-    rather than the fit's ``m_w``, the line through ``ln V + known`` against ``m_w^b``
-    misses the pattern ``-tau (m_h^b - m_w^b)`` (``tau`` the fitted slope, ``a W^b``).
+    (:func:`layer_airmasses`) rather than the fit's ``m_w``, the line through
+    ``ln V + known`` against ``m_w^b`` misses the pattern ``-tau (m_h^b - m_w^b)``
+    (``tau`` the fitted slope, ``a W^b``).
     ``aerosol_layer_airmass``: the known extinction puts the window channels' aerosol
     ``tau_a`` on the Kasten-Young air mass ``m``; on a layer at one of
     :data:`AEROSOL_SCALE_HEIGHTS_KM` the line misses ``-tau_a (m_layer - m)``, which
     against ``m_w^b`` is curved and moves the intercept far more than in a window
     channel's line against ``m``.
 
-    Each bias is the intercept of a line fitted to its pattern over the used points.
-    As for the window channels (:func:`systematic_terms`), it is corrected to the
-    middle of its range and the rectangular half-width over sqrt(3) stays as its term
-    (JCGM 100:2008, sec. 4.3.7); with ``fit.correct_model_terms: false`` nothing is
-    corrected and each term is ``hypot(half-width / sqrt(3), middle)``.
+    Each bias is the intercept of a line fitted to its pattern over the used points,
+    taken as for the window channels (:func:`systematic_terms`): over its range
+    (:func:`range_term`) and as ``fit.correct_model_terms`` says (:func:`as_configured`).
     """
-    from daemon.science.atmosphere import ozone_airmass
-
     used = np.asarray(fit.used, dtype=bool)
     if fit.n_used < 2 or not (math.isfinite(fit.ln_v0) and math.isfinite(fit.tau)):
         return fit, {}, []
@@ -914,34 +940,23 @@ def water_vapour_layer_terms(fit: FitResult, m_w: np.ndarray, airmass: np.ndarra
         return fit, {}, []
     m, z, x = m[ok], z[ok], x[ok]
     elev_m = config.site.elevation_m
-
-    def layer(h_km: float) -> np.ndarray:
-        return ozone_airmass(z, elev_m, elev_m / 1000.0 + h_km)
-
-    patterns = {
-        "water_vapour_airmass_model": [-fit.tau * (layer(h) ** b - x)
-                                       for h in WATER_VAPOUR_SCALE_HEIGHTS_KM],
-        "aerosol_layer_airmass": [-max(tau_a, 0.0) * (layer(h) - m)
-                                  for h in AEROSOL_SCALE_HEIGHTS_KM],
-    }
     weights = intercept_weights(x)
-    shifts, terms = {}, {}
-    for name, (low, high) in patterns.items():
-        ends = [float(weights @ low), float(weights @ high)]
-        middle, half = 0.5 * (ends[0] + ends[1]), 0.5 * abs(ends[1] - ends[0]) / math.sqrt(3.0)
-        if config.fit.correct_model_terms:
-            shifts[name], terms[name] = middle, half
-        else:
-            terms[name] = math.hypot(half, middle)
+    vapour = range_term([float(weights @ (-fit.tau * (m_h ** b - x))) for m_h in
+                         layer_airmasses(z, elev_m, WATER_VAPOUR_SCALE_HEIGHTS_KM)])
+    aerosol = range_term([float(weights @ (-max(tau_a, 0.0) * (m_h - m))) for m_h in
+                          layer_airmasses(z, elev_m, AEROSOL_SCALE_HEIGHTS_KM)])
+    shifts, terms = as_configured(
+        {"water_vapour_airmass_model": vapour[0], "aerosol_layer_airmass": aerosol[0]},
+        {"water_vapour_airmass_model": vapour[1], "aerosol_layer_airmass": aerosol[1]},
+        config)
     if not shifts:
         return fit, terms, []
     ln_v0 = fit.ln_v0 - sum(shifts.values())
-    note = ("V0 corrected by " + ", ".join(f"{k.replace('_', ' ')} {-100 * v:+.3f} %"
-                                           for k, v in shifts.items())
-            + f" (the vapour on a layer {WATER_VAPOUR_SCALE_HEIGHTS_KM[0]:g}-"
-            f"{WATER_VAPOUR_SCALE_HEIGHTS_KM[1]:g} km and the aerosol on one "
-            f"{AEROSOL_SCALE_HEIGHTS_KM[0]:g}-{AEROSOL_SCALE_HEIGHTS_KM[1]:g} km above the "
-            "site, not Kasten's 1965 profile and the whole atmosphere's air mass)")
+    note = correction_note(
+        shifts, f" (the vapour on a layer {WATER_VAPOUR_SCALE_HEIGHTS_KM[0]:g}-"
+        f"{WATER_VAPOUR_SCALE_HEIGHTS_KM[1]:g} km and the aerosol on one "
+        f"{AEROSOL_SCALE_HEIGHTS_KM[0]:g}-{AEROSOL_SCALE_HEIGHTS_KM[1]:g} km above the "
+        "site, not Kasten's 1965 profile and the whole atmosphere's air mass)")
     return replace(fit, ln_v0=ln_v0, v0=math.exp(ln_v0)), terms, [note]
 
 
