@@ -261,3 +261,51 @@ def test_the_samples_csv_from_tuples_quotes_and_blanks_as_the_csv_module(day, tm
         conn.close()
     assert fast.getvalue() == generic.getvalue()
     assert ',"a,""b",' in fast.getvalue()
+
+
+def test_the_samples_come_in_sqlite_s_own_order_of_the_export(day, tmp_path, monkeypatch):
+    """The samples are read in the primary key's order and their runs put in the export's
+    order in Python; SQLite's ORDER BY of the same rows (``_MEASUREMENT_SAMPLES_SORTED_SQL``,
+    NULLs first) is the reference, on the synthetic day and on cells a store written by
+    something else may hold: a NULL kind or channel, a channel without a channel row, a
+    BLOB channel and a text channel index, which Python cannot order and which are read
+    sorted by SQLite instead (SQLite's documented sort order; common practice, no source)."""
+    import shutil
+    import sqlite3
+
+    db = tmp_path / "odd.db"
+    shutil.copy(day.path, db)
+    with sqlite3.connect(db) as conn:
+        ids = [r[0] for r in conn.execute(
+            "SELECT DISTINCT measurement_id FROM samples ORDER BY measurement_id LIMIT 3")]
+        one = conn.execute("SELECT rowid FROM samples WHERE measurement_id = ? "
+                           "ORDER BY rowid LIMIT 2", (ids[0],)).fetchall()
+        conn.execute("UPDATE samples SET kind = NULL WHERE rowid = ?", one[0])
+        conn.execute("UPDATE samples SET channel = NULL WHERE rowid = ?", one[1])
+        conn.execute("UPDATE samples SET channel = 'zz' WHERE measurement_id = ? "
+                     "AND channel = '500'", (ids[0],))
+        conn.execute("UPDATE measurement_channels SET channel_index = 'x' "
+                     "WHERE measurement_id = ? AND channel = '380'", (ids[1],))
+        conn.execute("UPDATE samples SET channel = X'00ff' WHERE measurement_id = ? "
+                     "AND channel = '440'", (ids[2],))
+        conn.execute("UPDATE samples SET channel = 'zz' WHERE measurement_id = ? "
+                     "AND channel = '500'", (ids[2],))
+    conn.close()
+    reads = []
+    runs = ex._runs
+    monkeypatch.setattr(ex, "_runs", lambda rows: reads.append(len(rows)) or runs(rows))
+    for path, sorted_by_sqlite in ((day.path, 0), (db, 2)):
+        reads.clear()
+        conn = open_readonly(path)
+        try:
+            groups = list(ex._sample_groups(conn, D, D))
+            for measurement, measured in groups:
+                mine = [row for _, _, rows in measured for row in rows]
+                assert mine == [tuple(r) for r in conn.execute(
+                    ex._MEASUREMENT_SAMPLES_SORTED_SQL, (measurement[0],))], measurement
+                assert all(row[:2] == (kind, channel)
+                           for channel, kind, rows in measured for row in rows)
+        finally:
+            conn.close()
+        assert len(groups) > 3
+        assert len(reads) == len(groups) + sorted_by_sqlite  # the fallback's second read

@@ -84,6 +84,10 @@ QUERIES = {
     "aod between dates": (reader._AOD_SQL, (D, D)),
     "samples export (measurements)": (export_cmd._SAMPLE_MEASUREMENTS_SQL, (D, D)),
     "samples export (one measurement's samples)": (export_cmd._MEASUREMENT_SAMPLES_SQL, (1,)),
+    "samples export (one measurement's channel rows)": (
+        export_cmd._MEASUREMENT_CHANNELS_SQL, (1,)),
+    "samples export (one measurement's samples, sorted)": (
+        export_cmd._MEASUREMENT_SAMPLES_SORTED_SQL, (1,)),
     "measurements export": (export_cmd._MEASUREMENTS_SQL, (D, D)),
     "last measurement (status)": (
         "SELECT status FROM measurements WHERE time_utc >= ? "
@@ -100,14 +104,16 @@ def test_query_reaches_its_rows_through_an_index(store, name):
 
 
 def test_samples_export_streams_in_index_order(store):
-    # No sort of the range: the measurements come off their index at once, with no
-    # temporary B-tree (which SQLite spills to temporary files when it outgrows the
-    # cache); only one measurement's samples, found by the primary key, are sorted.
+    # No sort at all: the measurements come off their index at once, with no temporary
+    # B-tree (which SQLite spills to temporary files when it outgrows the cache), and
+    # each measurement's samples off the samples primary key in its own order.
     plan = _plan(store, export_cmd._SAMPLE_MEASUREMENTS_SQL, (D, D))
     assert not [line for line in plan if "TEMP B-TREE" in line], plan
-    plan = _plan(store, export_cmd._MEASUREMENT_SAMPLES_SQL, (1,))
-    assert any(line.startswith("SEARCH s USING") and "(measurement_id=?)" in line
-               for line in plan), plan
+    for sql in (export_cmd._MEASUREMENT_SAMPLES_SQL, export_cmd._MEASUREMENT_CHANNELS_SQL):
+        plan = _plan(store, sql, (1,))
+        assert not [line for line in plan if "TEMP B-TREE" in line], plan
+        assert any(line.startswith("SEARCH") and "(measurement_id=?)" in line
+                   for line in plan), plan
 
 
 def test_aod_between_sorts_only_within_a_measurement(store):

@@ -43,6 +43,8 @@ import sqlite3
 import sys
 import tempfile
 from collections.abc import Iterable, Iterator
+from itertools import groupby
+from operator import itemgetter
 from pathlib import Path
 from typing import IO, Any
 
@@ -116,19 +118,32 @@ ORDER BY m.time_utc, m.id, mc.channel_index
 
 # Measurements in the order of their (plan_date, time_utc) index, which is time order
 # since a plan date is the local date of its measurements; then, per measurement, its
-# samples through the samples primary key (measurement_id, ...), sorted within the
-# measurement (a few hundred rows, in memory) into the exported order: sun before dark,
-# the instrument's channel order (a channel without a channel row first, by name), the
-# sample index. No sort of the range, so the first row comes at once and SQLite writes
-# no temporary files; and the measurement's four columns are read once, not once per
-# sample (the export of millions of rows is mostly the making of Python objects).
+# samples in the order of the samples primary key (measurement_id, kind, channel,
+# sample_index), so SQLite sorts nothing at all: the first row comes at once and no
+# temporary files are written. The key's order gives runs of one kind and channel;
+# :func:`_sample_groups` puts the runs (a dozen per measurement) in the exported order
+# by the measurement's channel rows: sun before dark, the instrument's channel order (a
+# channel without a channel row first, by name), the sample index. The measurement's
+# four columns are read once, not once per sample (the export of millions of rows is
+# mostly the making of Python objects).
 _SAMPLE_MEASUREMENTS_SQL = """
 SELECT id, time_utc, plan_date, session FROM measurements
 WHERE plan_date BETWEEN ?1 AND ?2
 ORDER BY plan_date, time_utc, id
 """
 _MEASUREMENT_SAMPLES_SQL = """
-SELECT s.channel, s.kind, s.sample_index, s.value_v
+SELECT kind, channel, sample_index, value_v FROM samples
+WHERE measurement_id = ?
+ORDER BY kind, channel, sample_index
+"""
+_MEASUREMENT_CHANNELS_SQL = """
+SELECT channel, channel_index FROM measurement_channels WHERE measurement_id = ?
+"""
+# The exported order as SQLite sorts it: the definition the runs' order is held to
+# (tests/test_export.py), and how a measurement is read whose keys Python cannot put
+# in order (a BLOB, or a text channel index: a store written by something else).
+_MEASUREMENT_SAMPLES_SORTED_SQL = """
+SELECT s.kind, s.channel, s.sample_index, s.value_v
 FROM samples s
 LEFT JOIN measurement_channels mc ON mc.measurement_id = s.measurement_id
      AND mc.channel = s.channel
@@ -186,23 +201,57 @@ def reading_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[di
 
 def sample_rows(conn: sqlite3.Connection, first: str, last: str) -> Iterator[dict]:
     """Every raw sample [V], sun before dark, in time and channel order."""
-    for measurement, samples in _sample_groups(conn, first, last):
-        for r in samples:
-            yield dict(zip(_SAMPLE_NAMES, measurement + r, strict=True))
+    for measurement, runs in _sample_groups(conn, first, last):
+        for channel, kind, rows in runs:
+            for _, _, index, value in rows:
+                yield dict(zip(_SAMPLE_NAMES, measurement + (channel, kind, index, value),
+                               strict=True))
 
 
 def _sample_groups(conn: sqlite3.Connection, first: str, last: str
-                   ) -> Iterator[tuple[tuple, list[tuple]]]:
+                   ) -> Iterator[tuple[tuple, list[tuple[Any, Any, list[tuple]]]]]:
     """Per measurement with samples, in time order: its (measurement_id, time_utc,
-    plan_date, session) and its samples' (channel, kind, sample_index, value_v) in the
-    export's order, as plain tuples. Both queries run in the read transaction the
-    measurements cursor holds open, so they see one state of the store."""
-    measurements, samples = conn.cursor(), conn.cursor()
-    measurements.row_factory = samples.row_factory = None  # millions of rows: no Row objects
+    plan_date, session) and its samples as runs (channel, kind, rows) in the export's
+    order, each row a plain (kind, channel, sample_index, value_v) tuple. All queries
+    run in the read transaction the measurements cursor holds open, so they see one
+    state of the store."""
+    measurements, samples, channels = conn.cursor(), conn.cursor(), conn.cursor()
+    for cur in (measurements, samples, channels):
+        cur.row_factory = None  # millions of rows: no Row objects
+    pairs, order = None, {}
     for m in measurements.execute(_SAMPLE_MEASUREMENTS_SQL, (first, last)):
         rows = samples.execute(_MEASUREMENT_SAMPLES_SQL, (m[0],)).fetchall()
-        if rows:
-            yield m, rows
+        if not rows:
+            continue
+        these = channels.execute(_MEASUREMENT_CHANNELS_SQL, (m[0],)).fetchall()
+        if these != pairs:  # the channel rows are mostly the same from one to the next
+            pairs, order = these, {c: i for c, i in these if c is not None}
+        runs = _runs(rows)
+        try:
+            runs.sort(key=lambda run: _run_key(run, order))
+        except TypeError:
+            runs = _runs(samples.execute(_MEASUREMENT_SAMPLES_SORTED_SQL, (m[0],)).fetchall())
+        yield m, runs
+
+
+_KIND_CHANNEL = itemgetter(0, 1)
+
+
+def _runs(rows: list[tuple]) -> list[tuple[Any, Any, list[tuple]]]:
+    """Consecutive rows of one (kind, channel) as (channel, kind, rows)."""
+    return [(key[1], key[0], list(run)) for key, run in groupby(rows, _KIND_CHANNEL)]
+
+
+def _run_key(run: tuple[Any, Any, list[tuple]], order: dict) -> tuple:
+    """The sort key of a run that :data:`_MEASUREMENT_SAMPLES_SORTED_SQL`'s ORDER BY
+    gives its rows, NULL (None) first as SQLite sorts it."""
+    channel, kind = run[0], run[1]
+    return (-1 if kind is None else kind != "sun", channel in order, order.get(channel, 0),
+            _nulls_first(kind), _nulls_first(channel))
+
+
+def _nulls_first(value: Any) -> tuple:
+    return (0, "") if value is None else (1, value)
 
 
 def write_samples_csv(conn: sqlite3.Connection, first: str, last: str, out: IO[str]) -> int:
@@ -210,21 +259,24 @@ def write_samples_csv(conn: sqlite3.Connection, first: str, last: str, out: IO[s
     from :func:`sample_rows`' dicts, byte for byte, in about a quarter of the time)."""
     # The csv module's writerow costs more than the query here; so each cell's text is
     # made by the csv module once per distinct value (a measurement's four fields once
-    # per measurement, the few channel names, kinds and indices once per export) and
-    # the lines are joined from those texts. Only the value is new in every row: a
-    # finite float is its repr, as the csv module writes it; anything else goes through
-    # the same cell rule as the generic writer.
+    # per measurement, the few channel names, kinds and indices once per export), a
+    # run's first six cells are joined once per run, and only the index and value are
+    # added per row: a finite float is its repr, as the csv module writes it; anything
+    # else goes through the same cell rule as the generic writer.
     csv.writer(out, lineterminator="\n").writerow(csv_header(SAMPLE_COLUMNS))
     channels, kinds, indices = _CellTexts(), _CellTexts(), _CellTexts()
     isfinite, text = math.isfinite, _csv_text
     n = 0
-    for measurement, samples in _sample_groups(conn, first, last):
+    for measurement, runs in _sample_groups(conn, first, last):
         head = ",".join(map(text, measurement))
-        out.write("".join([
-            f"{head},{channels[c]},{kinds[k]},{indices[i]},"
-            f"{repr(v) if type(v) is float and isfinite(v) else text(v)}\n"
-            for c, k, i, v in samples]))
-        n += len(samples)
+        lines = []
+        for channel, kind, rows in runs:
+            start = f"{head},{channels[channel]},{kinds[kind]},"
+            lines.extend([f"{start}{indices[i]},"
+                          f"{repr(v) if type(v) is float and isfinite(v) else text(v)}\n"
+                          for _, _, i, v in rows])
+            n += len(rows)
+        out.write("".join(lines))
     return n
 
 
