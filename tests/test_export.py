@@ -268,8 +268,9 @@ def test_the_samples_come_in_sqlite_s_own_order_of_the_export(day, tmp_path, mon
     order in Python; SQLite's ORDER BY of the same rows (``_MEASUREMENT_SAMPLES_SORTED_SQL``,
     NULLs first) is the reference, on the synthetic day and on cells a store written by
     something else may hold: a NULL kind or channel, a channel without a channel row, a
-    BLOB channel and a text channel index, which Python cannot order and which are read
-    sorted by SQLite instead (SQLite's documented sort order; common practice, no source)."""
+    name beyond ASCII, a tie of channel indices, a kind of its own; and a BLOB channel
+    and a text channel index, which Python cannot order and which are read sorted by
+    SQLite instead (SQLite's documented sort order; common practice, no source)."""
     import shutil
     import sqlite3
 
@@ -284,6 +285,14 @@ def test_the_samples_come_in_sqlite_s_own_order_of_the_export(day, tmp_path, mon
         conn.execute("UPDATE samples SET channel = NULL WHERE rowid = ?", one[1])
         conn.execute("UPDATE samples SET channel = 'zz' WHERE measurement_id = ? "
                      "AND channel = '500'", (ids[0],))
+        conn.execute("UPDATE samples SET channel = '\u00e9' WHERE measurement_id = ? "
+                     "AND channel = '675'", (ids[0],))  # beyond ASCII: UTF-8 byte order
+        conn.execute("UPDATE measurement_channels SET channel_index = 2.5 "  # a tie below
+                     "WHERE measurement_id = ? AND channel = '440'", (ids[0],))
+        conn.execute("UPDATE measurement_channels SET channel_index = 2.5 "
+                     "WHERE measurement_id = ? AND channel = '870'", (ids[0],))
+        conn.execute("UPDATE samples SET kind = 'zzz' WHERE measurement_id = ? "  # in the tie
+                     "AND channel = '440' AND kind = 'dark'", (ids[0],))
         conn.execute("UPDATE measurement_channels SET channel_index = 'x' "
                      "WHERE measurement_id = ? AND channel = '380'", (ids[1],))
         conn.execute("UPDATE samples SET channel = X'00ff' WHERE measurement_id = ? "
